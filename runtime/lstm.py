@@ -1,0 +1,272 @@
+"""The numpy LSTM scorer: ONNX LSTM operator semantics, forward direction, float32.
+
+The equations are those of the ONNX LSTM operator (opset 14+) with its default activations
+(f = sigmoid, g = tanh, h = tanh), no peepholes, no clipping, one direction:
+
+    gates = X_t W^T + H_{t-1} R^T + Wb + Rb          gate order i, o, f, c (ONNX)
+    i = f(gates_i)   o = f(gates_o)   f_t = f(gates_f)   c~ = g(gates_c)
+    C_t = f_t * C_{t-1} + i * c~
+    H_t = o * h(C_t)
+
+Weight layout (DEVELOPERS.md): W [1, 4H, I], R [1, 4H, H], B [1, 8H] = [Wb, Rb].
+Because the layout is the operator's own, one weight file serves this scorer and an ONNX model.
+
+The network is the contract in DEVELOPERS.md: encoder LSTM stack + linear head -> latent
+sequence z; generator LSTM stack + linear head -> reconstruction; the score is the mean over
+channels of the per-channel mean squared residual.
+"""
+
+from typing import Dict, List, Optional, Tuple
+
+import numpy as np
+
+F32 = np.float32
+
+
+def sigmoid(x: np.ndarray) -> np.ndarray:
+    """Logistic function without overflow: exp is only ever taken of -|x|."""
+    x = np.asarray(x)
+    if x.dtype != np.float64:
+        x = x.astype(F32, copy=False)
+    e = np.exp(-np.abs(x))
+    return np.where(x >= 0, 1.0 / (1.0 + e), e / (1.0 + e)).astype(x.dtype, copy=False)
+
+
+def _as_state(s: Optional[np.ndarray], n: int, h: int, name: str) -> np.ndarray:
+    """Initial h or c: None -> zeros; accepts the operator's [1, N, H] or plain [N, H]."""
+    if s is None:
+        return np.zeros((n, h), dtype=F32)
+    s = np.asarray(s, dtype=F32)
+    if s.ndim == 3 and s.shape[0] == 1:
+        s = s[0]
+    if s.shape != (n, h):
+        raise ValueError(f"{name} must have shape [1, {n}, {h}] or [{n}, {h}], got {s.shape}")
+    return s
+
+
+def _lstm_layer(
+    x: np.ndarray, wt: np.ndarray, rt: np.ndarray, b: np.ndarray, h: np.ndarray, c: np.ndarray
+) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """One LSTM layer over time. x [T, N, I]; wt [I, 4H]; rt [H, 4H]; b [4H] (Wb + Rb).
+
+    The input projection of all time steps is one matmul; only the recurrence loops over time.
+    """
+    t_len, n = x.shape[0], x.shape[1]
+    hid = rt.shape[0]
+    xproj = x.reshape(t_len * n, -1) @ wt
+    xproj = xproj.reshape(t_len, n, 4 * hid)
+    xproj += b
+    y = np.empty((t_len, n, hid), dtype=F32)
+    for t in range(t_len):
+        gates = xproj[t] + h @ rt
+        sig = sigmoid(gates[:, : 3 * hid])
+        i_g = sig[:, :hid]
+        o_g = sig[:, hid : 2 * hid]
+        f_g = sig[:, 2 * hid : 3 * hid]
+        c_new = np.tanh(gates[:, 3 * hid :])
+        c = f_g * c + i_g * c_new
+        h = o_g * np.tanh(c)
+        y[t] = h
+    return y, h, c
+
+
+def _check_lstm_weights(W: np.ndarray, R: np.ndarray, B: np.ndarray, name: str = "LSTM") -> int:
+    """Validate ONNX LSTM shapes; returns hidden size H."""
+    if W.ndim != 3 or W.shape[0] != 1 or W.shape[1] % 4 != 0:
+        raise ValueError(f"{name}: W must have shape [1, 4H, I] (forward only), got {W.shape}")
+    hid = W.shape[1] // 4
+    if R.shape != (1, 4 * hid, hid):
+        raise ValueError(f"{name}: R must have shape [1, {4 * hid}, {hid}], got {R.shape}")
+    if B.shape != (1, 8 * hid):
+        raise ValueError(f"{name}: B must have shape [1, {8 * hid}], got {B.shape}")
+    return hid
+
+
+def _prepare(W: np.ndarray, R: np.ndarray, B: Optional[np.ndarray], name: str = "LSTM"):
+    """ONNX layout -> (W^T [I, 4H], R^T [H, 4H], Wb + Rb [4H]), contiguous float32."""
+    W = np.asarray(W, dtype=F32)
+    R = np.asarray(R, dtype=F32)
+    if B is None:  # the operator's B is optional and defaults to zeros
+        B = np.zeros((1, 2 * W.shape[1]), dtype=F32)
+    B = np.asarray(B, dtype=F32)
+    hid = _check_lstm_weights(W, R, B, name)
+    wt = np.ascontiguousarray(W[0].T)
+    rt = np.ascontiguousarray(R[0].T)
+    b = (B[0, : 4 * hid] + B[0, 4 * hid :]).astype(F32)
+    return wt, rt, b
+
+
+def lstm_forward(
+    x: np.ndarray,
+    W: np.ndarray,
+    R: np.ndarray,
+    B: Optional[np.ndarray] = None,
+    h0: Optional[np.ndarray] = None,
+    c0: Optional[np.ndarray] = None,
+) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The ONNX LSTM operator, forward direction, default activations, float32.
+
+    x [T, N, I] (time-major, as the operator). Returns Y [T, N, H], h_last [N, H], c_last [N, H]:
+    the operator's Y [T, 1, N, H], Y_h and Y_c with the num_directions axis (= 1) dropped.
+    h0, c0 may be [1, N, H] or [N, H]; None means zeros.
+    """
+    x = np.asarray(x, dtype=F32)
+    if x.ndim != 3:
+        raise ValueError(f"x must have shape [T, N, I], got {x.shape}")
+    wt, rt, b = _prepare(W, R, B)
+    if wt.shape[0] != x.shape[2]:
+        raise ValueError(f"x has {x.shape[2]} inputs but W expects {wt.shape[0]}")
+    n, hid = x.shape[1], rt.shape[0]
+    h = _as_state(h0, n, hid, "h0")
+    c = _as_state(c0, n, hid, "c0")
+    return _lstm_layer(x, wt, rt, b, h, c)
+
+
+def _count_layers(weights: Dict[str, np.ndarray], net: str) -> int:
+    k = 0
+    while f"{net}.lstm{k}.W" in weights:
+        k += 1
+    if k == 0:
+        raise ValueError(
+            f"weights have no '{net}.lstm0.W': not a ganlet network (see DEVELOPERS.md)"
+        )
+    return k
+
+
+class Network:
+    """Encoder + generator from a float32 ONNX-layout weight dict (DEVELOPERS.md).
+
+    Window length is free: the same weights score windows of any length L.
+    Transposed weights and summed biases are prepared once here, so scoring a hop is
+    matmuls and elementwise operations only.
+    """
+
+    def __init__(self, weights: Dict[str, np.ndarray]):
+        self._layers: Dict[str, List[Tuple[np.ndarray, np.ndarray, np.ndarray]]] = {}
+        self._heads: Dict[str, Tuple[np.ndarray, np.ndarray]] = {}
+        self._sizes: Dict[str, List[int]] = {}
+        expected = set()
+        for net in ("enc", "gen"):
+            layers = []
+            for k in range(_count_layers(weights, net)):
+                pre = f"{net}.lstm{k}"
+                for part in ("W", "R", "B"):
+                    if f"{pre}.{part}" not in weights:
+                        raise ValueError(f"weights are missing '{pre}.{part}'")
+                    expected.add(f"{pre}.{part}")
+                layers.append(
+                    _prepare(weights[f"{pre}.W"], weights[f"{pre}.R"], weights[f"{pre}.B"], pre)
+                )
+            for part in ("W", "b"):
+                if f"{net}.head.{part}" not in weights:
+                    raise ValueError(f"weights are missing '{net}.head.{part}'")
+                expected.add(f"{net}.head.{part}")
+            hw = np.asarray(weights[f"{net}.head.W"], dtype=F32)
+            hb = np.asarray(weights[f"{net}.head.b"], dtype=F32)
+            if hw.ndim != 2 or hb.shape != (hw.shape[0],):
+                raise ValueError(
+                    f"{net}.head: W must be [out, in] and b [out], got {hw.shape} and {hb.shape}"
+                )
+            # each layer's input size must be the previous layer's hidden size
+            for k in range(1, len(layers)):
+                if layers[k][0].shape[0] != layers[k - 1][1].shape[0]:
+                    raise ValueError(f"{net}.lstm{k}.W input size does not match {net}.lstm{k - 1}")
+            if hw.shape[1] != layers[-1][1].shape[0]:
+                raise ValueError(
+                    f"{net}.head.W input size does not match the last {net} LSTM layer"
+                )
+            self._layers[net] = layers
+            self._heads[net] = (np.ascontiguousarray(hw.T), hb)
+            self._sizes[net] = [int(rt.shape[0]) for _, rt, _ in layers]
+        unknown = sorted(k for k in weights if k not in expected)
+        if unknown:
+            raise ValueError(f"unexpected weight keys {unknown} (quantised? use load_weights)")
+        self._n_channels = int(self._layers["enc"][0][0].shape[0])
+        self._latent = int(self._heads["enc"][0].shape[1])
+        if self._layers["gen"][0][0].shape[0] != self._latent:
+            raise ValueError("gen.lstm0 input size must equal the encoder's latent size")
+        if self._heads["gen"][0].shape[1] != self._n_channels:
+            raise ValueError("gen.head output size must equal the number of channels")
+
+    @property
+    def encoder_sizes(self) -> List[int]:
+        return list(self._sizes["enc"])
+
+    @property
+    def generator_sizes(self) -> List[int]:
+        return list(self._sizes["gen"])
+
+    @property
+    def n_channels(self) -> int:
+        return self._n_channels
+
+    @property
+    def latent(self) -> int:
+        return self._latent
+
+    def _run(self, net: str, seq: np.ndarray) -> np.ndarray:
+        """seq [T, N, I] time-major -> head output [T, N, out]."""
+        n = seq.shape[1]
+        for wt, rt, b in self._layers[net]:
+            hid = rt.shape[0]
+            zeros = np.zeros((n, hid), dtype=F32)
+            seq, _, _ = _lstm_layer(seq, wt, rt, b, zeros, zeros)
+        hwt, hb = self._heads[net]
+        return seq @ hwt + hb
+
+    def _windows(self, windows: np.ndarray) -> np.ndarray:
+        w = np.asarray(windows, dtype=F32)
+        if w.ndim == 2:
+            raise ValueError("windows must be [N, L, C]; for one window use windows[None]")
+        if w.ndim != 3 or w.shape[2] != self._n_channels:
+            raise ValueError(f"windows must have shape [N, L, {self._n_channels}], got {w.shape}")
+        return w
+
+    def encode(self, windows: np.ndarray) -> np.ndarray:
+        """windows [N, L, C] -> latent sequences z [N, L, K]."""
+        w = self._windows(windows)
+        z = self._run("enc", w.transpose(1, 0, 2))
+        return np.ascontiguousarray(z.transpose(1, 0, 2))
+
+    def reconstruct(self, windows: np.ndarray) -> np.ndarray:
+        """windows [N, L, C] -> G(E(x)) [N, L, C]."""
+        w = self._windows(windows)
+        z = self._run("enc", w.transpose(1, 0, 2))
+        r = self._run("gen", z)
+        return np.ascontiguousarray(r.transpose(1, 0, 2))
+
+    def forward(self, windows: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
+        """windows [N, L, C] -> (reconstruction [N, L, C], residuals [N, C]).
+
+        residuals[n, c] = mean over time of (x - r)^2: the per-channel part of the score.
+        """
+        w = self._windows(windows)
+        recon = self.reconstruct(w)
+        err = w - recon
+        residuals = np.mean(err * err, axis=1, dtype=F32)
+        return recon, residuals
+
+    def flops_per_window(self, window_len: int) -> int:
+        """Estimate: 2 x multiply-adds of the matrix products for one window of `window_len` steps.
+
+        Per LSTM layer and step: 4H x (I + H) multiply-adds; per head and step: in x out.
+        Elementwise work (biases, activations, cell update: about 10H per layer-step) and the
+        residual are left out; they are O(H) against O(H x (I + H)).
+        """
+        if window_len < 1:
+            raise ValueError("window_len must be >= 1")
+        macs = 0
+        for net in ("enc", "gen"):
+            for wt, rt, _ in self._layers[net]:
+                macs += wt.shape[1] * (wt.shape[0] + rt.shape[0])
+            hwt = self._heads[net][0]
+            macs += hwt.shape[0] * hwt.shape[1]
+        return int(2 * macs * window_len)
+
+
+def score_from_residuals(residuals: np.ndarray) -> np.ndarray:
+    """The one score definition: mean over channels of the per-channel residuals. [N, C] -> [N]."""
+    r = np.asarray(residuals, dtype=F32)
+    if r.ndim != 2:
+        raise ValueError(f"residuals must have shape [N, C], got {r.shape}")
+    return np.mean(r, axis=1, dtype=F32)
