@@ -1,0 +1,130 @@
+"""The alert state machine: one step per scored hop.
+
+    warm-up   the first `warmup_hops` scores never open an alert; the step that completes the
+              warm-up returns "warmed_up" (once; never when warmup_hops is 0)
+    open      score > threshold on `min_hops` consecutive hops -> "opened"; the alert starts at
+              the first of those hops (open_since_hop) and its peak includes them
+    close     score < close_ratio * threshold -> "closed" (hysteresis: between the two levels an
+              open alert stays open and a closed one stays closed)
+    cooldown  for `cooldown_hops` hops after the closing hop no alert opens, and those hops do
+              not count towards a new run of `min_hops`
+
+Hops are numbered from 0; `hop` is the number of steps taken. A NaN score or threshold compares
+false both ways: it neither opens nor closes, and it breaks a pending run.
+After "closed", open_since_hop and peak_score still describe the alert that just closed, until
+the next one opens.
+"""
+
+import numbers
+from typing import Any, Dict, Optional
+
+WARMED_UP = "warmed_up"
+OPENED = "opened"
+CLOSED = "closed"
+
+
+class AlertMachine:
+    def __init__(
+        self,
+        warmup_hops: int = 0,
+        min_hops: int = 1,
+        close_ratio: float = 0.8,
+        cooldown_hops: int = 0,
+    ):
+        for name, v, lo in (
+            ("warmup_hops", warmup_hops, 0),
+            ("min_hops", min_hops, 1),
+            ("cooldown_hops", cooldown_hops, 0),
+        ):
+            if isinstance(v, bool) or not isinstance(v, numbers.Integral) or v < lo:
+                raise ValueError(f"{name} must be an integer >= {lo}, got {v!r}")
+        ratio = float(close_ratio)
+        if not 0.0 < ratio <= 1.0:
+            raise ValueError(f"close_ratio must be in (0, 1], got {close_ratio!r}")
+        self.warmup_hops = int(warmup_hops)
+        self.min_hops = int(min_hops)
+        self.close_ratio = ratio
+        self.cooldown_hops = int(cooldown_hops)
+        self.hop = 0
+        self.is_open = False
+        self.open_since_hop: Optional[int] = None
+        self.peak_score = 0.0
+        self._run_start: Optional[int] = None  # first hop of the pending run above threshold
+        self._run_len = 0
+        self._run_peak = 0.0
+        self._cooldown_left = 0
+
+    @property
+    def is_warm(self) -> bool:
+        return self.hop >= self.warmup_hops
+
+    def step(self, score: float, threshold: float) -> Optional[str]:
+        """Advance one hop; returns None, "warmed_up", "opened" or "closed"."""
+        i = self.hop
+        self.hop += 1
+        score = float(score)
+        threshold = float(threshold)
+        if i < self.warmup_hops:
+            return WARMED_UP if self.hop == self.warmup_hops else None
+
+        if self.is_open:
+            self.peak_score = max(self.peak_score, score)
+            if score < self.close_ratio * threshold:
+                self.is_open = False
+                self._cooldown_left = self.cooldown_hops
+                return CLOSED
+            return None
+
+        if self._cooldown_left > 0:
+            self._cooldown_left -= 1
+            return None
+
+        if score > threshold:
+            if self._run_len == 0:
+                self._run_start = i
+                self._run_peak = score
+            self._run_len += 1
+            self._run_peak = max(self._run_peak, score)
+            if self._run_len >= self.min_hops:
+                self.is_open = True
+                self.open_since_hop = self._run_start
+                self.peak_score = self._run_peak
+                self._reset_run()
+                return OPENED
+        else:
+            self._reset_run()
+        return None
+
+    def _reset_run(self) -> None:
+        self._run_start = None
+        self._run_len = 0
+        self._run_peak = 0.0
+
+    def state(self) -> Dict[str, Any]:
+        return {
+            "warmup_hops": self.warmup_hops,
+            "min_hops": self.min_hops,
+            "close_ratio": self.close_ratio,
+            "cooldown_hops": self.cooldown_hops,
+            "hop": self.hop,
+            "is_open": self.is_open,
+            "open_since_hop": self.open_since_hop,
+            "peak_score": self.peak_score,
+            "run_start": self._run_start,
+            "run_len": self._run_len,
+            "run_peak": self._run_peak,
+            "cooldown_left": self._cooldown_left,
+        }
+
+    @classmethod
+    def from_state(cls, d: Dict[str, Any]) -> "AlertMachine":
+        m = cls(d["warmup_hops"], d["min_hops"], d["close_ratio"], d["cooldown_hops"])
+        m.hop = int(d["hop"])
+        m.is_open = bool(d["is_open"])
+        m.open_since_hop = None if d["open_since_hop"] is None else int(d["open_since_hop"])
+        m.peak_score = float(d["peak_score"])
+        m._run_start = None if d["run_start"] is None else int(d["run_start"])
+        m._run_len = int(d["run_len"])
+        m._run_peak = float(d["run_peak"])
+        m._cooldown_left = int(d["cooldown_left"])
+        return m
