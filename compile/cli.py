@@ -1,0 +1,196 @@
+"""The `ganlet` command: a thin typer layer over functions in ganlet.compile.
+
+Bad input exits with code 2 and one line on stderr; nothing here holds logic that a test
+would need to reach.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import warnings
+from contextlib import contextmanager
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+
+from ganlet.compile import __version__
+
+app = typer.Typer(
+    add_completion=False,
+    no_args_is_help=True,
+    help="Train a small adversarial LSTM anomaly detector, compile it for a gateway, prove "
+         "parity, run detection offline. Detection is advisory: not a safety function.",
+)
+
+
+class UsageProblem(Exception):
+    """Raised for input the user can fix; printed as one line, exit code 2."""
+
+
+def fail(message: str, code: int = 2):
+    typer.echo(f"error: {message}", err=True)
+    raise typer.Exit(code)
+
+
+@contextmanager
+def user_errors():
+    """Turn boundary errors into one-line messages with exit code 2; show warnings tidily."""
+    from ganlet.compile.data import IntakeError
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield
+        except (IntakeError, UsageProblem, FileNotFoundError, ValueError) as exc:
+            flush_warnings(caught)
+            fail(str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+        flush_warnings(caught)
+
+
+def flush_warnings(caught) -> None:
+    seen = set()
+    for w in caught:
+        text = str(w.message)
+        if text in seen or issubclass(w.category, (DeprecationWarning, FutureWarning)):
+            continue
+        seen.add(text)
+        typer.echo(f"warning: {text}", err=True)
+    caught.clear()
+
+
+def version_callback(value: bool):
+    if value:
+        typer.echo(f"ganlet {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def root(
+    version: bool = typer.Option(False, "--version", callback=version_callback, is_eager=True,
+                                 help="Print the version and exit."),
+):
+    """ganlet: adversarial LSTM anomaly detection for low-power gateways."""
+
+
+def split_list(text: Optional[str]) -> Optional[List[str]]:
+    if text is None or text.strip() == "":
+        return None
+    return [part.strip() for part in text.split(",") if part.strip()]
+
+
+def parse_units(text: Optional[str]) -> dict:
+    units = {}
+    for item in split_list(text) or []:
+        if "=" not in item:
+            raise UsageProblem(f"--units item {item!r}: use name=unit, e.g. flow=L/min")
+        name, unit = item.split("=", 1)
+        units[name.strip()] = unit.strip()
+    return units
+
+
+def parse_train_until(text: Optional[str]):
+    if text is None:
+        return None
+    try:
+        return int(text)
+    except ValueError:
+        pass
+    try:
+        value = float(text)
+        if 0 < value <= 1:
+            return value
+        raise UsageProblem(f"--train-until {text}: a fraction must lie in (0, 1]")
+    except ValueError:
+        return text
+
+
+def progress_printer(quiet: bool):
+    """A rich progress bar per training phase (stderr), or nothing with --quiet."""
+    if quiet:
+        return None, lambda: None
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    bar = Progress(TextColumn("{task.description:<12}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
+                   TextColumn("{task.fields[info]}"), TimeElapsedColumn(),
+                   console=Console(stderr=True), transient=False)
+    tasks = {}
+
+    def update(phase: str, epoch: int, epochs: int, losses: dict):
+        if phase not in tasks:
+            if not tasks:
+                bar.start()
+            tasks[phase] = bar.add_task(phase, total=epochs, info="")
+        info = "  ".join(f"{k} {v:.4g}" for k, v in losses.items())
+        bar.update(tasks[phase], completed=epoch, info=info)
+
+    return update, bar.stop
+
+
+@app.command()
+def train(
+    data: Path = typer.Argument(..., help="CSV or Parquet sensor history."),
+    out: Path = typer.Option(..., "--out", "-o", help="Model directory to write."),
+    sep: Optional[str] = typer.Option(None, help="CSV delimiter (default: sniffed)."),
+    time_col: Optional[str] = typer.Option(None, "--time-col", help="Time column (default: auto)."),
+    channels: Optional[str] = typer.Option(None, help="Comma-separated channel columns (default: all numeric)."),
+    exclude: Optional[str] = typer.Option(None, help="Comma-separated columns to leave out (label-like columns are left out anyway)."),
+    units: Optional[str] = typer.Option(None, help="Units, e.g. 'flow=L/min,temp=degC' (default: read from name suffixes)."),
+    period: Optional[str] = typer.Option(None, help="Sampling period: seconds or e.g. '1min' (default: median spacing)."),
+    max_fill: int = typer.Option(5, "--max-fill", help="Interpolate gaps up to this many periods; longer gaps split the series."),
+    train_until: Optional[str] = typer.Option(None, "--train-until", help="End of the training span: a row count, a fraction (0.6) or a time. Default: all data."),
+    calibration: float = typer.Option(0.2, help="Fraction of the training span held back (at its end) to calibrate thresholds."),
+    window: Optional[int] = typer.Option(None, help="Window length in samples (default 32, shorter for short histories)."),
+    config: Optional[Path] = typer.Option(None, help="JSON or TOML file of DetectorConfig fields."),
+    adversarial_epochs: Optional[int] = typer.Option(None, "--adversarial-epochs", help="Epochs of the G/D phase."),
+    inversion_epochs: Optional[int] = typer.Option(None, "--inversion-epochs", help="Epochs of the encoder phase."),
+    seed: int = typer.Option(0, help="Random seed (runs are reproducible on CPU)."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
+):
+    """Learn one machine's normal behaviour from a sensor history."""
+    from ganlet.compile import pipeline
+
+    with user_errors():
+        options = pipeline.TrainOptions(
+            sep=sep, time_col=time_col, channels=split_list(channels),
+            exclude=split_list(exclude) or [], units=parse_units(units), period=period,
+            max_fill=max_fill, train_until=parse_train_until(train_until),
+            calibration=calibration, window=window, config_file=config,
+            adversarial_epochs=adversarial_epochs, inversion_epochs=inversion_epochs, seed=seed,
+        )
+        progress, stop = progress_printer(quiet)
+        echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))
+        try:
+            result = pipeline.train_from_file(data, out, options, progress=progress, echo=echo)
+        finally:
+            stop()
+        if not quiet:
+            typer.echo(result.describe())
+
+
+@app.command()
+def demo(
+    out: Path = typer.Option(Path("ganlet-demo"), "--out", "-o", help="Folder for the demo's data, model and reports."),
+    quick: bool = typer.Option(False, help="Fewer epochs: a fast smoke run of the whole chain."),
+    seed: int = typer.Option(7, help="Seed of the invented data and the training."),
+):
+    """Run everything end to end on the invented demo pump station."""
+    from ganlet.compile import demo as demo_mod
+
+    with user_errors():
+        summary = demo_mod.run(out, quick=quick, seed=seed, echo=lambda t: typer.echo(t))
+    typer.echo(json.dumps(summary["paths"], indent=2))
+
+
+def main() -> None:
+    try:
+        app()
+    except KeyboardInterrupt:
+        typer.echo("interrupted", err=True)
+        sys.exit(130)
+
+
+if __name__ == "__main__":
+    main()

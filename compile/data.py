@@ -1,0 +1,443 @@
+"""Data intake: a CSV or Parquet sensor history -> a regular frame -> scaled windows.
+
+Everything the user can get wrong is checked here, at the boundary, with a message that says
+what to do next. Past this module the data is trusted: a fixed period, no duplicates, no NaN
+inside a segment, and no window that spans a long gap.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import warnings
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Optional, Sequence
+
+import numpy as np
+import pandas as pd
+
+TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
+LABEL_NAMES = ("anomaly", "label", "labels", "changepoint", "fault", "target", "is_anomaly",
+               "class", "incident", "attack")
+# Column-name suffixes we can read a unit from (common practice in plant historians).
+UNIT_SUFFIXES = {
+    "_mm_s": "mm/s", "_c": "degC", "_degc": "degC", "_bar": "bar", "_a": "A", "_v": "V",
+    "_kw": "kW", "_rpm": "rpm", "_hz": "Hz", "_g": "g", "_pct": "%", "_lpm": "L/min",
+    "_m3h": "m3/h", "_kpa": "kPa", "_psi": "psi",
+}
+MIN_WINDOW = 8
+
+
+class IntakeError(ValueError):
+    """Bad input data; the message says what is wrong and what to do next."""
+
+
+@dataclass
+class IntakeOptions:
+    sep: Optional[str] = None            # None: sniff the delimiter
+    time_col: Optional[str] = None       # None: auto-detect
+    channels: Optional[Sequence[str]] = None
+    exclude: Sequence[str] = ()
+    period_s: Optional[float] = None     # None: the median spacing
+    max_fill_periods: int = 5            # interpolate gaps up to this many missing periods
+    units: dict = field(default_factory=dict)
+
+
+@dataclass
+class IntakeReport:
+    source: str
+    rows_read: int
+    time_col: str
+    channels: list
+    units: list
+    excluded: list
+    period_s: float
+    start: str
+    end: str
+    grid_points: int
+    unparsable_times: int
+    out_of_order: int
+    duplicates: int
+    missing_points: int
+    filled_points: int
+    long_gaps: list            # [start, end, missing periods] of gaps split into segments
+    segments: int
+    channel_ranges: dict       # name -> [min, max] in raw units
+    warnings: list = field(default_factory=list)
+
+    def to_json(self) -> dict:
+        return asdict(self)
+
+    def summary(self) -> str:
+        lines = [
+            f"data      {self.source}",
+            f"rows      {self.rows_read} read -> {self.grid_points} on a {fmt_period(self.period_s)} grid",
+            f"span      {self.start} .. {self.end}",
+            f"repairs   {self.out_of_order} out of order (sorted), {self.duplicates} duplicate "
+            f"timestamps (averaged), {self.unparsable_times} unparsable times (dropped)",
+            f"gaps      {self.filled_points} points interpolated, {len(self.long_gaps)} long gaps "
+            f"-> {self.segments} segment(s)",
+        ]
+        if self.excluded:
+            lines.append(f"excluded  {', '.join(self.excluded)}")
+        width = max(len(c) for c in self.channels)
+        for name, unit in zip(self.channels, self.units):
+            lo, hi = self.channel_ranges[name]
+            lines.append(f"  {name:<{width}}  {lo:>10.4g} .. {hi:<10.4g} {unit}")
+        return "\n".join(lines)
+
+
+@dataclass
+class Frame:
+    """A regular time series: values on a fixed grid, NaN only inside long gaps."""
+
+    times: pd.DatetimeIndex
+    values: np.ndarray          # [T, C] float64, raw units
+    channels: list
+    units: list
+    period_s: float
+    report: IntakeReport
+
+    def segments(self, start: int = 0, stop: Optional[int] = None) -> list:
+        """(begin, end) row ranges without NaN, inside [start, stop)."""
+        stop = len(self.values) if stop is None else stop
+        ok = ~np.isnan(self.values[start:stop]).any(axis=1)
+        return [(start + b, start + e) for b, e in runs(ok)]
+
+
+def runs(mask: np.ndarray) -> list:
+    """Half-open ranges of consecutive True values."""
+    padded = np.concatenate([[False], mask, [False]]).astype(np.int8)
+    edges = np.flatnonzero(np.diff(padded))
+    return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
+
+
+def fmt_period(seconds: float) -> str:
+    if seconds >= 3600 and seconds % 3600 == 0:
+        return f"{seconds / 3600:g} h"
+    if seconds >= 60 and seconds % 60 == 0:
+        return f"{seconds / 60:g} min"
+    return f"{seconds:g} s"
+
+
+def parse_period(text) -> Optional[float]:
+    """'60', '60s', '1min', '1h' -> seconds."""
+    if text is None or text == "":
+        return None
+    if isinstance(text, (int, float)):
+        seconds = float(text)
+    else:
+        try:
+            seconds = float(text)
+        except ValueError:
+            try:
+                seconds = pd.Timedelta(str(text)).total_seconds()
+            except ValueError as exc:
+                raise IntakeError(f"--period {text!r} is not a duration; use seconds (60) or "
+                                  "a unit (60s, 1min, 1h)") from exc
+    if seconds <= 0:
+        raise IntakeError(f"--period must be positive, got {text!r}")
+    return seconds
+
+
+def read_table(path: Path, sep: Optional[str]) -> pd.DataFrame:
+    path = Path(path)
+    if not path.exists():
+        raise IntakeError(f"{path}: no such file")
+    if path.suffix.lower() in (".parquet", ".pq"):
+        return pd.read_parquet(path)
+    if sep is None:
+        with open(path, newline="", encoding="utf-8", errors="replace") as fh:
+            head = fh.read(16384)
+        if not head.strip():
+            raise IntakeError(f"{path}: the file is empty")
+        try:
+            sep = csv.Sniffer().sniff(head, delimiters=",;\t|").delimiter
+        except csv.Error:
+            sep = ","
+    try:
+        return pd.read_csv(path, sep=sep)
+    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
+
+
+def find_time_column(df: pd.DataFrame, requested: Optional[str]) -> str:
+    if requested is not None:
+        if requested not in df.columns:
+            raise IntakeError(f"time column {requested!r} not found; columns are "
+                              f"{', '.join(map(str, df.columns))}")
+        return requested
+    for col in df.columns:
+        if str(col).strip().lower() in TIME_NAMES:
+            return col
+    for col in df.columns:
+        if df[col].dtype == object or str(df[col].dtype).startswith(("datetime", "str")):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                parsed = pd.to_datetime(df[col].head(50), errors="coerce")
+            if parsed.notna().mean() > 0.9:
+                return col
+    raise IntakeError("no time column found; name it with --time-col (columns are "
+                      f"{', '.join(map(str, df.columns))})")
+
+
+def unit_for(name: str, given: dict) -> str:
+    if name in given:
+        return given[name]
+    lower = name.lower()
+    for suffix in sorted(UNIT_SUFFIXES, key=len, reverse=True):
+        if lower.endswith(suffix):
+            return UNIT_SUFFIXES[suffix]
+    return ""
+
+
+def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
+    """Read, clean and regularise one sensor history."""
+    opts = options or IntakeOptions()
+    df = read_table(Path(path), opts.sep)
+    if len(df) == 0:
+        raise IntakeError(f"{path}: no data rows")
+    notes: list = []
+    time_col = find_time_column(df, opts.time_col)
+
+    excluded = [c for c in df.columns if str(c).strip().lower() in LABEL_NAMES]
+    excluded += [c for c in opts.exclude if c in df.columns and c not in excluded]
+    missing_excl = [c for c in opts.exclude if c not in df.columns]
+    if missing_excl:
+        raise IntakeError(f"--exclude names unknown column(s): {', '.join(missing_excl)}")
+    if opts.channels:
+        unknown = [c for c in opts.channels if c not in df.columns]
+        if unknown:
+            raise IntakeError(f"--channels names unknown column(s): {', '.join(unknown)}; "
+                              f"columns are {', '.join(map(str, df.columns))}")
+        channels = list(opts.channels)
+        not_numeric = [c for c in channels if not pd.api.types.is_numeric_dtype(df[c])]
+        if not_numeric:
+            raise IntakeError(f"channel(s) {', '.join(not_numeric)} are not numeric")
+    else:
+        channels = [c for c in df.columns if c != time_col and c not in excluded
+                    and pd.api.types.is_numeric_dtype(df[c]) and not pd.api.types.is_bool_dtype(df[c])]
+    if not channels:
+        raise IntakeError(f"{path}: no numeric channel found besides the time column "
+                          f"{time_col!r}; check --sep, or name channels with --channels")
+
+    raw_times = df[time_col]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if pd.api.types.is_numeric_dtype(raw_times):
+            times = pd.to_datetime(raw_times, unit="s", errors="coerce")
+        else:
+            times = pd.to_datetime(raw_times, errors="coerce", format="mixed")
+    bad_time = times.isna().to_numpy()
+    if bad_time.mean() > 0.01 or bad_time.all():
+        first = int(np.flatnonzero(bad_time)[0])
+        raise IntakeError(f"column {time_col!r}: {int(bad_time.sum())} of {len(df)} times cannot "
+                          f"be parsed (first at data row {first + 1}: {raw_times.iloc[first]!r}); "
+                          "use ISO 8601 (2026-03-02T10:00:00) or epoch seconds, or pick another "
+                          "column with --time-col")
+    if times.dt.tz is not None:
+        times = times.dt.tz_convert("UTC").dt.tz_localize(None)
+    values = df[channels].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64, copy=True)
+    values[~np.isfinite(values)] = np.nan
+    keep = ~bad_time
+    times_np = times.to_numpy()[keep]
+    values = values[keep]
+    if bad_time.any():
+        notes.append(f"{int(bad_time.sum())} rows with unparsable times dropped")
+
+    out_of_order = int((np.diff(times_np) < np.timedelta64(0)).sum())
+    if out_of_order:
+        order = np.argsort(times_np, kind="stable")
+        times_np, values = times_np[order], values[order]
+        notes.append(f"{out_of_order} rows were out of time order; sorted")
+        warnings.warn(f"{out_of_order} rows were out of time order; sorted them", stacklevel=2)
+
+    dt = np.diff(times_np).astype("timedelta64[ns]").astype(np.int64) / 1e9
+    positive = dt[dt > 0]
+    if len(positive) == 0:
+        raise IntakeError(f"{path}: all rows share one timestamp; need a time series")
+    period = opts.period_s or float(np.median(positive))
+
+    # Put every row on the grid t0 + k * period; rows sharing a slot are duplicates: averaged.
+    t0 = times_np[0]
+    offsets = (times_np - t0).astype("timedelta64[ns]").astype(np.int64) / 1e9
+    slot = np.rint(offsets / period).astype(np.int64)
+    n_slots = int(slot[-1]) + 1
+    duplicates = len(slot) - len(np.unique(slot))
+    if duplicates:
+        notes.append(f"{duplicates} duplicate timestamps resolved by averaging")
+    grid = np.full((n_slots, len(channels)), np.nan)
+    grid_df = pd.DataFrame(values).groupby(slot).mean()
+    grid[grid_df.index.to_numpy()] = grid_df.to_numpy()
+
+    missing = np.isnan(grid).any(axis=1)
+    filled = 0
+    long_gaps = []
+    grid_times = pd.DatetimeIndex(t0 + (np.arange(n_slots) * period * 1e9).astype("timedelta64[ns]"))
+    for b, e in runs(missing):
+        if e - b <= opts.max_fill_periods and b > 0 and e < n_slots:
+            filled += e - b
+        else:
+            long_gaps.append([str(grid_times[b]), str(grid_times[e - 1]), e - b])
+    # Interpolate inside short gaps only (a row missing one channel counts as a gap too);
+    # long gaps stay NaN and split the series.
+    frame = pd.DataFrame(grid)
+    interpolated = frame.interpolate(method="linear", limit_area="inside").to_numpy()
+    for b, e in runs(missing):
+        if e - b <= opts.max_fill_periods and b > 0 and e < n_slots:
+            grid[b:e] = interpolated[b:e]
+        else:
+            grid[b:e] = np.nan
+
+    for j, name in enumerate(channels):
+        if np.isnan(grid[:, j]).all():
+            raise IntakeError(f"channel {name!r} has no numeric values; drop it with --channels")
+
+    segs = runs(~np.isnan(grid).any(axis=1))
+    ranges = {name: [float(np.nanmin(grid[:, j])), float(np.nanmax(grid[:, j]))]
+              for j, name in enumerate(channels)}
+    units = [unit_for(c, opts.units) for c in channels]
+    report = IntakeReport(
+        source=str(path), rows_read=int(len(df)), time_col=str(time_col),
+        channels=[str(c) for c in channels], units=units, excluded=[str(c) for c in excluded],
+        period_s=period, start=str(grid_times[0]), end=str(grid_times[-1]),
+        grid_points=n_slots, unparsable_times=int(bad_time.sum()), out_of_order=out_of_order,
+        duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
+        long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
+    )
+    return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
+
+
+# ----------------------------------------------------------------------------------------------
+# spans, scaling, windows
+
+
+@dataclass
+class Spans:
+    """Chronological row ranges on the frame's grid: fit | calibration, then an unused rest."""
+
+    fit: tuple
+    calibration: tuple
+    rest: tuple
+
+    def to_json(self) -> dict:
+        return {k: list(v) for k, v in asdict(self).items()}
+
+
+def split_spans(frame: Frame, train_until=None, calibration_fraction: float = 0.2) -> Spans:
+    """train_until: None (all), a row count (int), a fraction (0<f<=1) or a timestamp string."""
+    n = len(frame.values)
+    if train_until is None:
+        end = n
+    elif isinstance(train_until, float) and 0 < train_until <= 1:
+        end = int(round(n * train_until))
+    elif isinstance(train_until, int):
+        end = min(train_until, n)
+    else:
+        try:
+            stamp = pd.Timestamp(str(train_until))
+        except ValueError as exc:
+            raise IntakeError(f"--train-until {train_until!r}: give a row count, a fraction "
+                              "such as 0.6, or a time") from exc
+        end = int(np.searchsorted(frame.times.values, stamp.to_datetime64(), side="right"))
+    if end <= 1:
+        raise IntakeError(f"--train-until {train_until!r} leaves no training rows")
+    if not 0 < calibration_fraction < 1:
+        raise IntakeError("--calibration must be a fraction between 0 and 1")
+    cal_start = int(round(end * (1 - calibration_fraction)))
+    return Spans(fit=(0, cal_start), calibration=(cal_start, end), rest=(end, n))
+
+
+@dataclass
+class RobustScaler:
+    """(x - median) / (IQR / 1.349): the IQR of a normal distribution is 1.349 sigma."""
+
+    center: list
+    scale: list
+
+    @classmethod
+    def fit(cls, values: np.ndarray, channels: Sequence[str]) -> RobustScaler:
+        center = np.nanmedian(values, axis=0)
+        q75, q25 = np.nanpercentile(values, [75, 25], axis=0)
+        scale = (q75 - q25) / 1.349
+        std = np.nanstd(values, axis=0)
+        for j, name in enumerate(channels):
+            if not np.isfinite(std[j]) or std[j] <= 1e-12 * max(1.0, abs(center[j])):
+                raise IntakeError(f"channel {name!r} is constant over the training span "
+                                  f"(value {center[j]:g}); it carries no information — drop it "
+                                  "with --channels or --exclude")
+            if scale[j] <= 1e-12 * max(1.0, abs(center[j])):
+                scale[j] = std[j]   # a mostly-constant channel with rare moves: fall back to std
+        return cls(center=center.tolist(), scale=scale.tolist())
+
+    def transform(self, values: np.ndarray) -> np.ndarray:
+        return ((values - np.asarray(self.center)) / np.asarray(self.scale)).astype(np.float32)
+
+    def to_json(self) -> dict:
+        return {"kind": "robust", "center": self.center, "scale": self.scale}
+
+    @classmethod
+    def from_json(cls, d: dict) -> RobustScaler:
+        return cls(center=list(d["center"]), scale=list(d["scale"]))
+
+
+def windows_from(values: np.ndarray, segments: Sequence[tuple], length: int, hop: int = 1):
+    """Sliding windows [N, length, C] inside segments, and the row index each window ends at."""
+    blocks, ends = [], []
+    for b, e in segments:
+        if e - b < length:
+            continue
+        view = np.lib.stride_tricks.sliding_window_view(values[b:e], length, axis=0)
+        idx = np.arange(0, e - b - length + 1, hop)
+        blocks.append(np.transpose(view[idx], (0, 2, 1)))
+        ends.append(b + idx + length - 1)
+    if not blocks:
+        return np.zeros((0, length, values.shape[1]), np.float32), np.zeros(0, np.int64)
+    return np.ascontiguousarray(np.concatenate(blocks), dtype=np.float32), np.concatenate(ends)
+
+
+def longest_segment(frame: Frame, span: tuple) -> int:
+    segs = frame.segments(*span)
+    return max((e - b for b, e in segs), default=0)
+
+
+def choose_window(frame: Frame, spans: Spans, requested: int) -> int:
+    """The requested window, or a shorter one (with a warning) when the history is short.
+
+    Rule (common practice): the fit span needs at least 4 windows' worth of points and the
+    calibration span at least one window plus a few scores.
+    """
+    fit_len = longest_segment(frame, spans.fit)
+    cal_len = longest_segment(frame, spans.calibration)
+    usable = min(fit_len // 4, cal_len - 8)
+    if usable >= requested:
+        return requested
+    if usable < MIN_WINDOW:
+        need_fit = 4 * MIN_WINDOW
+        need_total = int(np.ceil(max(need_fit / max(1e-9, spans_fraction(spans)),
+                                     (MIN_WINDOW + 8) / max(1e-9, 1 - spans_fraction(spans)))))
+        raise IntakeError(
+            f"too few points for any usable window: the longest gap-free run is {fit_len} points "
+            f"in the fit span and {cal_len} in the calibration span; a window of {MIN_WINDOW} "
+            f"needs at least {need_fit} and {MIN_WINDOW + 8}, i.e. about {need_total} "
+            "gap-free training points in all")
+    warnings.warn(f"short history: using a window of {usable} points instead of {requested}",
+                  stacklevel=2)
+    return int(usable)
+
+
+def spans_fraction(spans: Spans) -> float:
+    total = spans.calibration[1] - spans.fit[0]
+    return (spans.fit[1] - spans.fit[0]) / max(1, total)
+
+
+def save_json(path: Path, obj) -> None:
+    Path(path).write_text(json.dumps(obj, indent=2, default=str) + "\n")
+
+
+def grid_index(frame: Frame, times) -> np.ndarray:
+    """The grid row each timestamp falls on (rounded to the nearest period)."""
+    stamps = pd.to_datetime(pd.Series(times), format="mixed").to_numpy()
+    offset = (stamps - frame.times.values[0]).astype("timedelta64[ns]").astype(np.int64) / 1e9
+    return np.clip(np.rint(offset / frame.period_s).astype(np.int64), 0, len(frame.times) - 1)

@@ -1,0 +1,290 @@
+"""Adversarial training of the teacher, scoring, and the model directory.
+
+Recipe (stable on small data):
+1. adversarial phase: G and D with the non-saturating GAN loss, one-sided label smoothing on
+   D's real targets, Adam with beta1 = 0.5 and a slower D;
+2. encoder inversion: E is fitted so that G(E(x)) reconstructs x (squared error plus a
+   discriminator-feature term and a small latent penalty), on lightly noised inputs; G is
+   refined at a lower learning rate at the same time so the reconstruction can reach the data.
+"""
+
+from __future__ import annotations
+
+import json
+import resource
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Optional
+
+import numpy as np
+import torch
+from torch import nn
+
+from ganlet.compile.data import (
+    Frame,
+    IntakeReport,
+    RobustScaler,
+    Spans,
+    save_json,
+    windows_from,
+)
+from ganlet.compile.model import Detector, DetectorConfig, residuals, score_from_residuals
+
+Progress = Callable[[str, int, int, dict], None]   # (phase, epoch, epochs, losses)
+
+
+@dataclass
+class TrainedModel:
+    detector: Detector
+    scaler: RobustScaler
+    channels: list
+    units: list
+    period_s: float
+    time_col: str
+    spans: Spans
+    summary: dict                      # the intake report
+    history: dict = field(default_factory=dict)
+    # scaled series (fit + calibration spans) and their gap-free segments, for distillation
+    series: Optional[np.ndarray] = None
+    segments: list = field(default_factory=list)
+    max_fill_periods: int = 5
+
+
+def set_seed(seed: int) -> None:
+    torch.manual_seed(seed)
+    np.random.seed(seed % (2**32))
+
+
+def train(frame: Frame, spans: Spans, config: DetectorConfig,
+          progress: Optional[Progress] = None, max_fill_periods: int = 5) -> TrainedModel:
+    """Fit the scaler on the fit span, then the detector on its windows."""
+    set_seed(config.seed)
+    fit_values = frame.values[spans.fit[0]:spans.fit[1]]
+    scaler = RobustScaler.fit(fit_values, frame.channels)
+    end = spans.calibration[1]
+    series = scaler.transform(frame.values[:end])
+    fit_segments = frame.segments(*spans.fit)
+    x_fit, _ = windows_from(series, fit_segments, config.window)
+    if len(x_fit) == 0:
+        raise ValueError("no training windows; the caller should have chosen a shorter window")
+    if len(x_fit) > config.max_train_windows:
+        stride = int(np.ceil(len(x_fit) / config.max_train_windows))
+        x_fit = x_fit[::stride]
+    detector = Detector.build(len(frame.channels), config)
+    history = fit_detector(detector, torch.from_numpy(x_fit), detector.config, progress)
+    return TrainedModel(
+        detector=detector, scaler=scaler, channels=frame.channels, units=frame.units,
+        period_s=frame.period_s, time_col=frame.report.time_col, spans=spans,
+        summary=frame.report.to_json(), history=history, series=series,
+        segments=frame.segments(0, end), max_fill_periods=max_fill_periods,
+    )
+
+
+def batches(n: int, size: int, generator: torch.Generator):
+    order = torch.randperm(n, generator=generator)
+    for k in range(0, n, size):
+        yield order[k:k + size]
+
+
+def fit_detector(det: Detector, x: torch.Tensor, cfg: DetectorConfig,
+                 progress: Optional[Progress] = None) -> dict:
+    g, e, d = det.generator, det.encoder, det.discriminator
+    rng = torch.Generator().manual_seed(cfg.seed)
+    bce = nn.BCEWithLogitsLoss()
+    opt_g = torch.optim.Adam(g.parameters(), lr=cfg.lr_generator, betas=(0.5, 0.9))
+    opt_d = torch.optim.Adam(d.parameters(), lr=cfg.lr_discriminator, betas=(0.5, 0.9))
+    history = {"adversarial": [], "inversion": [], "wall_s": {}}
+    n, window = len(x), x.shape[1]
+
+    started = time.perf_counter()
+    for epoch in range(cfg.adversarial_epochs):
+        sums = {"d_loss": 0.0, "g_loss": 0.0}
+        count = 0
+        for idx in batches(n, cfg.batch_size, rng):
+            real = x[idx]
+            z = torch.randn(len(idx), window, cfg.latent, generator=rng)
+            fake = g(z)
+            d_loss = (bce(d(real), torch.full((len(idx),), cfg.label_smoothing))
+                      + bce(d(fake.detach()), torch.zeros(len(idx))))
+            opt_d.zero_grad()
+            d_loss.backward()
+            opt_d.step()
+            g_loss = bce(d(fake), torch.ones(len(idx)))
+            opt_g.zero_grad()
+            g_loss.backward()
+            opt_g.step()
+            sums["d_loss"] += float(d_loss.detach()) * len(idx)
+            sums["g_loss"] += float(g_loss.detach()) * len(idx)
+            count += len(idx)
+        row = {k: v / count for k, v in sums.items()}
+        history["adversarial"].append(row)
+        if progress:
+            progress("adversarial", epoch + 1, cfg.adversarial_epochs, row)
+    history["wall_s"]["adversarial"] = time.perf_counter() - started
+
+    started = time.perf_counter()
+    opt_e = torch.optim.Adam(
+        [{"params": e.parameters(), "lr": cfg.lr_encoder},
+         {"params": g.parameters(), "lr": cfg.lr_generator * cfg.refine_generator_lr_factor}])
+    d.requires_grad_(False)
+    sched = torch.optim.lr_scheduler.CosineAnnealingLR(opt_e, T_max=max(1, cfg.inversion_epochs))
+    for epoch in range(cfg.inversion_epochs):
+        sums = {"recon": 0.0, "feature": 0.0}
+        count = 0
+        for idx in batches(n, cfg.batch_size, rng):
+            real = x[idx]
+            noisy = real + cfg.train_noise * torch.randn(real.shape, generator=rng)
+            z = e(noisy)
+            recon = g(z)
+            rec_loss = ((recon - real) ** 2).mean()
+            feat_loss = ((d.features(recon) - d.features(real)) ** 2).mean()
+            loss = rec_loss + cfg.feature_weight * feat_loss + cfg.latent_weight * (z ** 2).mean()
+            opt_e.zero_grad()
+            loss.backward()
+            opt_e.step()
+            sums["recon"] += float(rec_loss.detach()) * len(idx)
+            sums["feature"] += float(feat_loss.detach()) * len(idx)
+            count += len(idx)
+        sched.step()
+        row = {k: v / count for k, v in sums.items()}
+        history["inversion"].append(row)
+        if progress:
+            progress("inversion", epoch + 1, cfg.inversion_epochs, row)
+    d.requires_grad_(True)
+    history["wall_s"]["inversion"] = time.perf_counter() - started
+    history["wall_s"]["total"] = sum(history["wall_s"].values())
+    history["train_windows"] = n
+    history["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return history
+
+
+# ----------------------------------------------------------------------------------------------
+# scoring
+
+
+@torch.no_grad()
+def score_windows(det: Detector, windows: np.ndarray, batch: int = 2048):
+    """(scores [N], residuals [N, C]) of scaled windows [N, L, C] through E then G."""
+    det.encoder.eval()
+    det.generator.eval()
+    out = []
+    for k in range(0, len(windows), batch):
+        x = torch.from_numpy(np.ascontiguousarray(windows[k:k + batch], dtype=np.float32))
+        out.append(residuals(x, det.reconstruct(x)).numpy())
+    res = np.concatenate(out) if out else np.zeros((0, windows.shape[-1]), np.float32)
+    return score_from_residuals(torch.from_numpy(res)).numpy(), res
+
+
+def score_series(det: Detector, series: np.ndarray, segments, window: int, hop: int = 1):
+    """Causal per-point score: the score of the window ending at each point (NaN before the
+    first full window of a segment, and between hops). Returns (scores [T], residuals [T, C])."""
+    scores = np.full(len(series), np.nan, np.float64)
+    res = np.full(series.shape, np.nan, np.float64)
+    x, ends = windows_from(series, segments, window, hop)
+    if len(x):
+        s, r = score_windows(det, x)
+        scores[ends] = s
+        res[ends] = r
+    return scores, res
+
+
+def scores_on(model: TrainedModel, values_raw: np.ndarray, segments, hop: int = 1):
+    """Score raw values (same channels, same grid) with the model's scaler."""
+    return score_series(model.detector, model.scaler.transform(values_raw), segments,
+                        model.detector.config.window, hop)
+
+
+# ----------------------------------------------------------------------------------------------
+# the model directory
+
+WEIGHT_FILES = {"generator": "generator.pt", "encoder": "encoder.pt",
+                "discriminator": "discriminator.pt"}
+
+
+def save_model(model: TrainedModel, out: Path) -> Path:
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    det = model.detector
+    for part, name in WEIGHT_FILES.items():
+        torch.save(getattr(det, part).state_dict(), out / name)
+    save_json(out / "config.json", det.config.to_json())
+    save_json(out / "scaler.json", model.scaler.to_json())
+    save_json(out / "data_summary.json", model.summary)
+    save_json(out / "history.json", model.history)
+    save_json(out / "model.json", {
+        "format": "ganlet.model/1",
+        "channels": model.channels, "units": model.units, "period_s": model.period_s,
+        "time_col": model.time_col, "spans": model.spans.to_json(),
+        "max_fill_periods": model.max_fill_periods,
+        "segments": [list(s) for s in model.segments],
+    })
+    np.savez_compressed(out / "series.npz", series=model.series.astype(np.float32))
+    return out
+
+
+def load_model(path: Path) -> TrainedModel:
+    path = Path(path)
+    meta_file = path / "model.json"
+    if not meta_file.exists():
+        raise FileNotFoundError(f"{path} is not a model directory (no model.json); "
+                                "create one with `ganlet train DATA --out DIR`")
+    meta = json.loads(meta_file.read_text())
+    config = DetectorConfig.from_json(json.loads((path / "config.json").read_text()))
+    det = Detector.build(len(meta["channels"]), config)
+    for part, name in WEIGHT_FILES.items():
+        state = torch.load(path / name, weights_only=True)
+        getattr(det, part).load_state_dict(state)
+    spans = Spans(**{k: tuple(v) for k, v in meta["spans"].items()})
+    series = np.load(path / "series.npz", allow_pickle=False)["series"]
+    return TrainedModel(
+        detector=det, scaler=RobustScaler.from_json(json.loads((path / "scaler.json").read_text())),
+        channels=meta["channels"], units=meta["units"], period_s=meta["period_s"],
+        time_col=meta["time_col"], spans=spans,
+        summary=json.loads((path / "data_summary.json").read_text()),
+        history=json.loads((path / "history.json").read_text()), series=series,
+        segments=[tuple(s) for s in meta["segments"]],
+        max_fill_periods=meta.get("max_fill_periods", 5),
+    )
+
+
+def plot_training(model: TrainedModel, frame: Frame, png: Path) -> Path:
+    """Loss curves and the score over the training data (fit and calibration spans)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    h = model.history
+    fig, axes = plt.subplots(3, 1, figsize=(10, 8), constrained_layout=True)
+    adv = h.get("adversarial", [])
+    if adv:
+        axes[0].plot([r["d_loss"] for r in adv], label="D loss")
+        axes[0].plot([r["g_loss"] for r in adv], label="G loss")
+    axes[0].set_title("adversarial phase")
+    axes[0].set_xlabel("epoch")
+    axes[0].legend()
+    inv = h.get("inversion", [])
+    axes[1].semilogy([r["recon"] for r in inv], label="reconstruction")
+    axes[1].semilogy([r["feature"] for r in inv], label="D-feature")
+    axes[1].set_title("encoder inversion (G refined)")
+    axes[1].set_xlabel("epoch")
+    axes[1].legend()
+    end = model.spans.calibration[1]
+    scores, _ = score_series(model.detector, model.series, model.segments,
+                             model.detector.config.window)
+    t = frame.times[:end]
+    axes[2].plot(t, scores[:end], lw=0.6, color="tab:blue")
+    cal = model.spans.calibration
+    axes[2].axvspan(frame.times[cal[0]], frame.times[cal[1] - 1], color="tab:orange", alpha=0.15,
+                    label="calibration span")
+    axes[2].set_yscale("log")
+    axes[2].set_title("score over the training data (window ending at each point)")
+    axes[2].legend()
+    fig.savefig(png, dpi=110)
+    plt.close(fig)
+    return Path(png)
+
+
+def describe(report: IntakeReport) -> str:
+    return report.summary()
