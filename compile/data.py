@@ -223,12 +223,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
                           f"{time_col!r}; check --sep, or name channels with --channels")
 
     raw_times = df[time_col]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        if pd.api.types.is_numeric_dtype(raw_times):
-            times = pd.to_datetime(raw_times, unit="s", errors="coerce")
-        else:
-            times = pd.to_datetime(raw_times, errors="coerce", format="mixed")
+    times = parse_times(raw_times)
     bad_time = times.isna().to_numpy()
     if bad_time.mean() > 0.01 or bad_time.all():
         first = int(np.flatnonzero(bad_time)[0])
@@ -236,8 +231,6 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
                           f"be parsed (first at data row {first + 1}: {raw_times.iloc[first]!r}); "
                           "use ISO 8601 (2026-03-02T10:00:00) or epoch seconds, or pick another "
                           "column with --time-col")
-    if times.dt.tz is not None:
-        times = times.dt.tz_convert("UTC").dt.tz_localize(None)
     values = df[channels].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64, copy=True)
     values[~np.isfinite(values)] = np.nan
     keep = ~bad_time
@@ -264,9 +257,14 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     offsets = (times_np - t0).astype("timedelta64[ns]").astype(np.int64) / 1e9
     slot = np.rint(offsets / period).astype(np.int64)
     n_slots = int(slot[-1]) + 1
-    duplicates = len(slot) - len(np.unique(slot))
+    # Duplicates are rows repeating a timestamp; distinct times sharing a slot (a --period
+    # coarser than the data) are resampling, not duplicates.
+    duplicates = len(times_np) - len(np.unique(times_np))
     if duplicates:
         notes.append(f"{duplicates} duplicate timestamps resolved by averaging")
+    merged = len(np.unique(times_np)) - len(np.unique(slot))
+    if merged:
+        notes.append(f"{merged} rows averaged onto the {fmt_period(period)} grid")
     grid = np.full((n_slots, len(channels)), np.nan)
     grid_df = pd.DataFrame(values).groupby(slot).mean()
     grid[grid_df.index.to_numpy()] = grid_df.to_numpy()
@@ -436,8 +434,25 @@ def save_json(path: Path, obj) -> None:
     Path(path).write_text(json.dumps(obj, indent=2, default=str) + "\n")
 
 
+def parse_times(raw: pd.Series) -> pd.Series:
+    """Times as naive UTC datetimes (NaT where unparsable); numbers are epoch seconds.
+    load_frame and grid_index share it so raw rows map onto the grid they were read into."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if pd.api.types.is_numeric_dtype(raw):
+            times = pd.to_datetime(raw, unit="s", errors="coerce")
+        else:
+            times = pd.to_datetime(raw, errors="coerce", format="mixed")
+    if times.dt.tz is not None:
+        times = times.dt.tz_convert("UTC").dt.tz_localize(None)
+    return times
+
+
 def grid_index(frame: Frame, times) -> np.ndarray:
     """The grid row each timestamp falls on (rounded to the nearest period)."""
-    stamps = pd.to_datetime(pd.Series(times), format="mixed").to_numpy()
+    parsed = parse_times(pd.Series(times))
+    if parsed.isna().any():
+        raise IntakeError(f"{int(parsed.isna().sum())} times cannot be parsed")
+    stamps = parsed.to_numpy()
     offset = (stamps - frame.times.values[0]).astype("timedelta64[ns]").astype(np.int64) / 1e9
     return np.clip(np.rint(offset / frame.period_s).astype(np.int64), 0, len(frame.times) - 1)
