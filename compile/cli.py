@@ -146,7 +146,7 @@ def train(
     config: Optional[Path] = typer.Option(None, help="JSON or TOML file of DetectorConfig fields."),
     adversarial_epochs: Optional[int] = typer.Option(None, "--adversarial-epochs", help="Epochs of the G/D phase."),
     inversion_epochs: Optional[int] = typer.Option(None, "--inversion-epochs", help="Epochs of the encoder phase."),
-    seed: int = typer.Option(0, help="Random seed (runs are reproducible on CPU)."),
+    seed: Optional[int] = typer.Option(None, help="Random seed (default: the config's, else 0; runs are reproducible on CPU)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Learn one machine's normal behaviour from a sensor history."""

@@ -40,7 +40,7 @@ class TrainOptions:
     config_file: Optional[Path] = None
     adversarial_epochs: Optional[int] = None
     inversion_epochs: Optional[int] = None
-    seed: int = 0
+    seed: Optional[int] = None                   # None: the config's own seed
     config: Optional[DetectorConfig] = None      # used as is when given (tests, demo, fleet)
 
     def intake(self) -> IntakeOptions:
@@ -60,7 +60,8 @@ class TrainOptions:
             cfg = replace(cfg, adversarial_epochs=self.adversarial_epochs)
         if self.inversion_epochs is not None:
             cfg = replace(cfg, inversion_epochs=self.inversion_epochs)
-        cfg = replace(cfg, seed=self.seed)
+        if self.seed is not None:
+            cfg = replace(cfg, seed=self.seed)
         if cfg.window < 2:
             raise IntakeError("--window must be at least 2")
         return cfg
