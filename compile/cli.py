@@ -171,6 +171,62 @@ def train(
 
 
 @app.command()
+def boards():
+    """List the board profiles and their budgets."""
+    from ganlet.compile.boards import BOARDS_DIR, DEFAULT_BOARD, board_table, list_boards
+
+    with user_errors():
+        typer.echo(board_table(list_boards()))
+        typer.echo(f"\ndefault board: {DEFAULT_BOARD}   (profiles in {BOARDS_DIR}; "
+                   "pass --board NAME or --board PATH.toml)")
+
+
+@app.command("compile")
+def compile_cmd(
+    model_dir: Path = typer.Argument(..., help="Model directory written by `ganlet train`."),
+    out: Path = typer.Option(..., "--out", "-o", help="Bundle directory to write (replaced if present)."),
+    board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512)."),
+    threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
+    archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
+    sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256."),
+    name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest (default: the model folder's name)."),
+    distil_epochs: int = typer.Option(30, "--distil-epochs", help="Distillation epochs."),
+    seed: int = typer.Option(0, help="Random seed of the distillation."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
+):
+    """Size a student to the board, distil, quantise to int8, export ONNX and pack the bundle."""
+    from ganlet.compile.distil import DistilConfig
+    from ganlet.compile.pack import CompileOptions, compile_dir
+
+    with user_errors():
+        key = read_key(sign_key) if sign_key else None
+        if not (model_dir / "model.json").exists():
+            raise UsageProblem(f"{model_dir} is not a model directory (no model.json); "
+                               "create one with `ganlet train DATA --out DIR`")
+        options = CompileOptions(board=board, threshold=threshold, archive=archive, sign_key=key,
+                                 name=name or model_dir.resolve().name,
+                                 distil=DistilConfig(epochs=distil_epochs, seed=seed))
+        progress, stop = progress_printer(quiet)
+        echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))
+        try:
+            result = compile_dir(model_dir, out, options, progress=progress, echo=echo)
+        finally:
+            stop()
+        if not quiet:
+            typer.echo(result.describe())
+
+
+def read_key(path: Path) -> bytes:
+    if not path.exists():
+        raise UsageProblem(f"key file {path} not found")
+    key = path.read_bytes().strip()
+    if len(key) < 16:
+        raise UsageProblem(f"key file {path} holds {len(key)} bytes; use at least 16 random bytes "
+                           "(e.g. `head -c 32 /dev/urandom | base64 > key`)")
+    return key
+
+
+@app.command()
 def demo(
     out: Path = typer.Option(Path("ganlet-demo"), "--out", "-o", help="Folder for the demo's data, model and reports."),
     quick: bool = typer.Option(False, help="Fewer epochs: a fast smoke run of the whole chain."),
