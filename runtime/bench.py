@@ -1,0 +1,194 @@
+"""On-device figures for a bundle: per-hop latency, throughput, memory, cold start, vs the budget.
+
+Figures are printed, never asserted. Measured keys (also the names a board budget/estimate may
+use, so they can be compared line by line):
+
+    latency_ms_p50, latency_ms_p99   one window scored, as the stream does it once per hop
+    hops_per_s                       1000 / mean latency
+    cold_start_s                     `python run.py stream` spawned -> its first score event
+    peak_rss_mb                      ru_maxrss of that stream process (os.wait4 rusage, the
+                                     same figure resource.getrusage reports), per backend;
+                                     without the cold start: this process's own ru_maxrss
+    bench_rss_mb                     resource.getrusage(RUSAGE_SELF).ru_maxrss of this process
+                                     (a high-water mark: later backends include earlier ones)
+    bundle_mb                        bytes on disk of the bundle's listed files
+
+Comparison: a key present in board.budget (and/or board.estimate) and measured here is listed
+with its budget, estimate and measured value; hops_per_s must be >= budget, the rest <=.
+"""
+
+import json
+import os
+import resource
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Dict, List, Optional, Tuple
+
+import numpy as np
+
+from .intake import format_time
+from .scorer import available_backends, make_scorer
+
+HIGHER_IS_BETTER = ("hops_per_s",)
+
+
+def _rss_mb(ru_maxrss: float) -> float:
+    kb = ru_maxrss  # kilobytes on Linux
+    if sys.platform == "darwin":  # bytes there
+        kb = kb / 1024.0
+    return kb / 1024.0
+
+
+def _peak_rss_mb() -> float:
+    return _rss_mb(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+
+
+def time_hops(scorer, window: int, n_channels: int, hops: int, seed: int = 0) -> List[float]:
+    """Milliseconds per single-window score over `hops` calls (after 3 warm-up calls)."""
+    rng = np.random.default_rng(seed)
+    windows = rng.standard_normal((hops + 3, 1, window, n_channels)).astype(np.float32)
+    for w in windows[:3]:
+        scorer.score_windows(w)
+    out = []
+    for w in windows[3:]:
+        t0 = time.perf_counter()
+        scorer.score_windows(w)
+        out.append((time.perf_counter() - t0) * 1000.0)
+    return out
+
+
+def _run_command(bundle) -> List[str]:
+    run_py = Path(bundle.dir) / "run.py"
+    if run_py.is_file():
+        return [sys.executable, str(run_py)]
+    # developing from the source tree: the same CLI through the installed package
+    code = ("import sys; from ganlet.runtime.cli import main; d = sys.argv.pop(1); "
+            "sys.exit(main(sys.argv[1:], bundle_dir=d))")
+    return [sys.executable, "-c", code, str(bundle.dir)]
+
+
+def cold_start(bundle, backend: str, timeout_s: float = 120.0) -> Tuple[Optional[float], float]:
+    """(seconds from spawning the stream command to its first score event on stdout,
+    peak RSS in MB of that process)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        csv_path = Path(tmp) / "cold.csv"
+        lines = [",".join([bundle.time_column] + list(bundle.channels))]
+        for i in range(bundle.window):
+            vals = [format(float(c), ".6g") for c in bundle.center]
+            lines.append(",".join([format_time(i * bundle.period_s)] + vals))
+        csv_path.write_text("\n".join(lines) + "\n")
+        cmd = _run_command(bundle) + [
+            "stream", "--input", str(csv_path), "--backend", backend, "--score-every", "1",
+            "--heartbeat", "0", "--checkpoint-every", "0",
+        ]
+        t0 = time.perf_counter()
+        proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
+        found = None
+        try:
+            for line in proc.stdout:
+                if b'"event":"score"' in line:
+                    found = time.perf_counter() - t0
+                    break
+                if time.perf_counter() - t0 > timeout_s:
+                    break
+        finally:
+            proc.kill()
+            _, status, usage = os.wait4(proc.pid, 0)
+            proc.returncode = -signal.SIGKILL  # reaped here, so Popen must not wait again
+            proc.stdout.close()
+        return found, _rss_mb(usage.ru_maxrss)
+
+
+def bundle_mb(bundle) -> float:
+    total = os.path.getsize(Path(bundle.dir) / "manifest.json")
+    for rel in bundle.manifest["files"]:
+        p = Path(bundle.dir) / rel
+        if p.is_file():
+            total += p.stat().st_size
+    return total / 1e6
+
+
+def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
+              cold_start_run: bool = True) -> Dict:
+    backends = backends or available_backends(bundle)
+    results = {}
+    for name in backends:
+        scorer = make_scorer(bundle, name)
+        ms = np.asarray(time_hops(scorer, bundle.window, len(bundle.channels), hops))
+        start_s, rss = cold_start(bundle, scorer.name) if cold_start_run else (None, None)
+        results[scorer.name] = {
+            "latency_ms_p50": float(np.percentile(ms, 50)),
+            "latency_ms_p99": float(np.percentile(ms, 99)),
+            "hops_per_s": float(1000.0 / ms.mean()) if ms.mean() > 0 else float("inf"),
+            "cold_start_s": start_s,
+            "peak_rss_mb": rss if rss is not None else _peak_rss_mb(),
+            "bench_rss_mb": _peak_rss_mb(),
+            "bundle_mb": bundle_mb(bundle),
+        }
+    board = bundle.manifest.get("board", {})
+    budget = board.get("budget", {}) or {}
+    estimate = board.get("estimate", {}) or {}
+    comparison = {}
+    for name, measured in results.items():
+        rows = []
+        for key in sorted(set(budget) | set(estimate)):
+            m = measured.get(key)
+            b = budget.get(key)
+            ok = None
+            if m is not None and isinstance(b, (int, float)):
+                ok = m >= b if key in HIGHER_IS_BETTER else m <= b
+            rows.append({"key": key, "budget": b, "estimate": estimate.get(key),
+                         "measured": m, "within_budget": ok})
+        comparison[name] = rows
+    return {
+        "bundle": bundle.manifest.get("name"),
+        "bundle_id": bundle.bundle_id,
+        "board": board.get("name"),
+        "window": bundle.window,
+        "hop": bundle.hop,
+        "channels": len(bundle.channels),
+        "hops_timed": hops,
+        "python": sys.version.split()[0],
+        "backends": results,
+        "comparison": comparison,
+    }
+
+
+def _fmt(v) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, bool):
+        return "yes" if v else "NO"
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    return str(v)
+
+
+def format_report(report: Dict) -> str:
+    out = [
+        f"bundle {report['bundle']} ({report['bundle_id'][:12]}) on board {report['board']}: "
+        f"window {report['window']}, hop {report['hop']}, {report['channels']} channels, "
+        f"{report['hops_timed']} hops timed, Python {report['python']}"
+    ]
+    for name, m in report["backends"].items():
+        out.append(f"\n[{name}]")
+        for key in ("latency_ms_p50", "latency_ms_p99", "hops_per_s", "cold_start_s",
+                    "peak_rss_mb", "bench_rss_mb", "bundle_mb"):
+            out.append(f"  {key:<16} {_fmt(m[key])}")
+        rows = report["comparison"].get(name) or []
+        if rows:
+            out.append(f"  {'budget key':<16} {'budget':>10} {'estimate':>10} {'measured':>10}  ok")
+            for r in rows:
+                out.append(
+                    f"  {r['key']:<16} {_fmt(r['budget']):>10} {_fmt(r['estimate']):>10} "
+                    f"{_fmt(r['measured']):>10}  {_fmt(r['within_budget'])}"
+                )
+    return "\n".join(out)
+
+
+def to_json(report: Dict) -> str:
+    return json.dumps(report, indent=2, sort_keys=True)

@@ -1,0 +1,397 @@
+"""The bundle manifest: the one definition of what a bundle is, its writer and its reader.
+
+A bundle is a folder:
+
+    manifest.json  manifest.sig (optional)  model.onnx  weights.npz  run.py  INSTALL.txt
+    ganlet/runtime/*.py   (a copy of this package, so the gateway needs no pip install)
+
+manifest.json lists every other file with its SHA-256, so a gateway can prove the folder is the
+one the workstation packed. manifest.sig, when present, is the hex HMAC-SHA256 of the exact
+manifest.json bytes under a shared key. The reader (load_bundle) is the authority; compile/
+writes bundles through write_manifest so both halves agree by construction.
+"""
+
+import hashlib
+import hmac
+import json
+from datetime import datetime
+from pathlib import Path, PurePosixPath
+from typing import Dict, List, Optional
+
+import numpy as np
+
+SCHEMA_VERSION = "1.0"
+MANIFEST_NAME = "manifest.json"
+SIGNATURE_NAME = "manifest.sig"
+_SKIP_DIRS = ("__pycache__",)
+
+# key -> accepted python types (bool is excluded from numbers explicitly below)
+_REQUIRED = {
+    "schema_version": (str,),
+    "tool_version": (str,),
+    "created": (str,),
+    "name": (str,),
+    "time_column": (str,),
+    "channels": (list,),
+    "period_s": (int, float),
+    "max_gap_periods": (int,),
+    "scaler": (dict,),
+    "window": (int,),
+    "hop": (int,),
+    "network": (dict,),
+    "score": (dict,),
+    "threshold": (dict,),
+    "alerting": (dict,),
+    "board": (dict,),
+    "parity": (dict,),
+    "files": (dict,),
+}
+_NETWORK_KEYS = {
+    "encoder": (list,),
+    "latent": (int,),
+    "generator": (list,),
+    "weights": (str,),
+    "onnx": (str,),
+    "quantisation": (str,),
+    "onnx_opset": (int,),
+}
+_ALERTING_KEYS = ("warmup_hops", "min_hops", "close_ratio", "cooldown_hops")
+
+
+class BundleError(Exception):
+    """The bundle cannot be used. The message says what is wrong and what to do."""
+
+
+def file_sha256(path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 16), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _bundle_files(bundle_dir: Path) -> List[str]:
+    """Every file under bundle_dir as a posix relative path, minus the manifest and caches."""
+    out = []
+    for p in sorted(bundle_dir.rglob("*")):
+        rel = p.relative_to(bundle_dir)
+        if not p.is_file() or any(part in _SKIP_DIRS for part in rel.parts):
+            continue
+        relposix = rel.as_posix()
+        if relposix in (MANIFEST_NAME, SIGNATURE_NAME):
+            continue
+        out.append(relposix)
+    return out
+
+
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _check_type(where: str, value, types) -> None:
+    if isinstance(value, bool) and bool not in types:
+        ok = False
+    else:
+        ok = isinstance(value, types)
+    if not ok:
+        names = " or ".join(t.__name__ for t in types)
+        raise BundleError(
+            f"manifest: {where} must be {names}, got {type(value).__name__}; "
+            "re-pack the bundle with the workstation tool"
+        )
+
+
+def _schema_major(version: str) -> int:
+    try:
+        return int(str(version).split(".")[0])
+    except ValueError:
+        raise BundleError(
+            f"manifest: schema_version {version!r} is not of the form MAJOR.MINOR; "
+            "re-pack the bundle"
+        ) from None
+
+
+def validate_manifest(manifest: dict) -> None:
+    """Check required keys and their types. Raises BundleError naming the first problem."""
+    if not isinstance(manifest, dict):
+        raise BundleError("manifest: top level must be a JSON object; re-pack the bundle")
+    missing = [k for k in _REQUIRED if k not in manifest]
+    if missing:
+        raise BundleError(
+            f"manifest: missing required key(s) {', '.join(missing)}; "
+            "re-pack the bundle with a matching workstation tool"
+        )
+    for key, types in _REQUIRED.items():
+        _check_type(key, manifest[key], types)
+
+    major = _schema_major(manifest["schema_version"])
+    ours = _schema_major(SCHEMA_VERSION)
+    if major > ours:
+        raise BundleError(
+            f"manifest: bundle schema {manifest['schema_version']} is newer than this runtime "
+            f"understands ({SCHEMA_VERSION}); update the gateway runtime (use the run.py that "
+            "ships inside the bundle) or re-pack with an older tool"
+        )
+    if major < ours:
+        raise BundleError(
+            f"manifest: bundle schema {manifest['schema_version']} is older than this runtime "
+            f"supports ({SCHEMA_VERSION}); re-pack the bundle"
+        )
+    try:
+        datetime.fromisoformat(manifest["created"].replace("Z", "+00:00"))
+    except ValueError:
+        raise BundleError(
+            f"manifest: created {manifest['created']!r} is not an ISO 8601 time"
+        ) from None
+
+    channels = manifest["channels"]
+    if not channels:
+        raise BundleError("manifest: channels is empty; the model needs at least one input")
+    names = []
+    for i, ch in enumerate(channels):
+        _check_type(f"channels[{i}]", ch, (dict,))
+        for k in ("name", "unit"):
+            if k not in ch:
+                raise BundleError(f"manifest: channels[{i}] lacks {k!r}")
+            _check_type(f"channels[{i}].{k}", ch[k], (str,))
+        names.append(ch["name"])
+    if len(set(names)) != len(names):
+        raise BundleError(f"manifest: channel names are not unique: {names}")
+    if manifest["time_column"] in names:
+        raise BundleError("manifest: time_column is also listed as a channel")
+
+    if not (_is_number(manifest["period_s"]) and manifest["period_s"] > 0):
+        raise BundleError("manifest: period_s must be a positive number of seconds")
+    if manifest["max_gap_periods"] < 0:
+        raise BundleError("manifest: max_gap_periods must be >= 0")
+    if manifest["window"] < 1 or manifest["hop"] < 1:
+        raise BundleError("manifest: window and hop must be >= 1")
+
+    scaler = manifest["scaler"]
+    if scaler.get("kind") != "robust":
+        raise BundleError(f"manifest: scaler.kind {scaler.get('kind')!r} unknown (expected 'robust')")
+    for k in ("center", "scale"):
+        vals = scaler.get(k)
+        if not isinstance(vals, list) or len(vals) != len(channels) or not all(
+            _is_number(v) for v in vals
+        ):
+            raise BundleError(
+                f"manifest: scaler.{k} must be a list of {len(channels)} numbers (one per channel)"
+            )
+    if any(not (v > 0) for v in scaler["scale"]):
+        raise BundleError("manifest: scaler.scale must be strictly positive")
+
+    net = manifest["network"]
+    for key, types in _NETWORK_KEYS.items():
+        if key not in net:
+            raise BundleError(f"manifest: network lacks {key!r}")
+        _check_type(f"network.{key}", net[key], types)
+    for part in ("encoder", "generator"):
+        if not net[part] or not all(isinstance(h, int) and h > 0 for h in net[part]):
+            raise BundleError(f"manifest: network.{part} must be a non-empty list of sizes")
+
+    score = manifest["score"]
+    if score.get("combine") != "mean" or not isinstance(score.get("residual"), str):
+        raise BundleError("manifest: score must be {'residual': str, 'combine': 'mean'}")
+    if not isinstance(manifest["threshold"].get("kind"), str):
+        raise BundleError("manifest: threshold.kind must name a policy (static, rolling, pot)")
+    for k in _ALERTING_KEYS:
+        if k not in manifest["alerting"]:
+            raise BundleError(f"manifest: alerting lacks {k!r}")
+        if not _is_number(manifest["alerting"][k]):
+            raise BundleError(f"manifest: alerting.{k} must be a number")
+    board = manifest["board"]
+    if not isinstance(board.get("name"), str):
+        raise BundleError("manifest: board.name must be a string")
+    for k in ("budget", "estimate"):
+        if not isinstance(board.get(k), dict):
+            raise BundleError(f"manifest: board.{k} must be an object")
+    for rel, digest in manifest["files"].items():
+        p = PurePosixPath(rel)
+        if p.is_absolute() or ".." in p.parts or not isinstance(digest, str) or len(digest) != 64:
+            raise BundleError(f"manifest: files entry {rel!r} is not a safe relative path + sha256")
+
+
+def sign_bytes(key: bytes, data: bytes) -> str:
+    return hmac.new(key, data, hashlib.sha256).hexdigest()
+
+
+def write_manifest(bundle_dir, manifest: dict, sign_key: Optional[bytes] = None) -> Path:
+    """Fill manifest['files'] from the folder, validate, write manifest.json (+ manifest.sig)."""
+    bundle_dir = Path(bundle_dir)
+    manifest["files"] = {rel: file_sha256(bundle_dir / rel) for rel in _bundle_files(bundle_dir)}
+    validate_manifest(manifest)
+    path = bundle_dir / MANIFEST_NAME
+    data = (json.dumps(manifest, sort_keys=True, indent=2) + "\n").encode("utf-8")
+    path.write_bytes(data)
+    sig_path = bundle_dir / SIGNATURE_NAME
+    if sign_key is not None:
+        sig_path.write_text(sign_bytes(sign_key, data) + "\n")
+    elif sig_path.exists():
+        sig_path.unlink()  # a stale signature would no longer match
+    return path
+
+
+class Bundle:
+    """A verified bundle: manifest fields as attributes, weights as float32 arrays."""
+
+    def __init__(self, bundle_dir: Path, manifest: dict, manifest_bytes: bytes, signed: bool):
+        self.dir = Path(bundle_dir)
+        self.manifest = manifest
+        self.bundle_id = hashlib.sha256(manifest_bytes).hexdigest()
+        self.signed = signed
+        self.channels = [c["name"] for c in manifest["channels"]]
+        self.units = [c["unit"] for c in manifest["channels"]]
+        self.time_column = manifest["time_column"]
+        self.period_s = float(manifest["period_s"])
+        self.max_gap_periods = int(manifest["max_gap_periods"])
+        self.window = int(manifest["window"])
+        self.hop = int(manifest["hop"])
+        self.center = np.asarray(manifest["scaler"]["center"], dtype=np.float32)
+        self.scale = np.asarray(manifest["scaler"]["scale"], dtype=np.float32)
+        self.threshold_policy = dict(manifest["threshold"])
+        self.alerting = dict(manifest["alerting"])
+        self.weights_path = self.dir / manifest["network"]["weights"]
+        self.onnx_path = self.dir / manifest["network"]["onnx"]
+        self._weights = None  # type: Optional[Dict[str, np.ndarray]]
+
+    @property
+    def weights(self) -> Dict[str, np.ndarray]:
+        if self._weights is None:
+            from .weights import load_weights
+
+            self._weights = {
+                k: np.asarray(v, dtype=np.float32) for k, v in load_weights(self.weights_path).items()
+            }
+        return self._weights
+
+    def summary(self) -> dict:
+        m = self.manifest
+        return {
+            "name": m["name"],
+            "bundle_id": self.bundle_id,
+            "schema_version": m["schema_version"],
+            "tool_version": m["tool_version"],
+            "created": m["created"],
+            "signed": self.signed,
+            "channels": [{"name": n, "unit": u} for n, u in zip(self.channels, self.units)],
+            "time_column": self.time_column,
+            "period_s": self.period_s,
+            "window": self.window,
+            "hop": self.hop,
+            "threshold": self.threshold_policy.get("kind"),
+            "board": m["board"].get("name"),
+            "files": len(m["files"]),
+        }
+
+
+def _expected_shapes(manifest: dict) -> Dict[str, tuple]:
+    """Weight shapes implied by the manifest (ONNX LSTM layout, see DEVELOPERS.md)."""
+    net = manifest["network"]
+    n_ch = len(manifest["channels"])
+    shapes = {}
+    for prefix, sizes, n_in, n_out in (
+        ("enc", net["encoder"], n_ch, net["latent"]),
+        ("gen", net["generator"], net["latent"], n_ch),
+    ):
+        prev = n_in
+        for k, h in enumerate(sizes):
+            shapes[f"{prefix}.lstm{k}.W"] = (1, 4 * h, prev)
+            shapes[f"{prefix}.lstm{k}.R"] = (1, 4 * h, h)
+            shapes[f"{prefix}.lstm{k}.B"] = (1, 8 * h)
+            prev = h
+        shapes[f"{prefix}.head.W"] = (n_out, prev)
+        shapes[f"{prefix}.head.b"] = (n_out,)
+    return shapes
+
+
+def check_weight_shapes(manifest: dict, weights: Dict[str, np.ndarray]) -> None:
+    expected = _expected_shapes(manifest)
+    missing = sorted(set(expected) - set(weights))
+    if missing:
+        raise BundleError(
+            f"weights: missing array(s) {', '.join(missing)} for the network described in the "
+            "manifest; re-pack the bundle"
+        )
+    for key, shape in expected.items():
+        got = tuple(np.shape(weights[key]))
+        if got != shape:
+            raise BundleError(
+                f"weights: {key} has shape {got}, the manifest implies {shape} "
+                f"({len(manifest['channels'])} channels); re-pack the bundle"
+            )
+
+
+def load_bundle(
+    bundle_dir,
+    key: Optional[bytes] = None,
+    require_signature: bool = False,
+    check_files: bool = True,
+) -> Bundle:
+    """Read, verify and return a bundle. Raises BundleError saying what is wrong."""
+    bundle_dir = Path(bundle_dir)
+    mpath = bundle_dir / MANIFEST_NAME
+    if not mpath.is_file():
+        raise BundleError(f"{mpath}: no manifest.json here; point at the bundle folder")
+    raw = mpath.read_bytes()
+    try:
+        manifest = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise BundleError(f"{mpath}: not valid JSON ({exc}); copy the bundle again") from None
+
+    # Refuse a newer major schema before anything else: its keys may mean other things.
+    if isinstance(manifest, dict) and "schema_version" in manifest:
+        major = _schema_major(manifest["schema_version"])
+        if major > _schema_major(SCHEMA_VERSION):
+            raise BundleError(
+                f"manifest: bundle schema {manifest['schema_version']} is newer than this "
+                f"runtime understands ({SCHEMA_VERSION}); run the bundle's own run.py or update "
+                "the gateway runtime"
+            )
+
+    sig_path = bundle_dir / SIGNATURE_NAME
+    signed = sig_path.is_file()
+    if require_signature and key is None:
+        raise BundleError("a signature is required but no key was given; pass --key FILE")
+    if key is not None:
+        if not signed:
+            raise BundleError(
+                f"{bundle_dir}: a key was given but the bundle has no manifest.sig; "
+                "re-pack it with the signing key"
+            )
+        expected = sign_bytes(key, raw)
+        given = sig_path.read_text().strip()
+        if not hmac.compare_digest(expected, given):
+            raise BundleError(
+                f"{sig_path}: signature does not match manifest.json under the given key; "
+                "the manifest was changed or the key is wrong - do not run this bundle"
+            )
+
+    validate_manifest(manifest)
+
+    if check_files:
+        for rel, digest in sorted(manifest["files"].items()):
+            fpath = bundle_dir / rel
+            if not fpath.is_file():
+                raise BundleError(
+                    f"{rel}: listed in the manifest but missing from {bundle_dir}; "
+                    "copy the whole bundle folder again"
+                )
+            if file_sha256(fpath) != digest:
+                raise BundleError(
+                    f"{rel}: SHA-256 does not match the manifest (file changed or corrupted); "
+                    "copy the bundle again and do not edit files inside it"
+                )
+        listed = set(manifest["files"])
+        stray = [r for r in _bundle_files(bundle_dir) if r.endswith(".py") and r not in listed]
+        if stray:
+            raise BundleError(
+                f"{stray[0]}: Python file not listed in the manifest; remove it "
+                "(only packed code may run from a bundle)"
+            )
+
+    bundle = Bundle(bundle_dir, manifest, raw, signed)
+    if not bundle.weights_path.is_file():
+        raise BundleError(f"{bundle.weights_path}: weights file missing; copy the bundle again")
+    check_weight_shapes(manifest, bundle.weights)
+    return bundle

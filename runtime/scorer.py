@@ -1,0 +1,101 @@
+"""Scoring backends: the same score from the numpy LSTM or from onnxruntime on model.onnx.
+
+Both take scaled float32 windows [N, L, C] and return (scores [N], residuals [N, C]). The score
+is always score_from_residuals(residuals) (mean over channels), computed here in numpy for both
+backends, so the two can only differ by the network arithmetic itself.
+"""
+
+from typing import Tuple
+
+import numpy as np
+
+from .lstm import Network, score_from_residuals
+from .manifest import BundleError
+
+BACKENDS = ("auto", "numpy", "onnxruntime")
+ONNX_INPUT = "window"  # names fixed by the bundle's model.onnx (compile/export.py)
+ONNX_RESIDUALS = "residuals"
+
+
+def _as_windows(windows, n_channels: int) -> np.ndarray:
+    w = np.ascontiguousarray(windows, dtype=np.float32)
+    if w.ndim != 3 or w.shape[2] != n_channels:
+        raise ValueError(f"windows must be [N, L, {n_channels}], got {w.shape}")
+    return w
+
+
+class NumpyScorer:
+    name = "numpy"
+
+    def __init__(self, bundle):
+        self.n_channels = len(bundle.channels)
+        self.network = Network(bundle.weights)
+
+    def score_windows(self, windows) -> Tuple[np.ndarray, np.ndarray]:
+        _, residuals = self.network.forward(_as_windows(windows, self.n_channels))
+        return score_from_residuals(residuals), residuals
+
+
+class OnnxRuntimeScorer:
+    name = "onnxruntime"
+
+    def __init__(self, bundle):
+        import onnxruntime as ort  # optional on the gateway; make_scorer handles its absence
+
+        self.n_channels = len(bundle.channels)
+        opts = ort.SessionOptions()
+        # one thread: a gateway shares its cores with other services, and results reproduce
+        opts.intra_op_num_threads = 1
+        opts.inter_op_num_threads = 1
+        self.session = ort.InferenceSession(
+            str(bundle.onnx_path), opts, providers=["CPUExecutionProvider"]
+        )
+        inputs = [i.name for i in self.session.get_inputs()]
+        outputs = [o.name for o in self.session.get_outputs()]
+        if ONNX_INPUT not in inputs or ONNX_RESIDUALS not in outputs:
+            raise BundleError(
+                f"{bundle.onnx_path}: expected input {ONNX_INPUT!r} and output "
+                f"{ONNX_RESIDUALS!r}, found inputs {inputs} outputs {outputs}; re-pack the bundle"
+            )
+
+    def score_windows(self, windows) -> Tuple[np.ndarray, np.ndarray]:
+        w = _as_windows(windows, self.n_channels)
+        (residuals,) = self.session.run([ONNX_RESIDUALS], {ONNX_INPUT: w})
+        residuals = np.asarray(residuals, dtype=np.float32)
+        return score_from_residuals(residuals), residuals
+
+
+def onnxruntime_available() -> bool:
+    try:
+        import onnxruntime  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def available_backends(bundle) -> list:
+    out = ["numpy"]
+    if onnxruntime_available() and bundle.onnx_path.is_file():
+        out.append("onnxruntime")
+    return out
+
+
+def make_scorer(bundle, backend: str = "auto"):
+    """auto = onnxruntime when importable and model.onnx is present, else numpy."""
+    if backend not in BACKENDS:
+        raise ValueError(f"unknown backend {backend!r}; choose one of {', '.join(BACKENDS)}")
+    if backend == "auto":
+        backend = "onnxruntime" if "onnxruntime" in available_backends(bundle) else "numpy"
+    if backend == "numpy":
+        return NumpyScorer(bundle)
+    if not onnxruntime_available():
+        raise BundleError(
+            "backend 'onnxruntime' was asked for but the onnxruntime package cannot be imported "
+            "on this machine; install it (pip install onnxruntime) or use --backend numpy"
+        )
+    if not bundle.onnx_path.is_file():
+        raise BundleError(
+            f"backend 'onnxruntime' needs {bundle.onnx_path.name} but the bundle has none; "
+            "use --backend numpy"
+        )
+    return OnnxRuntimeScorer(bundle)
