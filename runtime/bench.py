@@ -1,7 +1,6 @@
 """On-device figures for a bundle: per-hop latency, throughput, memory, cold start, vs the budget.
 
-Figures are printed, never asserted. Measured keys (also the names a board budget/estimate may
-use, so they can be compared line by line):
+Figures are printed, never asserted. Measured keys:
 
     latency_ms_p50, latency_ms_p99   one window scored, as the stream does it once per hop
     hops_per_s                       1000 / mean latency
@@ -11,10 +10,21 @@ use, so they can be compared line by line):
                                      without the cold start: this process's own ru_maxrss
     bench_rss_mb                     resource.getrusage(RUSAGE_SELF).ru_maxrss of this process
                                      (a high-water mark: later backends include earlier ones)
-    bundle_mb                        bytes on disk of the bundle's listed files
+    bundle_kb                        bytes on disk of the whole bundle
 
-Comparison: a key present in board.budget (and/or board.estimate) and measured here is listed
-with its budget, estimate and measured value; hops_per_s must be >= budget, the rest <=.
+and the same quantities under the names the manifest's board budget / estimate use
+(compile/pack.py), so they can be compared line by line:
+
+    hop_ms          = latency_ms_p99 (a budget per hop is met by the slow hops too)
+    ram_mb          = peak_rss_mb
+    storage_kb      = bundle files outside ganlet/ (the runtime copy is not counted, as in
+                      the board profiles)
+    flops_per_hop   = Network.flops_per_window(window) (one window per hop)
+    mflops_single_core = flops_per_hop / mean latency (achieved, numpy or onnxruntime)
+    onnxruntime     = whether onnxruntime is importable here
+
+Lower is better for hop_ms, ram_mb, storage_kb and the latency / memory / start-up figures,
+higher for hops_per_s; other keys are listed for information (no pass/fail).
 """
 
 import json
@@ -31,9 +41,12 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 
 from .intake import format_time
-from .scorer import available_backends, make_scorer
+from .lstm import Network
+from .scorer import available_backends, make_scorer, onnxruntime_available
 
 HIGHER_IS_BETTER = ("hops_per_s",)
+LOWER_IS_BETTER = ("hop_ms", "ram_mb", "storage_kb", "latency_ms_p50", "latency_ms_p99",
+                   "peak_rss_mb", "cold_start_s", "bundle_kb")
 
 
 def _rss_mb(ru_maxrss: float) -> float:
@@ -103,13 +116,13 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0) -> Tuple[Optional
         return found, _rss_mb(usage.ru_maxrss)
 
 
-def bundle_mb(bundle) -> float:
+def bundle_kb(bundle, runtime_copy: bool = True) -> float:
     total = os.path.getsize(Path(bundle.dir) / "manifest.json")
     for rel in bundle.manifest["files"]:
         p = Path(bundle.dir) / rel
-        if p.is_file():
+        if p.is_file() and (runtime_copy or not rel.startswith("ganlet/")):
             total += p.stat().st_size
-    return total / 1e6
+    return total / 1024.0
 
 
 def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
@@ -120,15 +133,25 @@ def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
         scorer = make_scorer(bundle, name)
         ms = np.asarray(time_hops(scorer, bundle.window, len(bundle.channels), hops))
         start_s, rss = cold_start(bundle, scorer.name) if cold_start_run else (None, None)
-        results[scorer.name] = {
+        flops = Network(bundle.weights).flops_per_window(bundle.window)
+        m = {
             "latency_ms_p50": float(np.percentile(ms, 50)),
             "latency_ms_p99": float(np.percentile(ms, 99)),
-            "hops_per_s": float(1000.0 / ms.mean()) if ms.mean() > 0 else float("inf"),
+            "hops_per_s": float(1000.0 / ms.mean()),
             "cold_start_s": start_s,
             "peak_rss_mb": rss if rss is not None else _peak_rss_mb(),
             "bench_rss_mb": _peak_rss_mb(),
-            "bundle_mb": bundle_mb(bundle),
+            "bundle_kb": bundle_kb(bundle),
         }
+        m.update({
+            "hop_ms": m["latency_ms_p99"],
+            "ram_mb": m["peak_rss_mb"],
+            "storage_kb": bundle_kb(bundle, runtime_copy=False),
+            "flops_per_hop": flops,
+            "mflops_single_core": flops / (ms.mean() * 1e-3) / 1e6,
+            "onnxruntime": onnxruntime_available(),
+        })
+        results[scorer.name] = m
     board = bundle.manifest.get("board", {})
     budget = board.get("budget", {}) or {}
     estimate = board.get("estimate", {}) or {}
@@ -139,8 +162,11 @@ def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
             m = measured.get(key)
             b = budget.get(key)
             ok = None
-            if m is not None and isinstance(b, (int, float)):
-                ok = m >= b if key in HIGHER_IS_BETTER else m <= b
+            if m is not None and isinstance(b, (int, float)) and not isinstance(b, bool):
+                if key in HIGHER_IS_BETTER:
+                    ok = m >= b
+                elif key in LOWER_IS_BETTER:
+                    ok = m <= b
             rows.append({"key": key, "budget": b, "estimate": estimate.get(key),
                          "measured": m, "within_budget": ok})
         comparison[name] = rows
@@ -177,14 +203,15 @@ def format_report(report: Dict) -> str:
     for name, m in report["backends"].items():
         out.append(f"\n[{name}]")
         for key in ("latency_ms_p50", "latency_ms_p99", "hops_per_s", "cold_start_s",
-                    "peak_rss_mb", "bench_rss_mb", "bundle_mb"):
-            out.append(f"  {key:<16} {_fmt(m[key])}")
+                    "peak_rss_mb", "bench_rss_mb", "bundle_kb", "storage_kb", "flops_per_hop",
+                    "mflops_single_core"):
+            out.append(f"  {key:<18} {_fmt(m[key])}")
         rows = report["comparison"].get(name) or []
         if rows:
-            out.append(f"  {'budget key':<16} {'budget':>10} {'estimate':>10} {'measured':>10}  ok")
+            out.append(f"  {'budget key':<18} {'budget':>10} {'estimate':>10} {'measured':>10}  ok")
             for r in rows:
                 out.append(
-                    f"  {r['key']:<16} {_fmt(r['budget']):>10} {_fmt(r['estimate']):>10} "
+                    f"  {r['key']:<18} {_fmt(r['budget']):>10} {_fmt(r['estimate']):>10} "
                     f"{_fmt(r['measured']):>10}  {_fmt(r['within_budget'])}"
                 )
     return "\n".join(out)

@@ -37,7 +37,7 @@ from typing import Dict, List, Optional
 import numpy as np
 
 from .alerts import CLOSED, OPENED, WARMED_UP, AlertMachine
-from .checkpoint import load_checkpoint, save_checkpoint
+from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .events import AlertDbSink, EventWriter, JsonLinesSink, ScoresCsvSink
 from .intake import (
     MAX_LINE_BYTES,
@@ -366,7 +366,13 @@ def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, st
     writer = EventWriter(sinks)
     det = Detector(bundle, scorer, writer)
     if saved:
-        det.restore(saved["detector"])
+        try:
+            det.restore(saved["detector"])
+        except (KeyError, TypeError, ValueError) as exc:
+            writer.close()
+            raise CheckpointError(
+                f"{opts.state}: state cannot be restored ({exc}); move it aside to start fresh"
+            ) from None
     resume_after = det.last_time if saved else None
 
     def checkpoint() -> None:

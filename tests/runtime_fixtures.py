@@ -166,8 +166,10 @@ def build_bundle(
         "threshold": threshold,
         "alerting": alerting or {"warmup_hops": 2, "min_hops": 2, "close_ratio": 0.8,
                                  "cooldown_hops": 2},
-        "board": {"name": "test-board", "budget": {"latency_ms_p99": 50.0, "peak_rss_mb": 256},
-                  "estimate": {"latency_ms_p99": 1.0}},
+        "board": {"name": "test-board",  # key names as compile/pack.py writes them
+                  "budget": {"hop_ms": 50.0, "ram_mb": 256, "storage_kb": 150,
+                             "onnxruntime": False},
+                  "estimate": {"hop_ms": 1.0, "ram_mb": 1.0, "flops_per_hop": 1}},
         "parity": {"tolerances": {"score_rel": 1e-5}},
     }
     if not onnx_model:
