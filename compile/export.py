@@ -14,8 +14,9 @@ from typing import Dict, List, Tuple, Union
 
 import numpy as np
 import onnx
-from ganlet.compile.quantise import SCALE_SUFFIX, matrix_axis
 from onnx import TensorProto, helper, numpy_helper
+
+from ganlet.compile.quantise import SCALE_SUFFIX, matrix_axis
 
 INPUT = "window"
 OUTPUTS = ("reconstruction", "residuals")

@@ -160,7 +160,8 @@ def copy_runtime(bundle: Path) -> None:
 
 
 def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
-                  progress=None, echo: Callable[[str], None] = lambda _: None) -> CompileResult:
+                  progress=None, echo: Callable[[str], None] = lambda _: None,
+                  model_dir: Optional[Path] = None) -> CompileResult:
     if options.threshold not in THRESHOLD_KINDS:
         raise ValueError(f"--threshold {options.threshold!r}: choose one of "
                          f"{', '.join(THRESHOLD_KINDS)}")
@@ -253,6 +254,14 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
                                   "teacher_spearman_min": 0.8}},
         "teacher": {"config": cfg.to_json(), "agreement": report["teacher_vs_student"]},
     }
+    if model_dir is not None:
+        # The fp32 student stays on the workstation, beside its teacher, for `ganlet verify`.
+        students = Path(model_dir) / "students"
+        students.mkdir(exist_ok=True)
+        student_file = students / f"{board.name}-{name}.npz"
+        np.savez(student_file, **fp32)
+        manifest["teacher"]["model_dir"] = str(Path(model_dir).resolve())
+        manifest["teacher"]["student_weights"] = str(student_file.resolve())
     write_manifest(out, manifest, sign_key=options.sign_key)
     timings["pack"] = time.perf_counter() - started
     report["seconds"] = timings
@@ -273,4 +282,5 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
 
 def compile_dir(model_dir: Path, out: Path, options: CompileOptions, progress=None,
                 echo: Callable[[str], None] = lambda _: None) -> CompileResult:
-    return compile_model(load_model(model_dir), out, options, progress=progress, echo=echo)
+    return compile_model(load_model(model_dir), out, options, progress=progress, echo=echo,
+                         model_dir=model_dir)

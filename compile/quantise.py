@@ -15,6 +15,7 @@ Biases ("*.B", "*.head.b") stay float32.
 from typing import Dict, Optional
 
 import numpy as np
+
 from ganlet.runtime.weights import SCALE_SUFFIX, dequantise
 
 QMIN, QMAX = -128, 127  # int8 saturation range (ONNX QuantizeLinear)
