@@ -275,6 +275,7 @@ class PotThreshold:
         max_peaks: int = 1000,
         refit_every: int = 1,
         n_peaks: Optional[int] = None,
+        check_rate: bool = True,
     ):
         """q: risk; t: initial threshold; peaks: excesses over t from calibration; n: number of
         calibration scores; max_peaks: how many recent excesses the fit keeps; refit_every: refit
@@ -298,7 +299,9 @@ class PotThreshold:
         if self.n_peaks > self.n:
             raise ValueError(f"n_peaks ({self.n_peaks}) cannot exceed n ({self.n})")
         rate = self.n_peaks / self.n
-        if self.q >= rate:
+        # Checked at calibration only: a long quiet stream may later lower the rate below q,
+        # and then the level simply rests at t (see `level`); a restart must still restore.
+        if check_rate and self.q >= rate:
             raise ValueError(
                 f"q ({self.q}) must be below the exceedance rate over t ({rate:.4g}); "
                 "lower q or raise t"
@@ -350,7 +353,8 @@ class PotThreshold:
     def from_state(cls, d: Dict[str, Any]) -> "PotThreshold":
         _check_kind(cls, d)
         obj = cls(
-            d["q"], d["t"], d["peaks"], d["n"], d["max_peaks"], d["refit_every"], d["n_peaks"]
+            d["q"], d["t"], d["peaks"], d["n"], d["max_peaks"], d["refit_every"], d["n_peaks"],
+            check_rate=False,
         )
         # the fit in force may predate the latest peaks (refit_every > 1): restore it as saved
         obj.xi = _num("xi", d["xi"])

@@ -220,3 +220,19 @@ def test_calibrate_rejects_bad_input():
         calibrate_policy("static", np.ones(10), quantle=0.9)
     with pytest.raises(ValueError, match="unknown threshold kind"):
         calibrate_policy("spot", np.ones(10))
+
+
+def test_pot_state_restores_after_a_long_quiet_stream():
+    """A saved POT state must restore even when the exceedance rate has fallen below q.
+
+    Regression: from_state used to re-run the calibration-time check q < n_peaks / n, so a
+    gateway that had seen a long quiet run could not restart from its checkpoint.
+    """
+    rng = np.random.default_rng(3)
+    pot = make_threshold(calibrate_policy("pot", rng.exponential(1.0, 500)))
+    for _ in range(30_000):
+        pot.update(0.0)          # far below t: n grows, n_peaks does not
+    assert pot.q >= pot.n_peaks / pot.n
+    restored = PotThreshold.from_state(json.loads(json.dumps(pot.state())))
+    assert restored.level == pot.level
+    assert restored.update(0.5) == pot.update(0.5)
