@@ -7,13 +7,21 @@ a bundle for the default board -> replay the test span through the bundle on the
 
 from __future__ import annotations
 
+import csv
 import importlib.util
+import json
+import subprocess
+import sys
 import time
 from dataclasses import replace
 from pathlib import Path
 from typing import Callable
 
+import pandas as pd
+
+from ganlet.compile.distil import DistilConfig
 from ganlet.compile.model import DetectorConfig
+from ganlet.compile.pack import CompileOptions, compile_dir
 from ganlet.compile.pipeline import TrainOptions, train_from_file
 
 EXAMPLES_DIR = Path(__file__).resolve().parent.parent / "examples"
@@ -53,8 +61,89 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     result = train_from_file(Path(info["data"]), out / "model", options, echo=echo)
     echo("   " + result.describe())
 
+    echo("== 3. compile for the default board")
+    compiled = compile_dir(result.out, out / "bundle",
+                           CompileOptions(name="hollowmere-p2",
+                                          distil=DistilConfig(epochs=3 if quick else 30,
+                                                              seed=seed)),
+                           echo=lambda t: echo("   " + t))
+    echo("   " + compiled.describe().replace("\n", "\n   "))
+
+    echo("== 4. replay the test span through the bundle (python3 run.py stream)")
+    test_csv = out / "data" / "test_span.csv"
+    write_test_span(Path(info["data"]), info["test_start"], compiled.plan.window, test_csv)
+    replay = replay_through_bundle(compiled.bundle, test_csv, out / "gateway")
+    echo(alerts_beside_incidents(replay["alerts"], Path(info["incidents"])))
+    echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
+         f"events in {replay['events']}")
+
     paths = {"data": info["data"], "incidents": info["incidents"],
-             "model": str(result.out), "training_plot": str(result.out / "training.png")}
+             "model": str(result.out), "training_plot": str(result.out / "training.png"),
+             "bundle": str(compiled.bundle), "gateway_events": replay["events"],
+             "gateway_scores": replay["scores"], "gateway_alerts": replay["alert_db"]}
     summary = {"paths": paths, "train_seconds": result.seconds,
+               "compile": compiled.report, "alerts": replay["alerts"],
                "seconds": time.perf_counter() - started}
+    (out / "demo_summary.json").write_text(json.dumps(summary, indent=2, default=str))
     return summary
+
+
+def write_test_span(data: Path, test_start: str, window: int, out: Path) -> Path:
+    """The test span as the gateway would receive it, with one window of lead-in so the first
+    test point is scored (the lead-in rows are normal data from before the test span)."""
+    rows = pd.read_csv(data)
+    start = int((pd.to_datetime(rows["time"]) < pd.Timestamp(test_start)).sum())
+    rows.iloc[max(0, start - window):].to_csv(out, index=False)
+    return out
+
+
+def replay_through_bundle(bundle: Path, data: Path, out: Path) -> dict:
+    """Run the bundle's own run.py in a subprocess: the real gateway path."""
+    out.mkdir(parents=True, exist_ok=True)
+    events_path, scores, alert_db = out / "events.jsonl", out / "scores.csv", out / "alerts.sqlite"
+    for stale in (scores, alert_db, out / "state.json"):
+        stale.unlink(missing_ok=True)
+    cmd = [sys.executable, str(bundle / "run.py"), "stream", "--input", str(data),
+           "--scores-out", str(scores), "--alert-db", str(alert_db),
+           "--state", str(out / "state.json"), "--score-every", "0"]
+    proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    events_path.write_text(proc.stdout)
+    if proc.returncode != 0:
+        raise RuntimeError(f"the bundle's stream exited {proc.returncode}: {proc.stderr.strip()}")
+    events = [json.loads(line) for line in proc.stdout.splitlines() if line.strip()]
+    alerts = {}
+    for ev in events:
+        if ev["event"] in ("alert_opened", "alert_closed"):
+            alerts[ev["alert_id"]] = ev
+    stop = next((ev for ev in reversed(events) if ev["event"] == "stop"), {})
+    errors = {k: v for k, v in stop.get("errors", {}).items() if v}
+    return {"alerts": list(alerts.values()), "hops": stop.get("counters", {}).get("hops", 0),
+            "errors": errors, "events": str(events_path), "scores": str(scores),
+            "alert_db": str(alert_db)}
+
+
+def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:
+    """A plain table: each incident with the alerts that overlap it, then the other alerts."""
+    with open(incidents_csv, newline="") as fh:
+        incidents = list(csv.DictReader(fh))
+    used = set()
+    lines = [f"   {'incident':<14} {'start':<17} {'end':<17} alert(s) [top channel, delay]"]
+    for inc in incidents:
+        start, end = pd.Timestamp(inc["start"]), pd.Timestamp(inc["end"])
+        hits = []
+        for a in alerts:
+            opened = pd.Timestamp(a["opened"]).tz_localize(None)
+            closed = pd.Timestamp(a["closed"]).tz_localize(None) if a["closed"] else opened
+            if opened <= end and closed >= start:
+                used.add(a["alert_id"])
+                delay = max(0.0, (opened - start).total_seconds() / 60)
+                hits.append(f"{opened:%m-%d %H:%M} [{a['channels'][0]['name']}, +{delay:.0f} min]")
+        lines.append(f"   {inc['kind']:<14} {start:%m-%d %H:%M}      {end:%m-%d %H:%M}      "
+                     + ("; ".join(hits) if hits else "MISSED"))
+    others = [a for a in alerts if a["alert_id"] not in used]
+    lines.append(f"   alerts outside any incident: {len(others)}")
+    for a in others:
+        opened = pd.Timestamp(a["opened"]).tz_localize(None)
+        lines.append(f"     {opened:%m-%d %H:%M}  peak {a['peak_score']:.3g}  "
+                     f"top channel {a['channels'][0]['name']}")
+    return "\n".join(lines)

@@ -120,7 +120,6 @@ class CompileResult:
         ts = r["teacher_vs_student"]
         qs = r["student_vs_int8"]
         return "\n".join([
-            self.plan.describe(),
             f"distilled in {r['seconds']['distil']:.1f} s; teacher vs student on the calibration "
             f"span: Spearman {ts['spearman']:.4f}, max abs error {ts['max_abs_error']:.3g}",
             f"int8 vs fp32 student: Spearman {qs['spearman']:.5f}, max rel error "
