@@ -47,7 +47,8 @@ def _as_state(s: Optional[np.ndarray], n: int, h: int, name: str) -> np.ndarray:
 def _lstm_layer(
     x: np.ndarray, wt: np.ndarray, rt: np.ndarray, b: np.ndarray, h: np.ndarray, c: np.ndarray
 ) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """One LSTM layer over time. x [T, N, I]; wt [I, 4H]; rt [H, 4H]; b [4H] (Wb + Rb).
+    """One LSTM layer over time. x [T, N, I]; wt [I, 4H]; rt [H, 4H]; b [4H] (Wb + Rb), all as
+    _prepare returns them (i, o, f columns halved).
 
     The input projection of all time steps is one matmul; only the recurrence loops over time.
     """
@@ -58,12 +59,14 @@ def _lstm_layer(
     xproj += b
     y = np.empty((t_len, n, hid), dtype=F32)
     for t in range(t_len):
-        gates = xproj[t] + h @ rt
-        sig = sigmoid(gates[:, : 3 * hid])
+        act = np.tanh(xproj[t] + h @ rt)
+        sig = act[:, : 3 * hid]
+        sig *= F32(0.5)
+        sig += F32(0.5)
         i_g = sig[:, :hid]
         o_g = sig[:, hid : 2 * hid]
         f_g = sig[:, 2 * hid : 3 * hid]
-        c_new = np.tanh(gates[:, 3 * hid :])
+        c_new = act[:, 3 * hid :]
         c = f_g * c + i_g * c_new
         h = o_g * np.tanh(c)
         y[t] = h
@@ -90,9 +93,14 @@ def _prepare(W: np.ndarray, R: np.ndarray, B: Optional[np.ndarray], name: str = 
         B = np.zeros((1, 2 * W.shape[1]), dtype=F32)
     B = np.asarray(B, dtype=F32)
     hid = _check_lstm_weights(W, R, B, name)
-    wt = np.ascontiguousarray(W[0].T)
-    rt = np.ascontiguousarray(R[0].T)
-    b = (B[0, : 4 * hid] + B[0, 4 * hid :]).astype(F32)
+    # logistic(x) = (1 + tanh(x / 2)) / 2, an exact identity. Halving the i, o, f columns once
+    # here (exact in binary floating point) lets one tanh per step serve all four gates in
+    # _lstm_layer, and tanh cannot overflow.
+    half = np.ones(4 * hid, dtype=F32)
+    half[: 3 * hid] = F32(0.5)
+    wt = np.ascontiguousarray(W[0].T * half)
+    rt = np.ascontiguousarray(R[0].T * half)
+    b = ((B[0, : 4 * hid] + B[0, 4 * hid :]) * half).astype(F32)
     return wt, rt, b
 
 
