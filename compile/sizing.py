@@ -7,6 +7,7 @@ bench on the gateway measures the real figures and can replace a board's MFLOP/s
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, dataclass
 
 from ganlet.compile.boards import Board
@@ -24,9 +25,19 @@ LADDER = (
 # ~20-25 MB RSS on a 64-bit Linux for `python3 -c "import numpy"`; onnxruntime adds ~15-30 MB).
 PYTHON_NUMPY_BASE_MB = 24.0
 ONNXRUNTIME_EXTRA_MB = 30.0
-# Bytes on flash beyond the raw weights: ONNX graph structure, npz zip headers, manifest
-# (which carries the threshold's calibration peaks). Estimated generously; checked after packing.
+# Bytes on flash beyond the raw weights, estimated generously (an upper bound; the packer
+# checks the real figure after packing). Fixed part: manifest without the threshold's peaks
+# (~5 KB, its file list names every runtime file), INSTALL.txt, run.py, manifest.sig, the ONNX
+# graph's fixed nodes.
 PACKING_OVERHEAD_BYTES = 12_000
+# Per stored array (measured on packed bundles: ~260 bytes of npy header + zip entries in
+# weights.npz, ~120 bytes of initializer + node records in model.onnx).
+PER_ARRAY_BYTES = 400
+# Per channel: its name, unit, scaler centre and scale in the manifest and INSTALL.txt.
+PER_CHANNEL_BYTES = 200
+# The POT threshold carries up to max_peaks = 1000 calibration peaks (runtime/thresholds.py
+# default) as indented JSON lines of at most ~32 bytes each.
+THRESHOLD_PEAKS_BYTES = 1000 * 32
 
 
 class DoesNotFit(ValueError):
@@ -94,7 +105,10 @@ def plan_for(board: Board, n_channels: int, latent: int, enc: tuple, gen: tuple,
     matrix_params = params - biases
     weights_bytes = matrix_params + 4 * rows + 4 * biases
     # model.onnx carries the same int8 arrays as weights.npz, so the weights count twice.
-    storage = 2 * weights_bytes + PACKING_OVERHEAD_BYTES
+    # Arrays: W, R, B, W.scale, R.scale per LSTM layer; W, b, W.scale per head.
+    arrays = 5 * (len(enc) + len(gen)) + 2 * 3
+    storage = (2 * weights_bytes + PACKING_OVERHEAD_BYTES + PER_ARRAY_BYTES * arrays
+               + PER_CHANNEL_BYTES * n_channels + THRESHOLD_PEAKS_BYTES)
     widest = max((*enc, *gen, n_channels, latent))
     # float32 dequantised weights + per-step gate activations of one window + ring buffer
     activations = 4 * window * (4 * widest + 2 * widest + 2 * n_channels) * 2
@@ -123,17 +137,22 @@ def size_student(board: Board, n_channels: int, latent: int, window: int,
                 return plan
     smallest = min(tried, key=lambda p: (p.storage_bytes, -p.hop))
     problems = []
+    # Needs are rounded up, so a budget of the stated size does fit (rounding to nearest could
+    # name a figure just below what is needed).
     if smallest.storage_bytes > storage_limit:
-        problems.append(f"storage: the smallest student needs ~{smallest.storage_bytes / 1024:.0f} KB "
-                        f"of flash, the board allows {board.storage_budget_kb} KB")
+        problems.append(f"storage: the smallest student needs {math.ceil(smallest.storage_bytes / 1024)} "
+                        f"KB of flash, the board allows {board.storage_budget_kb} KB")
     if smallest.ram_bytes > ram_limit:
-        problems.append(f"RAM: the smallest student needs ~{smallest.ram_bytes / 2**20:.0f} MB, "
+        problems.append(f"RAM: the smallest student needs {math.ceil(smallest.ram_bytes / 2**20)} MB, "
                         f"the board allows {board.ram_budget_mb} MB")
     if smallest.hop_seconds_estimate > smallest.hop_seconds_budget:
         need = smallest.flops_per_hop / (board.compute_fraction * max_hop * period_s) / 1e6
+        step = 10.0 ** (math.floor(math.log10(need)) - 2)   # round up to 3 significant digits
+        need_text = f"{math.ceil(need / step) * step:.3g}"
         problems.append(f"compute: one window takes ~{smallest.hop_seconds_estimate * 1e3:.1f} ms "
                         f"but the board allows {smallest.hop_seconds_budget * 1e3:.1f} ms per hop "
-                        f"at hop {max_hop}; it would need ~{need:.0f} MFLOP/s or a longer period")
+                        f"at hop {max_hop}; it would need {need_text} MFLOP/s "
+                        "or a longer period")
     raise DoesNotFit(f"nothing fits board {board.name!r}: " + "; ".join(problems)
                      + f" (smallest student: enc {list(smallest.encoder_hidden)}, gen "
                        f"{list(smallest.generator_hidden)}, window {window})")
