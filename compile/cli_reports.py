@@ -1,0 +1,89 @@
+"""`ganlet verify` and `ganlet evaluate`: thin typer commands over compile.verify and
+compile.evaluate. register(app) adds them to the main `ganlet` app.
+
+Exit codes: verify 0 pass, 1 fail, 2 unusable input; evaluate 0 done, 2 unusable input.
+"""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+
+
+def _fail(message: str):
+    typer.echo(f"error: {message.splitlines()[0] if message else 'unusable input'}", err=True)
+    raise typer.Exit(2)
+
+
+def _run(fn):
+    """Boundary errors -> one line on stderr and exit code 2."""
+    from ganlet.compile.data import IntakeError
+    from ganlet.compile.verify import UnusableInput
+    from ganlet.runtime.manifest import BundleError
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FutureWarning)
+        try:
+            return fn()
+        except (UnusableInput, IntakeError, BundleError, FileNotFoundError, ValueError) as exc:
+            _fail(str(exc) or type(exc).__name__)
+
+
+def verify_cmd(
+    bundle: Path = typer.Argument(..., help="Bundle folder."),
+    data: Path = typer.Argument(..., help="The sensor data the device read (CSV or Parquet)."),
+    device_scores: Optional[Path] = typer.Option(
+        None, "--device-scores", help="Scores CSV captured on the device (run.py stream "
+        "--scores-out); default: run the bundle's run.py here."),
+    model: Optional[Path] = typer.Option(
+        None, "--model", help="Teacher model directory (default: the manifest's)."),
+    tolerance: Optional[List[str]] = typer.Option(
+        None, "--tolerance", help="Override a tolerance, KEY=VALUE (repeatable): score_rel, "
+        "spearman_min, sample_agreement_min, event_match_hops, teacher_spearman_min."),
+    json_out: Optional[Path] = typer.Option(None, "--json", help="Write a JSON summary."),
+    html_out: Optional[Path] = typer.Option(None, "--html", help="Write an HTML report."),
+):
+    """Parity of device and workstation scores and alerts; exit 0 pass, 1 fail, 2 unusable."""
+    from ganlet.compile import verify as v
+
+    result = _run(lambda: v.verify(bundle, data, device_scores=device_scores, model_dir=model,
+                                   tolerances=tolerance or []))
+    typer.echo(result.summary())
+    if json_out:
+        v.write_json(result, json_out)
+    if html_out:
+        v.write_html(result, html_out)
+    raise typer.Exit(0 if result.passed else 1)
+
+
+def evaluate_cmd(
+    source: Path = typer.Argument(..., help="Model directory or bundle folder."),
+    data: Path = typer.Argument(..., help="Sensor data (CSV or Parquet)."),
+    incidents: Path = typer.Option(..., "--incidents", help="CSV start,end[,kind] (inclusive)."),
+    start: Optional[str] = typer.Option(
+        None, "--from", help="First evaluated point: a row number or a time (default: all)."),
+    threshold: str = typer.Option(
+        "pot", help="Policy kind for a model directory (a bundle uses its own)."),
+    no_baselines: bool = typer.Option(False, "--no-baselines", help="Skip the baselines."),
+    html_out: Optional[Path] = typer.Option(None, "--html", help="Write an HTML report."),
+    json_out: Optional[Path] = typer.Option(None, "--json", help="Write a JSON summary."),
+):
+    """Detection metrics against known incidents, beside baselines under the same rule."""
+    from ganlet.compile import evaluate as e
+
+    eval_from = int(start) if start is not None and start.isdigit() else start
+    result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
+                                     threshold=threshold, baselines=not no_baselines))
+    typer.echo(result.summary())
+    if json_out:
+        e.write_json(result, json_out)
+    if html_out:
+        e.write_html(result, html_out)
+
+
+def register(app: typer.Typer) -> None:
+    app.command("verify")(verify_cmd)
+    app.command("evaluate")(evaluate_cmd)

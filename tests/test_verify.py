@@ -1,0 +1,136 @@
+"""`ganlet verify`: parity of the gateway path against onnxruntime, numpy, fp32 student and
+teacher on a tiny trained model; a tampered device capture fails; bad input exits 2."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+import typer
+from synthetic import correlated_series, inject
+from typer.testing import CliRunner
+
+from ganlet.compile.cli_reports import register
+from ganlet.compile.data import load_frame, split_spans
+from ganlet.compile.distil import DistilConfig
+from ganlet.compile.model import DetectorConfig
+from ganlet.compile.pack import CompileOptions, compile_model
+from ganlet.compile.train import save_model, train
+from ganlet.compile.verify import hop_windows, run_gateway, verify
+
+TINY = DetectorConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
+                      generator_hidden=(6, 8), latent=2, max_train_windows=400)
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    torch.set_num_threads(1)
+    root = tmp_path_factory.mktemp("verify")
+    df, _ = inject(correlated_series(900, seed=3), start=500, seed=2)
+    data = root / "data.csv"
+    df.to_csv(data, index=False)
+    frame = load_frame(data)
+    model = train(frame, split_spans(frame, 500, 0.25), TINY)
+    model_dir = save_model(model, root / "model")
+    compile_model(model, root / "bundle",
+                  CompileOptions(board="workstation", threshold="rolling",
+                                 distil=DistilConfig(epochs=3, max_real_windows=300)),
+                  model_dir=model_dir)
+    return {"root": root, "data": data, "bundle": root / "bundle", "model": model_dir}
+
+
+def cli():
+    app = typer.Typer()
+    register(app)
+
+    @app.command("noop")
+    def noop():  # a second command keeps typer from collapsing the app into one command
+        pass
+
+    return app
+
+
+def test_parity_passes_and_reports(built, tmp_path):
+    result = verify(built["bundle"], built["data"])
+    assert set(result.pairs) == {"onnxruntime", "numpy", "fp32 student", "teacher"}
+    assert result.passed, result.summary()
+    assert result.pairs["onnxruntime"]["strict"] and not result.pairs["teacher"]["strict"]
+    assert set(result.pairs["teacher"]["checks"]) == {"spearman"}
+    assert result.device_replay_agreement == 1.0
+    # the device's hops: one per sample once the window is full (hop 1 on this board)
+    assert result.hops == 900 - TINY.window + 1
+
+    # reference: onnx.reference.ReferenceEvaluator (the ONNX spec in numpy) on the same windows
+    from onnx.reference import ReferenceEvaluator
+
+    from ganlet.runtime.manifest import load_bundle
+    b = load_bundle(built["bundle"])
+    frame = load_frame(built["data"])
+    series = ((frame.values - b.center) / b.scale).astype(np.float32)
+    rows = np.arange(TINY.window - 1, 900)
+    windows, valid = hop_windows(series, rows, b.window)
+    (res,) = ReferenceEvaluator(str(b.onnx_path)).run(["residuals"], {"window": windows})
+    np.testing.assert_allclose(result.series["onnxruntime"]["score"], res.mean(axis=1),
+                               rtol=1e-4)
+    # reference: torch forward of the teacher (torch.nn.LSTM) on the same windows
+    from ganlet.compile.train import load_model
+    m = load_model(built["model"])
+    with torch.no_grad():
+        x = torch.from_numpy(windows)
+        ref = ((x - m.detector.reconstruct(x)) ** 2).mean(dim=(1, 2)).numpy()
+    np.testing.assert_allclose(result.series["teacher"]["score"], ref, rtol=1e-5)
+
+
+def test_cli_pass_json_html(built, tmp_path):
+    out_json, out_html = tmp_path / "p.json", tmp_path / "p.html"
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--json", str(out_json), "--html", str(out_html)])
+    assert r.exit_code == 0, r.output
+    summary = json.loads(out_json.read_text())
+    assert summary["passed"] is True
+    assert summary["pairs"]["numpy"]["max_rel_error"] <= summary["tolerances"]["score_rel"]
+    page = out_html.read_text()
+    assert page.count("data:image/png;base64,") == 3 and "rank only" in page
+
+
+def test_tampered_device_capture_fails(built, tmp_path):
+    scores = run_gateway(built["bundle"], built["data"], tmp_path / "dev.csv")
+    df = pd.read_csv(scores)
+    k = len(df) // 2
+    df.loc[k:k + 5, "score"] *= 1.01          # a device that drifted by 1 % for a few hops
+    df.to_csv(tmp_path / "bad.csv", index=False)
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--device-scores", str(tmp_path / "bad.csv"),
+                                   "--json", str(tmp_path / "bad.json")])
+    assert r.exit_code == 1, r.output
+    summary = json.loads((tmp_path / "bad.json").read_text())
+    assert summary["pairs"]["onnxruntime"]["checks"]["score_rel"] is False
+    assert summary["pairs"]["onnxruntime"]["max_rel_error"] == pytest.approx(0.01 / 1.01, rel=1e-3)  # relative to the device
+    # a loose tolerance accepts the same capture
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--device-scores", str(tmp_path / "bad.csv"),
+                                   "--tolerance", "score_rel=0.02"])
+    assert r.exit_code == 0, r.output
+
+
+def test_repeated_and_swapped_rows_are_left_out_of_score_figures(built, tmp_path):
+    raw = pd.read_csv(built["data"])
+    rows = pd.concat([raw.iloc[:300], raw.iloc[[299]], raw.iloc[300:]])   # a repeated row
+    order = list(range(len(rows)))
+    order[600], order[601] = order[601], order[600]                       # two rows swapped
+    rows.iloc[order].to_csv(tmp_path / "messy.csv", index=False)
+    result = verify(built["bundle"], tmp_path / "messy.csv")
+    assert result.excluded_hops > 0 and any("repaired" in n for n in result.notes)
+    assert result.pairs["numpy"]["checks"]["score_rel"], result.summary()
+
+
+def test_unusable_input_exits_2(built, tmp_path):
+    (tmp_path / "junk.csv").write_text("a,b\n1,2\n")
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(tmp_path / "junk.csv")])
+    assert r.exit_code == 2 and "error:" in r.output
+    r = CliRunner().invoke(cli(), ["verify", str(tmp_path), str(built["data"])])
+    assert r.exit_code == 2 and "error:" in r.output
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--tolerance", "nonsense=1"])
+    assert r.exit_code == 2 and "unknown" in r.output
