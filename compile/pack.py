@@ -164,6 +164,12 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     if options.threshold not in THRESHOLD_KINDS:
         raise ValueError(f"--threshold {options.threshold!r}: choose one of "
                          f"{', '.join(THRESHOLD_KINDS)}")
+    out = Path(out)
+    # Refuse an unusable --out before minutes of distillation, not after.
+    if out.exists() and not out.is_dir():
+        raise ValueError(f"{out} is a file; --out needs a folder for the bundle")
+    if out.exists() and any(out.iterdir()) and not (out / "manifest.json").exists():
+        raise ValueError(f"{out} exists and is not a bundle; choose an empty or new folder")
     timings = {}
     board = load_board(options.board or DEFAULT_BOARD)
     cfg = model.detector.config
@@ -188,11 +194,8 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     timings["quantise"] = time.perf_counter() - started
 
     started = time.perf_counter()
-    out = Path(out)
     if out.exists() and any(out.iterdir()):
-        if not (out / "manifest.json").exists():
-            raise ValueError(f"{out} exists and is not a bundle; choose an empty or new folder")
-        shutil.rmtree(out)      # replacing an earlier bundle
+        shutil.rmtree(out)      # replacing an earlier bundle (checked above)
     out.mkdir(parents=True, exist_ok=True)
     save_onnx(build_onnx(qweights, len(model.channels), quantised=True), out / "model.onnx")
     np.savez(out / "weights.npz", **qweights)
