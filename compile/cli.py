@@ -227,6 +227,42 @@ def read_key(path: Path) -> bytes:
 
 
 @app.command()
+def fleet(
+    fleet_file: Path = typer.Argument(..., help="Fleet file (TOML) listing the assets."),
+    scheduler: Optional[str] = typer.Option(None, help="Address of an existing Dask scheduler (default: an embedded LocalCluster)."),
+    workers: Optional[int] = typer.Option(None, help="Worker processes of the embedded cluster (default: one per core)."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="Only the summary table."),
+):
+    """Train, compile and verify one detector per asset on a Dask cluster."""
+    from ganlet.compile import fleet as fleet_mod
+
+    with user_errors():
+        spec = fleet_mod.load_fleet(fleet_file)
+        if not quiet:
+            typer.echo(f"fleet {spec.name}: {len(spec.assets)} assets -> {spec.out}", err=True)
+        from rich.console import Console
+        from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+        bar = Progress(TextColumn("assets"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
+                       TextColumn("{task.fields[last]}"), TimeElapsedColumn(),
+                       console=Console(stderr=True), disable=quiet)
+        task = bar.add_task("assets", total=len(spec.assets), last="")
+
+        def done(result, k, n):
+            bar.update(task, completed=k, last=f"{result.asset}: {result.status}")
+
+        with bar:
+            results = fleet_mod.run_fleet(spec, scheduler=scheduler, workers=workers,
+                                          on_result=done)
+        summary = fleet_mod.write_summary(results, spec.out / "fleet_summary.csv")
+        typer.echo(fleet_mod.summary_table(results))
+        typer.echo(f"summary: {summary}")
+    failed = [r for r in results if r.status == "failed"]
+    if failed:
+        raise typer.Exit(1)
+
+
+@app.command()
 def demo(
     out: Path = typer.Option(Path("ganlet-demo"), "--out", "-o", help="Folder for the demo's data, model and reports."),
     quick: bool = typer.Option(False, help="Fewer epochs: a fast smoke run of the whole chain."),
@@ -238,6 +274,15 @@ def demo(
     with user_errors():
         summary = demo_mod.run(out, quick=quick, seed=seed, echo=lambda t: typer.echo(t))
     typer.echo(json.dumps(summary["paths"], indent=2))
+
+
+def register_reports() -> None:
+    from ganlet.compile.cli_reports import register
+
+    register(app)
+
+
+register_reports()
 
 
 def main() -> None:

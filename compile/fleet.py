@@ -1,0 +1,321 @@
+"""`ganlet fleet FLEET.toml`: one detector per asset, trained, compiled and verified on Dask.
+
+Each asset is one task (train -> compile -> verify -> evaluate when incidents are given) that
+runs in a worker process with one torch thread. A failing asset is reported with its reason and
+never stops the others. A rerun skips assets whose inputs (data hash, settings, board) are
+unchanged since their last successful run.
+
+The fleet file (TOML, our own format; see DEVELOPERS.md "Fleet files"):
+
+    [fleet]
+    name = "..."                  # free text
+    out = "fleet-out"             # results folder, relative to the fleet file
+    board = "a53-512"             # default board for every asset
+
+    [train]                       # optional: DetectorConfig fields, TrainOptions fields
+    [distil]                      # optional: DistilConfig fields
+
+    [[asset]]
+    id = "p1"                     # letters, digits, - and _
+    data = "data/p1.csv"          # relative to the fleet file
+    channels = ["a", "b"]         # optional
+    board = "a72-2g"              # optional, overrides [fleet].board
+    incidents = "data/p1-incidents.csv"   # optional: adds a detection evaluation
+    train_until = "2026-03-04T00:00:00"   # optional (row count, fraction or time)
+    [asset.invented]              # optional: generate the invented demo data if `data` is missing
+    seed = 11
+    days = 5
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+import re
+import time
+import traceback
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+from typing import Callable, Optional
+
+import tomllib
+
+from ganlet.compile.distil import DistilConfig
+from ganlet.compile.model import DetectorConfig
+
+ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]*$")
+TRAIN_OPTION_KEYS = ("train_until", "calibration", "period", "max_fill", "window", "seed")
+SUMMARY_COLUMNS = ("asset", "status", "bundle_kb", "parity", "f1", "seconds", "reason")
+
+
+class FleetError(ValueError):
+    """The fleet file itself is unusable (the message says where)."""
+
+
+@dataclass
+class AssetSpec:
+    id: str
+    data: str
+    board: str
+    channels: Optional[list] = None
+    incidents: Optional[str] = None
+    train_until: object = None
+    invented: Optional[dict] = None
+
+
+@dataclass
+class FleetSpec:
+    name: str
+    out: Path
+    assets: list
+    train: dict = field(default_factory=dict)
+    distil: dict = field(default_factory=dict)
+    source: str = ""
+
+
+@dataclass
+class AssetResult:
+    asset: str
+    status: str                    # ok | failed | skipped
+    seconds: float = 0.0
+    reason: str = ""
+    bundle_kb: Optional[float] = None
+    parity: Optional[str] = None   # pass | fail | None
+    f1: Optional[float] = None
+    input_hash: str = ""
+    paths: dict = field(default_factory=dict)
+
+    def row(self) -> dict:
+        return {"asset": self.asset, "status": self.status,
+                "bundle_kb": "" if self.bundle_kb is None else f"{self.bundle_kb:.1f}",
+                "parity": self.parity or "", "f1": "" if self.f1 is None else f"{self.f1:.3f}",
+                "seconds": f"{self.seconds:.1f}", "reason": self.reason}
+
+
+def load_fleet(path: Path) -> FleetSpec:
+    path = Path(path)
+    if not path.exists():
+        raise FleetError(f"fleet file {path} not found")
+    try:
+        raw = tomllib.loads(path.read_text())
+    except tomllib.TOMLDecodeError as exc:
+        raise FleetError(f"{path}: not valid TOML ({exc})") from exc
+    head = raw.get("fleet", {})
+    unknown = sorted(set(raw) - {"fleet", "train", "distil", "asset"})
+    if unknown:
+        raise FleetError(f"{path}: unknown table(s) {', '.join(unknown)}; expected fleet, train, "
+                         "distil, asset")
+    board = head.get("board", "a53-512")
+    assets = raw.get("asset", [])
+    if not assets:
+        raise FleetError(f"{path}: no [[asset]] entries")
+    specs, seen = [], set()
+    allowed = {f.name for f in fields(AssetSpec)}
+    for k, a in enumerate(assets, 1):
+        where = f"{path}: asset #{k}"
+        extra = sorted(set(a) - allowed)
+        if extra:
+            raise FleetError(f"{where}: unknown key(s) {', '.join(extra)}; allowed: "
+                             f"{', '.join(sorted(allowed))}")
+        if "id" not in a or "data" not in a:
+            raise FleetError(f"{where}: needs 'id' and 'data'")
+        if not ID_RE.match(str(a["id"])):
+            raise FleetError(f"{where}: id {a['id']!r} may hold letters, digits, - and _ only")
+        if a["id"] in seen:
+            raise FleetError(f"{where}: id {a['id']!r} is used twice")
+        seen.add(a["id"])
+        specs.append(AssetSpec(
+            id=str(a["id"]), data=str(path.parent / a["data"]), board=str(a.get("board", board)),
+            channels=a.get("channels"), train_until=a.get("train_until"),
+            incidents=str(path.parent / a["incidents"]) if a.get("incidents") else None,
+            invented=a.get("invented")))
+    train = dict(raw.get("train", {}))
+    check_keys(train, {f.name for f in fields(DetectorConfig)} | set(TRAIN_OPTION_KEYS),
+               f"{path}: [train]")
+    distil = dict(raw.get("distil", {}))
+    check_keys(distil, {f.name for f in fields(DistilConfig)}, f"{path}: [distil]")
+    out = path.parent / head.get("out", "fleet-out")
+    return FleetSpec(name=str(head.get("name", path.stem)), out=out, assets=specs, train=train,
+                     distil=distil, source=str(path))
+
+
+def check_keys(table: dict, allowed: set, where: str) -> None:
+    extra = sorted(set(table) - allowed)
+    if extra:
+        raise FleetError(f"{where}: unknown key(s) {', '.join(extra)}; allowed: "
+                         f"{', '.join(sorted(allowed))}")
+
+
+def sha256_file(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def ensure_data(spec: AssetSpec) -> None:
+    """Generate the invented demo data for an asset that asks for it and lacks its file."""
+    if not spec.invented:
+        return
+    if spec.train_until is None:
+        spec.train_until = 0.6     # the invented data is normal over its first 60 %
+    data = Path(spec.data)
+    if data.exists():
+        return
+    from ganlet.compile.demo import load_station_module
+
+    station = load_station_module()
+    tmp = data.parent / f".{data.stem}-gen"
+    info = station.generate(tmp, days=float(spec.invented.get("days", 7)),
+                            seed=int(spec.invented.get("seed", 7)))
+    data.parent.mkdir(parents=True, exist_ok=True)
+    Path(info["data"]).replace(data)
+    if spec.incidents and not Path(spec.incidents).exists():
+        Path(info["incidents"]).replace(spec.incidents)
+
+
+def input_hash(spec: AssetSpec, fleet: FleetSpec) -> str:
+    """What decides whether an asset's last result still stands."""
+    from ganlet.compile.boards import load_board
+
+    board = load_board(spec.board)
+    parts = {
+        "data": sha256_file(Path(spec.data)),
+        "incidents": sha256_file(Path(spec.incidents)) if spec.incidents else None,
+        "board": sha256_file(Path(board.source_path)),
+        "spec": {k: v for k, v in asdict(spec).items() if k not in ("data", "incidents")},
+        "train": fleet.train, "distil": fleet.distil,
+        "tool": __import__("ganlet.compile", fromlist=["__version__"]).__version__,
+    }
+    return hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
+
+
+def run_asset(spec: AssetSpec, fleet: FleetSpec) -> AssetResult:
+    """One asset, start to end, in whichever process calls it. Never raises."""
+    started = time.perf_counter()
+    out = Path(fleet.out) / spec.id
+    try:
+        import torch
+
+        torch.set_num_threads(1)
+        ensure_data(spec)
+        if not Path(spec.data).exists():
+            raise FileNotFoundError(f"data file {spec.data} not found")
+        digest = input_hash(spec, fleet)
+        previous = out / "result.json"
+        if previous.exists():
+            last = json.loads(previous.read_text())
+            if last.get("status") == "ok" and last.get("input_hash") == digest:
+                return AssetResult(**{**last, "status": "skipped",
+                                      "reason": "inputs unchanged since the last run",
+                                      "seconds": time.perf_counter() - started})
+        result = build_asset(spec, fleet, out)
+        result.input_hash = digest
+    except Exception as exc:   # one asset's failure must never stop the fleet
+        result = AssetResult(asset=spec.id, status="failed", reason=one_line(exc))
+        out.mkdir(parents=True, exist_ok=True)
+        (out / "error.txt").write_text(traceback.format_exc())
+    result.seconds = time.perf_counter() - started
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "result.json").write_text(json.dumps(asdict(result), indent=2, default=str))
+    return result
+
+
+def one_line(exc: Exception) -> str:
+    text = str(exc).strip().splitlines()
+    return f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
+
+
+def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
+    from dataclasses import replace
+
+    from ganlet.compile.pack import CompileOptions, compile_dir
+    from ganlet.compile.pipeline import TrainOptions, train_from_file
+    from ganlet.compile import verify as verify_mod
+
+    train = dict(fleet.train)
+    options = {k: train.pop(k) for k in TRAIN_OPTION_KEYS if k in train}
+    config = replace(DetectorConfig(), **train)
+    topts = TrainOptions(channels=spec.channels, config=config, **options)
+    if spec.train_until is not None:
+        topts.train_until = spec.train_until
+    trained = train_from_file(Path(spec.data), out / "model", topts)
+    compiled = compile_dir(trained.out, out / "bundle",
+                           CompileOptions(board=spec.board, name=spec.id,
+                                          distil=DistilConfig(**fleet.distil)))
+    parity = verify_mod.verify(compiled.bundle, Path(spec.data), model_dir=trained.out)
+    verify_mod.write_json(parity, out / "verify.json")
+    verify_mod.write_html(parity, out / "verify.html")
+    result = AssetResult(asset=spec.id, status="ok",
+                         bundle_kb=compiled.report["bytes"]["model_and_weights"] / 1024,
+                         parity="pass" if parity.passed else "fail",
+                         paths={"model": str(trained.out), "bundle": str(compiled.bundle),
+                                "verify": str(out / "verify.html")})
+    if spec.incidents:
+        from ganlet.compile import evaluate as evaluate_mod
+
+        split = trained.model.spans.calibration[1]     # evaluate after the training span
+        detection = evaluate_mod.evaluate(compiled.bundle, Path(spec.data), Path(spec.incidents),
+                                          eval_from=split)
+        evaluate_mod.write_json(detection, out / "evaluate.json")
+        evaluate_mod.write_html(detection, out / "evaluate.html")
+        result.f1 = float(detection.methods["bundle"].metrics["f1"])
+        result.paths["evaluate"] = str(out / "evaluate.html")
+    return result
+
+
+def run_fleet(fleet: FleetSpec, scheduler: Optional[str] = None, workers: Optional[int] = None,
+              on_result: Callable[[AssetResult, int, int], None] = lambda *_: None) -> list:
+    """All assets on Dask: an embedded LocalCluster (one single-threaded worker process per
+    core) unless `scheduler` names an existing one. Results come back as they finish."""
+    import os
+
+    from dask.distributed import Client, LocalCluster, as_completed
+
+    cluster = None
+    if scheduler:
+        client = Client(scheduler)
+    else:
+        n = workers or os.cpu_count() or 1
+        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                               dashboard_address=None, silence_logs=40)
+        client = Client(cluster)
+    try:
+        futures = [client.submit(run_asset, spec, fleet, pure=False, key=f"asset-{spec.id}")
+                   for spec in fleet.assets]
+        results = []
+        for future in as_completed(futures):
+            try:
+                result = future.result()
+            except Exception as exc:  # a worker died: the asset failed, the fleet goes on
+                result = AssetResult(asset=future.key.removeprefix("asset-"), status="failed",
+                                     reason=f"worker lost: {one_line(exc)}")
+            results.append(result)
+            on_result(result, len(results), len(futures))
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+    order = {spec.id: k for k, spec in enumerate(fleet.assets)}
+    return sorted(results, key=lambda r: order.get(r.asset, 0))
+
+
+def write_summary(results: list, path: Path) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with open(path, "w", newline="") as fh:
+        writer = csv.DictWriter(fh, fieldnames=SUMMARY_COLUMNS)
+        writer.writeheader()
+        for r in results:
+            writer.writerow(r.row())
+    return path
+
+
+def summary_table(results: list) -> str:
+    rows = [r.row() for r in results]
+    widths = {c: max(len(c), *(len(str(row[c])) for row in rows)) for c in SUMMARY_COLUMNS}
+    lines = ["  ".join(c.ljust(widths[c]) for c in SUMMARY_COLUMNS),
+             "  ".join("-" * widths[c] for c in SUMMARY_COLUMNS)]
+    lines += ["  ".join(str(row[c]).ljust(widths[c]) for c in SUMMARY_COLUMNS) for row in rows]
+    return "\n".join(lines)
