@@ -231,9 +231,9 @@ def one_line(exc: Exception) -> str:
 def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
     from dataclasses import replace
 
+    from ganlet.compile import verify as verify_mod
     from ganlet.compile.pack import CompileOptions, compile_dir
     from ganlet.compile.pipeline import TrainOptions, train_from_file
-    from ganlet.compile import verify as verify_mod
 
     train = dict(fleet.train)
     options = {k: train.pop(k) for k in TRAIN_OPTION_KEYS if k in train}

@@ -8,9 +8,9 @@ import json
 
 import numpy as np
 import pytest
+from synthetic import correlated_series
 
 from ganlet.compile import fleet
-from synthetic import correlated_series
 
 FLEET_TOML = """
 [fleet]
