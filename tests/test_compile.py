@@ -1,0 +1,341 @@
+"""Compile for a board, end to end: one tiny teacher, one `ganlet compile` run, then every part
+of the bundle checked against an outside reference (hashlib, hmac, tarfile, numpy, scipy,
+onnx.checker, onnxruntime) and the gateway's own `run.py check`."""
+
+from __future__ import annotations
+
+import filecmp
+import hashlib
+import hmac
+import json
+import re
+import shutil
+import subprocess
+import sys
+import tarfile
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pandas as pd
+import pytest
+from scipy.stats import norm, rankdata, spearmanr
+from synthetic import correlated_series
+from typer.testing import CliRunner
+
+import ganlet.runtime as runtime_pkg
+from ganlet.compile import __version__
+from ganlet.compile.boards import DEFAULT_BOARD, load_board
+from ganlet.compile.cli import app
+from ganlet.compile.data import IntakeOptions, load_frame, split_spans
+from ganlet.compile.distil import DistilConfig, agreement, calibration_windows, distil
+from ganlet.compile.distil import teacher_vs_student as distil_teacher_vs_student
+from ganlet.compile.model import DetectorConfig
+from ganlet.compile.sizing import size_student
+from ganlet.compile.train import save_model, score_windows, train
+from ganlet.runtime.lstm import Network, score_from_residuals
+from ganlet.runtime.manifest import SCHEMA_VERSION
+from ganlet.runtime.weights import load_weights
+
+TINY = DetectorConfig(window=16, adversarial_epochs=2, inversion_epochs=5, encoder_hidden=(16,),
+                      generator_hidden=(8, 16), discriminator_hidden=8, max_train_windows=400)
+KEY = b"0123456789abcdef-test-signing-key"
+# Teacher-vs-student Spearman bar on the calibration span. An untrained student already ranks
+# windows at ~0.95-0.97 against this teacher (both residuals grow with |x|), so "positive" is
+# no test; a distilled student reaches > 0.999 here.
+DISTILLED_SPEARMAN_MIN = 0.99
+
+
+@pytest.fixture(scope="module")
+def teacher(tmp_path_factory):
+    root = tmp_path_factory.mktemp("compile")
+    df = correlated_series(1500)
+    csv = root / "data.csv"
+    df.to_csv(csv, index=False)
+    frame = load_frame(csv, IntakeOptions())
+    spans = split_spans(frame, None, 0.2)
+    model = train(frame, spans, TINY)
+    model_dir = save_model(model, root / "model")
+    return {"root": root, "df": df, "model": model, "model_dir": model_dir}
+
+
+@pytest.fixture(scope="module")
+def bundle(teacher):
+    """`ganlet compile MODEL_DIR --out B --archive --sign-key KEY` (no --board: the default)."""
+    root = teacher["root"]
+    key_file = root / "key"
+    key_file.write_bytes(KEY + b"\n")      # a trailing newline is not part of the key
+    out = root / "B"
+    started = datetime.now(timezone.utc)
+    result = CliRunner().invoke(app, ["compile", str(teacher["model_dir"]), "--out", str(out),
+                                      "--archive", "--sign-key", str(key_file),
+                                      "--distil-epochs", "3"])
+    assert result.exit_code == 0, result.output
+    manifest_bytes = (out / "manifest.json").read_bytes()
+    return {"dir": out, "key_file": key_file, "stdout": result.stdout, "started": started,
+            "manifest": json.loads(manifest_bytes), "manifest_bytes": manifest_bytes}
+
+
+def bundle_files(folder):
+    return {p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file()}
+
+
+def run_check(folder, *args):
+    return subprocess.run([sys.executable, str(folder / "run.py"), "check", *args],
+                          capture_output=True, text=True, timeout=120)
+
+
+# ---------------------------------------------------------------------------------------------
+# distillation and quantisation figures
+
+
+def test_agreement_matches_scipy_pandas_and_numpy():
+    rng = np.random.default_rng(3)
+    ref = rng.gamma(2.0, 0.1, size=300)
+    other = ref * (1 + 0.2 * rng.standard_normal(300)) + 0.01
+    a = agreement(ref, other)
+    # reference: scipy.stats.spearmanr
+    assert a["spearman"] == pytest.approx(spearmanr(ref, other).statistic, abs=1e-12)
+    # reference: Spearman's rho is Pearson's r of the ranks (scipy.stats.rankdata, numpy.corrcoef)
+    assert a["spearman"] == pytest.approx(np.corrcoef(rankdata(ref), rankdata(other))[0, 1],
+                                          abs=1e-12)
+    # reference: pandas.Series.corr(method="spearman")
+    assert a["spearman"] == pytest.approx(pd.Series(ref).corr(pd.Series(other), "spearman"),
+                                          abs=1e-12)
+    # reference: numpy max / median of absolute and relative errors
+    assert a["max_abs_error"] == pytest.approx(np.max(np.abs(other - ref)), rel=1e-12)
+    assert a["max_rel_error"] == pytest.approx(np.max(np.abs(other - ref) / ref), rel=1e-12)
+    assert a["median_rel_error"] == pytest.approx(np.median(np.abs(other - ref) / ref), rel=1e-12)
+    assert a["n"] == 300
+    assert agreement(ref, -ref)["spearman"] == pytest.approx(-1.0)
+
+
+def test_distilled_student_agrees_with_teacher_and_an_untrained_one_does_not(teacher, bundle):
+    model = teacher["model"]
+    m = bundle["manifest"]
+    x, _ = calibration_windows(model)
+    assert len(x) > 100
+    teacher_scores, _ = score_windows(model.detector, x)
+    # The distilled student: the fp32 weights `ganlet compile` kept beside the teacher.
+    fp32 = dict(np.load(m["teacher"]["student_weights"], allow_pickle=False))
+    _, res = Network(fp32).forward(x)
+    student_scores = score_from_residuals(res)
+    ours = agreement(teacher_scores, student_scores)
+    # reference: scipy.stats.spearmanr and numpy on the same arrays
+    assert ours["spearman"] == pytest.approx(spearmanr(teacher_scores, student_scores).statistic,
+                                             abs=1e-12)
+    assert ours["max_abs_error"] == pytest.approx(
+        np.max(np.abs(student_scores.astype(np.float64) - teacher_scores)), rel=1e-9)
+    # the figure the compile reported (torch student) is the one we recompute (numpy student)
+    reported = m["teacher"]["agreement"]
+    assert reported["n"] == len(x)
+    assert abs(reported["spearman"] - ours["spearman"]) < 1e-3
+    assert f"Spearman {reported['spearman']:.4f}" in bundle["stdout"]
+
+    # An untrained student of the same plan: distil with zero epochs.
+    plan = size_student(load_board(DEFAULT_BOARD), len(model.channels),
+                        model.detector.config.latent, model.detector.config.window,
+                        model.period_s)
+    untrained = distil_teacher_vs_student(model, distil(model, plan, DistilConfig(epochs=0)))
+    print(f"\nteacher vs student on the calibration span: distilled Spearman "
+          f"{ours['spearman']:.5f} (median rel error {ours['median_rel_error']:.3g}), untrained "
+          f"{untrained['spearman']:.5f} (median rel error {untrained['median_rel_error']:.3g})")
+    assert ours["spearman"] > DISTILLED_SPEARMAN_MIN
+    assert untrained["spearman"] < DISTILLED_SPEARMAN_MIN
+    assert ours["median_rel_error"] < untrained["median_rel_error"]
+
+
+def test_quantisation_effect_on_scores_is_reported_and_small(teacher, bundle):
+    x, _ = calibration_windows(teacher["model"])
+    fp32 = dict(np.load(bundle["manifest"]["teacher"]["student_weights"], allow_pickle=False))
+    fp32_scores = score_from_residuals(Network(fp32).forward(x)[1])
+    int8_scores = score_from_residuals(
+        Network(load_weights(bundle["dir"] / "weights.npz")).forward(x)[1])
+    q = agreement(fp32_scores, int8_scores)
+    # reference: scipy.stats.spearmanr
+    rho = spearmanr(fp32_scores, int8_scores).statistic
+    assert q["spearman"] == pytest.approx(rho, abs=1e-12)
+    assert rho > 0.99
+    # `ganlet compile` prints the same figure (student_vs_int8 of its report)
+    found = re.search(r"int8 vs fp32 student: Spearman ([\d.]+), max rel error ([\d.e+-]+)",
+                      bundle["stdout"])
+    assert found, bundle["stdout"]
+    assert float(found.group(1)) > 0.99
+    assert abs(float(found.group(1)) - rho) < 1e-3
+    print(f"\nint8 vs fp32 student: Spearman {rho:.6f}, max rel error {q['max_rel_error']:.2e}")
+
+
+# ---------------------------------------------------------------------------------------------
+# the bundle
+
+
+def test_manifest_describes_the_detector(teacher, bundle):
+    m = bundle["manifest"]
+    model, df = teacher["model"], teacher["df"]
+    assert m["schema_version"] == SCHEMA_VERSION
+    assert m["tool_version"] == __version__
+    created = datetime.fromisoformat(m["created"].replace("Z", "+00:00"))
+    assert bundle["started"] - timedelta(seconds=2) <= created <= datetime.now(timezone.utc)
+    assert [c["name"] for c in m["channels"]] == ["flow", "power", "temp"]   # the CSV's order
+    assert [c["unit"] for c in m["channels"]] == list(model.units)
+    assert m["time_column"] == "time"
+    # reference: pandas differences of the written timestamps (60 s grid in synthetic.py)
+    assert m["period_s"] == pd.Series(df["time"]).diff().dt.total_seconds().median() == 60.0
+    # robust scaler on the fit span: median and IQR / 1.349
+    # reference: numpy.median / numpy.percentile; 1.349 = IQR of a standard normal (scipy.stats.norm)
+    fit = df[["flow", "power", "temp"]].to_numpy()[slice(*model.spans.fit)]
+    q75, q25 = np.percentile(fit, [75, 25], axis=0)
+    assert m["scaler"]["kind"] == "robust"
+    np.testing.assert_allclose(m["scaler"]["center"], np.median(fit, axis=0), rtol=1e-12)
+    np.testing.assert_allclose(m["scaler"]["scale"], (q75 - q25) / 1.349, rtol=1e-12)
+    assert 1.349 == pytest.approx(norm.ppf(0.75) - norm.ppf(0.25), abs=1e-3)
+    board = load_board(DEFAULT_BOARD)
+    plan = size_student(board, 3, model.detector.config.latent, TINY.window, 60.0)
+    assert m["window"] == TINY.window and m["hop"] == plan.hop
+    assert m["network"]["encoder"] == list(plan.encoder_hidden)
+    assert m["network"]["generator"] == list(plan.generator_hidden)
+    assert m["score"]["combine"] == "mean" and "residual" in m["score"]
+    assert m["threshold"]["kind"] in ("pot", "rolling")
+    # the default board when --board is omitted
+    assert m["board"]["name"] == DEFAULT_BOARD
+    budget, estimate = m["board"]["budget"], m["board"]["estimate"]
+    assert budget["storage_kb"] == board.storage_budget_kb
+    assert budget["ram_mb"] == board.ram_budget_mb
+    assert estimate["storage_kb"] <= budget["storage_kb"]
+    assert estimate["ram_mb"] <= budget["ram_mb"]
+    assert estimate["hop_ms"] <= budget["hop_ms"]
+    assert estimate["flops_per_hop"] == plan.flops_per_hop
+
+
+def test_every_file_is_hashed_and_the_signature_is_hmac_sha256(bundle):
+    folder, m = bundle["dir"], bundle["manifest"]
+    present = bundle_files(folder)
+    assert {"manifest.json", "manifest.sig", "model.onnx", "weights.npz", "run.py",
+            "INSTALL.txt", "ganlet/__init__.py", "ganlet/runtime/lstm.py"} <= present
+    assert set(m["files"]) == present - {"manifest.json", "manifest.sig"}
+    for rel, digest in m["files"].items():
+        # reference: hashlib.sha256
+        assert hashlib.sha256((folder / rel).read_bytes()).hexdigest() == digest, rel
+    # reference: hmac (RFC 2104) with SHA-256 over the exact manifest bytes
+    expected = hmac.new(KEY, bundle["manifest_bytes"], hashlib.sha256).hexdigest()
+    assert (folder / "manifest.sig").read_text().strip() == expected
+
+
+def test_flash_use_is_within_the_estimate_and_the_budget(bundle):
+    folder, m = bundle["dir"], bundle["manifest"]
+    core = sum((folder / rel).stat().st_size for rel in bundle_files(folder)
+               if not rel.startswith("ganlet/"))
+    assert core <= m["board"]["estimate"]["storage_kb"] * 1024
+    assert core <= m["board"]["budget"]["storage_kb"] * 1024
+
+
+def test_runtime_copy_is_the_runtime_package(bundle):
+    src = Path(runtime_pkg.__file__).parent
+    copied = sorted(p.name for p in (bundle["dir"] / "ganlet" / "runtime").glob("*.py"))
+    expected = sorted(p.name for p in src.glob("*.py"))
+    assert copied == expected
+    # reference: filecmp (byte-for-byte)
+    _, mismatch, errors = filecmp.cmpfiles(src, bundle["dir"] / "ganlet" / "runtime", expected,
+                                           shallow=False)
+    assert mismatch == [] and errors == []
+
+
+def test_weights_npz_is_int8_with_row_scales(bundle):
+    m = bundle["manifest"]
+    # reference: numpy.load without pickles
+    with np.load(bundle["dir"] / "weights.npz", allow_pickle=False) as npz:
+        raw = {k: npz[k] for k in npz.files}
+    fp32 = dict(np.load(m["teacher"]["student_weights"], allow_pickle=False))
+    matrices = [k for k in fp32 if k.endswith((".W", ".R"))]
+    assert set(raw) == set(fp32) | {k + ".scale" for k in matrices}
+    for key in fp32:
+        if key in matrices:
+            axis = 0 if key.endswith("head.W") else 1
+            assert raw[key].dtype == np.int8 and raw[key].shape == fp32[key].shape
+            scale = raw[key + ".scale"]
+            assert scale.dtype == np.float32 and scale.shape == (fp32[key].shape[axis],)
+            shape = [1] * fp32[key].ndim
+            shape[axis] = -1
+            s = scale.reshape(shape)
+            # reference: ONNX QuantizeLinear rounds to nearest: |w - q * s| <= s / 2
+            err = np.abs(fp32[key] - raw[key].astype(np.float32) * s)
+            assert (err <= s / 2 * (1 + 1e-5) + 1e-12).all(), key
+            assert np.abs(raw[key]).max() <= 127       # symmetric: max |w| / 127
+        else:
+            assert raw[key].dtype == np.float32
+            np.testing.assert_array_equal(raw[key], fp32[key])
+
+
+def test_onnx_model_checks_and_matches_the_numpy_network(teacher, bundle):
+    path = bundle["dir"] / "model.onnx"
+    # reference: onnx.checker
+    onnx.checker.check_model(onnx.load(path), full_check=True)
+    x, _ = calibration_windows(teacher["model"])
+    x = x[:200]
+    # reference: onnxruntime's LSTM / DequantizeLinear kernels
+    session = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    recon, res = session.run(["reconstruction", "residuals"], {"window": x})
+    net_recon, net_res = Network(load_weights(bundle["dir"] / "weights.npz")).forward(x)
+    np.testing.assert_allclose(res, net_res, rtol=1e-5, atol=0)
+    np.testing.assert_allclose(recon, net_recon, rtol=1e-5, atol=1e-6)
+
+
+def test_install_notes_and_archive(bundle):
+    text = (bundle["dir"] / "INSTALL.txt").read_text()
+    assert "systemd" in text and "[Service]" in text and "ExecStart=" in text
+    assert "advisory" in text and "NOT a safety function" in text
+    archive = bundle["dir"].with_name("B.tar.gz")
+    # reference: tarfile
+    with tarfile.open(archive, "r:gz") as tar:
+        names = {t.name for t in tar.getmembers() if t.isfile()}
+    assert names == {f"B/{rel}" for rel in bundle_files(bundle["dir"])}
+
+
+def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path):
+    key = str(bundle["key_file"])
+    ok = run_check(bundle["dir"], "--key", key, "--require-signature")
+    assert ok.returncode == 0, ok.stderr
+    assert "bundle OK" in ok.stdout and "signed" in ok.stdout
+    assert DEFAULT_BOARD in ok.stdout
+
+    copy = tmp_path / "B"
+    shutil.copytree(bundle["dir"], copy)
+    weights = copy / "weights.npz"
+    data = bytearray(weights.read_bytes())
+    data[len(data) // 2] ^= 0x01
+    weights.write_bytes(bytes(data))
+    bad = run_check(copy, "--key", key, "--require-signature")
+    assert bad.returncode != 0
+    assert "weights.npz" in bad.stderr
+
+    # a changed manifest no longer matches its signature
+    shutil.copy2(bundle["dir"] / "weights.npz", weights)
+    manifest = copy / "manifest.json"
+    manifest.write_bytes(manifest.read_bytes().replace(b'"hop": ', b'"hop":  ', 1))
+    bad = run_check(copy, "--key", key, "--require-signature")
+    assert bad.returncode != 0 and "signature" in bad.stderr
+
+
+@pytest.mark.parametrize("kind", ["file", "folder"])
+def test_out_that_is_not_a_bundle_is_refused_before_distillation(teacher, tmp_path, kind,
+                                                                 monkeypatch):
+    import ganlet.compile.pack as pack
+
+    def no_distil(*_args, **_kwargs):
+        raise AssertionError("distillation started before --out was checked")
+
+    monkeypatch.setattr(pack, "distil", no_distil)
+    out = tmp_path / "out"
+    if kind == "file":
+        out.write_text("not a folder")
+    else:
+        out.mkdir()
+        (out / "notes.txt").write_text("someone's files")
+    result = CliRunner().invoke(app, ["compile", str(teacher["model_dir"]), "--out", str(out)])
+    assert result.exit_code == 2, result.output
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and str(out) in lines[0]
+    assert (out.read_text() == "not a folder" if kind == "file"
+            else (out / "notes.txt").read_text() == "someone's files")

@@ -1,0 +1,208 @@
+"""Sizing a student to a board: every shipped board gets a plan inside each of its budgets, a
+board that cannot hold any student is refused with a message naming the constraint and a size
+that would fit, and the architecture arithmetic matches torch's own parameter count."""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+from synthetic import correlated_series
+from typer.testing import CliRunner
+
+from ganlet.compile.boards import DEFAULT_BOARD, list_boards, load_board
+from ganlet.compile.cli import app
+from ganlet.compile.data import IntakeOptions, load_frame, split_spans
+from ganlet.compile.layout import network_weights
+from ganlet.compile.model import DetectorConfig, LSTMStack
+from ganlet.compile.sizing import LADDER, DoesNotFit, network_counts, plan_for, size_student
+from ganlet.compile.train import save_model, train
+from ganlet.runtime.lstm import Network
+
+# A board that holds everything; tests shrink one budget at a time.
+ROOMY = {
+    "name": "tiny", "description": "test board", "cpu_class": "test-cpu", "cores": 1,
+    "mflops_single_core": 1000.0, "ram_budget_mb": 1024, "storage_budget_kb": 65536,
+    "onnxruntime": False, "python": "3.9", "numpy": "1.19", "sample_period_s": 10.0,
+    "compute_fraction": 0.5,
+}
+
+
+def write_board(path, **changes):
+    """A board TOML in the schema of DEVELOPERS.md "Board profiles"."""
+    fields = {**ROOMY, **changes}
+    lines = []
+    for key, value in fields.items():
+        if isinstance(value, bool):
+            lines.append(f"{key} = {'true' if value else 'false'}")
+        elif isinstance(value, str):
+            lines.append(f'{key} = "{value}"')
+        else:
+            lines.append(f"{key} = {value!r}")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def fits(plan, board) -> bool:
+    return (plan.storage_bytes <= board.storage_budget_kb * 1024
+            and plan.ram_bytes <= board.ram_budget_mb * 2**20
+            and plan.hop_seconds_estimate <= plan.hop_seconds_budget)
+
+
+@pytest.mark.parametrize("channels, window", [(3, 16), (3, 32), (8, 64)])
+def test_plan_respects_every_budget_of_every_shipped_board(channels, window):
+    boards = list_boards()
+    assert {b.name for b in boards} >= {"a53-512", "a72-2g", "x86-lowpower", "workstation"}
+    latent = max(2, channels // 2)
+    for board in boards:
+        period = board.sample_period_s
+        plan = size_student(board, channels, latent, window, period)
+        assert plan.board == board.name
+        assert plan.storage_bytes <= board.storage_budget_kb * 1024
+        assert plan.ram_bytes <= board.ram_budget_mb * 2**20
+        assert plan.hop_seconds_estimate <= plan.hop_seconds_budget
+        # the budget per hop is the board's share of the hop's sample periods
+        assert plan.hop_seconds_budget == pytest.approx(board.compute_fraction * plan.hop * period)
+        # the time estimate is the FLOPs at the board's MFLOP/s
+        assert plan.hop_seconds_estimate == pytest.approx(
+            plan.flops_per_hop / (board.mflops_single_core * 1e6))
+        # the largest rung that fits: every larger rung fails at every allowed hop
+        rung = LADDER.index((plan.encoder_hidden, plan.generator_hidden))
+        for enc, gen in LADDER[:rung]:
+            for hop in range(1, max(1, window // 4) + 1):
+                assert not fits(plan_for(board, channels, latent, enc, gen, window, hop, period),
+                                board)
+        # and the smallest hop at which this rung fits
+        for hop in range(1, plan.hop):
+            assert not fits(plan_for(board, channels, latent, plan.encoder_hidden,
+                                     plan.generator_hidden, window, hop, period), board)
+
+
+@pytest.mark.parametrize("channels, latent, enc, gen", [
+    (3, 2, (32,), (16, 32)), (5, 2, (8,), (6, 8)), (1, 3, (4, 7), (5,)), (8, 4, (12, 6, 9), (3,))])
+def test_counts_match_torch_parameters_and_numpy_flops(channels, latent, enc, gen):
+    encoder = LSTMStack(channels, enc, latent)
+    generator = LSTMStack(latent, gen, channels)
+    params, rows, biases, macs = network_counts(channels, latent, enc, gen)
+    tensors = list(encoder.parameters()) + list(generator.parameters())
+    # reference: torch.nn.Module.parameters (the real parameter count of the modules)
+    assert params == sum(p.numel() for p in tensors)
+    # reference: torch's tensor shapes: matrices are 2-D (one scale per row), biases 1-D
+    assert rows == sum(p.shape[0] for p in tensors if p.dim() == 2)
+    assert biases == sum(p.numel() for p in tensors if p.dim() == 1)
+    # one multiply-add per matrix entry per time step
+    assert macs == sum(p.numel() for p in tensors if p.dim() == 2)
+    window = 24
+    net = Network(network_weights(encoder.layers, encoder.head, generator.layers, generator.head))
+    board = load_board("a53-512")
+    plan = plan_for(board, channels, latent, enc, gen, window, 1, 10.0)
+    assert plan.parameters == params
+    assert plan.flops_per_hop == net.flops_per_window(window) == 2 * macs * window
+
+
+def test_ram_estimate_counts_onnxruntime_only_where_present(tmp_path):
+    without = load_board(write_board(tmp_path / "a.toml", onnxruntime=False))
+    with_ort = load_board(write_board(tmp_path / "b.toml", onnxruntime=True))
+    a = plan_for(without, 3, 2, (8,), (6, 8), 32, 1, 10.0)
+    b = plan_for(with_ort, 3, 2, (8,), (6, 8), 32, 1, 10.0)
+    assert b.ram_bytes > a.ram_bytes
+
+
+def _need(message: str, pattern: str) -> float:
+    found = re.search(pattern, message)
+    assert found, message
+    return float(found.group(1))
+
+
+def test_tiny_storage_is_refused_naming_storage_and_a_size_that_fits(tmp_path):
+    board = load_board(write_board(tmp_path / "tiny.toml", storage_budget_kb=4))
+    with pytest.raises(DoesNotFit) as err:
+        size_student(board, 3, 2, 32, 10.0)
+    msg = str(err.value)
+    assert "storage" in msg and "allows 4 KB" in msg
+    assert "RAM" not in msg and "compute" not in msg
+    need_kb = _need(msg, r"needs (\d+) KB")
+    # the named size does fit, with the smallest student
+    roomier = load_board(write_board(tmp_path / "t2.toml", storage_budget_kb=int(need_kb)))
+    plan = size_student(roomier, 3, 2, 32, 10.0)
+    assert (plan.encoder_hidden, plan.generator_hidden) == LADDER[-1]
+    # one KB less does not
+    with pytest.raises(DoesNotFit, match="storage"):
+        size_student(load_board(write_board(tmp_path / "t3.toml",
+                                            storage_budget_kb=int(need_kb) - 1)), 3, 2, 32, 10.0)
+
+
+def test_tiny_ram_is_refused_naming_ram_and_a_size_that_fits(tmp_path):
+    board = load_board(write_board(tmp_path / "tiny.toml", ram_budget_mb=8))
+    with pytest.raises(DoesNotFit) as err:
+        size_student(board, 3, 2, 32, 10.0)
+    msg = str(err.value)
+    assert "RAM" in msg and "allows 8 MB" in msg
+    assert "storage" not in msg and "compute" not in msg
+    need_mb = _need(msg, r"needs (\d+) MB")
+    plan = size_student(load_board(write_board(tmp_path / "t2.toml", ram_budget_mb=int(need_mb))),
+                        3, 2, 32, 10.0)
+    assert plan.ram_bytes <= need_mb * 2**20
+
+
+def test_tiny_compute_is_refused_naming_compute_and_the_mflops_that_fit(tmp_path):
+    board = load_board(write_board(tmp_path / "tiny.toml", mflops_single_core=1e-5))
+    with pytest.raises(DoesNotFit) as err:
+        size_student(board, 3, 2, 32, 10.0)
+    msg = str(err.value)
+    assert "compute" in msg and "MFLOP/s" in msg
+    assert "storage" not in msg and "RAM" not in msg
+    need = _need(msg, r"need ([\d.]+) MFLOP/s")
+    assert need > 1e-5
+    plan = size_student(load_board(write_board(tmp_path / "t2.toml", mflops_single_core=need)),
+                        3, 2, 32, 10.0)
+    assert plan.hop == 32 // 4      # only the longest allowed hop fits at that speed
+    assert plan.hop_seconds_estimate <= plan.hop_seconds_budget
+
+
+def test_several_problems_are_all_named(tmp_path):
+    board = load_board(write_board(tmp_path / "tiny.toml", storage_budget_kb=4, ram_budget_mb=8,
+                                   mflops_single_core=1e-5))
+    with pytest.raises(DoesNotFit) as err:
+        size_student(board, 3, 2, 32, 10.0)
+    assert all(word in str(err.value) for word in ("storage", "RAM", "compute"))
+
+
+@pytest.fixture(scope="module")
+def untrained_model_dir(tmp_path_factory):
+    """A model dir whose teacher saw no epochs: sizing happens before anything is distilled."""
+    root = tmp_path_factory.mktemp("sizing")
+    csv = root / "data.csv"
+    correlated_series(400).to_csv(csv, index=False)
+    frame = load_frame(csv, IntakeOptions())
+    cfg = DetectorConfig(window=16, adversarial_epochs=0, inversion_epochs=0,
+                         encoder_hidden=(8,), generator_hidden=(8,), discriminator_hidden=4)
+    return save_model(train(frame, split_spans(frame, None, 0.2), cfg), root / "model")
+
+
+def test_cli_refuses_a_board_that_cannot_hold_the_model(untrained_model_dir, tmp_path,
+                                                         monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    write_board(tmp_path / "tiny.toml", storage_budget_kb=4)
+    # in process (click's CliRunner keeps stdout and stderr apart): `ganlet compile MODEL
+    # --board tiny.toml --out X`
+    result = CliRunner().invoke(app, ["compile", str(untrained_model_dir), "--board", "tiny.toml",
+                                      "--out", "X"])
+    assert result.exit_code == 2, result.output
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: "), result.stderr
+    assert "storage" in lines[0] and re.search(r"needs \d+ KB", lines[0])
+    assert result.stdout == ""
+    assert not (tmp_path / "X").exists()
+
+
+def test_cli_boards_lists_every_shipped_board_and_the_default():
+    result = CliRunner().invoke(app, ["boards"])
+    assert result.exit_code == 0, result.output
+    for board in list_boards():
+        assert board.name in result.output
+    assert f"{DEFAULT_BOARD} (default)" in result.output
+    # the default is the smallest board: a bundle that fits there fits everywhere
+    smallest = min(list_boards(), key=lambda b: (b.storage_budget_kb, b.ram_budget_mb))
+    assert smallest.name == DEFAULT_BOARD
+
