@@ -190,7 +190,7 @@ def compile_cmd(
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
     sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256."),
     name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest (default: the model folder's name)."),
-    distil_epochs: int = typer.Option(30, "--distil-epochs", help="Distillation epochs."),
+    distil_epochs: int = typer.Option(80, "--distil-epochs", min=1, help="Distillation epochs."),
     seed: int = typer.Option(0, help="Random seed of the distillation."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):

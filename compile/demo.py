@@ -64,7 +64,7 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     echo("== 3. compile for the default board")
     compiled = compile_dir(result.out, out / "bundle",
                            CompileOptions(name="hollowmere-p2",
-                                          distil=DistilConfig(epochs=3 if quick else 30,
+                                          distil=DistilConfig(epochs=3 if quick else 80,
                                                               seed=seed)),
                            echo=lambda t: echo("   " + t))
     echo("   " + compiled.describe().replace("\n", "\n   "))

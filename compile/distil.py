@@ -25,7 +25,7 @@ from ganlet.compile.train import TrainedModel, score_windows, set_seed
 
 @dataclass
 class DistilConfig:
-    epochs: int = 30
+    epochs: int = 80
     batch_size: int = 128
     lr: float = 3e-3
     synthetic_factor: float = 1.0      # generated windows per real window

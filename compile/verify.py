@@ -60,7 +60,7 @@ class Tolerances:
     spearman_min: float = 0.999
     sample_agreement_min: float = 0.995
     event_match_hops: int = 3
-    teacher_spearman_min: float = 0.8
+    teacher_spearman_min: float = 0.95
 
     @classmethod
     def from_manifest(cls, manifest: dict, overrides: Sequence[str] = ()) -> Tolerances:
