@@ -19,6 +19,8 @@ from typing import Callable
 
 import pandas as pd
 
+from ganlet.compile import evaluate as evaluate_mod
+from ganlet.compile import verify as verify_mod
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.model import DetectorConfig
 from ganlet.compile.pack import CompileOptions, compile_dir
@@ -77,15 +79,39 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
          f"events in {replay['events']}")
 
+    echo("== 5. parity: the gateway's scores and alerts vs the workstation's")
+    reports = out / "reports"
+    reports.mkdir(exist_ok=True)
+    parity = verify_mod.verify(compiled.bundle, Path(info["data"]), model_dir=result.out)
+    verify_mod.write_json(parity, reports / "parity.json")
+    verify_mod.write_html(parity, reports / "parity.html")
+    echo(indent(parity.summary()))
+
+    echo("== 6. detection on the test span against the invented incidents")
+    detection = evaluate_mod.evaluate(compiled.bundle, Path(info["data"]),
+                                      Path(info["incidents"]), eval_from=info["test_start"])
+    evaluate_mod.write_json(detection, reports / "detection.json")
+    evaluate_mod.write_html(detection, reports / "detection.html")
+    echo(indent(detection.summary()))
+
     paths = {"data": info["data"], "incidents": info["incidents"],
              "model": str(result.out), "training_plot": str(result.out / "training.png"),
              "bundle": str(compiled.bundle), "gateway_events": replay["events"],
-             "gateway_scores": replay["scores"], "gateway_alerts": replay["alert_db"]}
+             "gateway_scores": replay["scores"], "gateway_alerts": replay["alert_db"],
+             "parity_report": str(reports / "parity.html"),
+             "detection_report": str(reports / "detection.html")}
+    echo(f"== parity verdict: {'PASS' if parity.passed else 'FAIL'}; reports: "
+         f"{paths['parity_report']} and {paths['detection_report']}")
     summary = {"paths": paths, "train_seconds": result.seconds,
                "compile": compiled.report, "alerts": replay["alerts"],
+               "parity_passed": parity.passed, "detection": detection.to_json(),
                "seconds": time.perf_counter() - started}
     (out / "demo_summary.json").write_text(json.dumps(summary, indent=2, default=str))
     return summary
+
+
+def indent(text: str) -> str:
+    return "\n".join("   " + line for line in text.splitlines())
 
 
 def write_test_span(data: Path, test_start: str, window: int, out: Path) -> Path:
