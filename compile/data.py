@@ -252,10 +252,12 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         raise IntakeError(f"{path}: all rows share one timestamp; need a time series")
     period = opts.period_s or float(np.median(positive))
 
-    # Put every row on the grid t0 + k * period; rows sharing a slot are duplicates: averaged.
+    # Put every row on the grid t0 + k * period; rows sharing a slot are averaged.
     t0 = times_np[0]
     offsets = (times_np - t0).astype("timedelta64[ns]").astype(np.int64) / 1e9
-    slot = np.rint(offsets / period).astype(np.int64)
+    # Round half up: each slot takes [t - P/2, t + P/2). np.rint rounds half to even, which
+    # gives uneven bins (1, 3, 1, 3 rows) when resampling onto a coarser grid.
+    slot = np.floor(offsets / period + 0.5).astype(np.int64)
     n_slots = int(slot[-1]) + 1
     # Duplicates are rows repeating a timestamp; distinct times sharing a slot (a --period
     # coarser than the data) are resampling, not duplicates.
@@ -455,4 +457,5 @@ def grid_index(frame: Frame, times) -> np.ndarray:
         raise IntakeError(f"{int(parsed.isna().sum())} times cannot be parsed")
     stamps = parsed.to_numpy()
     offset = (stamps - frame.times.values[0]).astype("timedelta64[ns]").astype(np.int64) / 1e9
-    return np.clip(np.rint(offset / frame.period_s).astype(np.int64), 0, len(frame.times) - 1)
+    slot = np.floor(offset / frame.period_s + 0.5).astype(np.int64)   # as load_frame rounds
+    return np.clip(slot, 0, len(frame.times) - 1)
