@@ -157,9 +157,14 @@ def read_table(path: Path, sep: Optional[str]) -> pd.DataFrame:
         except csv.Error:
             sep = ","
     try:
-        return pd.read_csv(path, sep=sep)
+        df = pd.read_csv(path, sep=sep)
     except (pd.errors.ParserError, UnicodeDecodeError) as exc:
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
+    # One column whose name holds another delimiter: the separator is wrong, not the time column.
+    if len(df.columns) == 1 and any(d in str(df.columns[0]) for d in ",;\t|"):
+        raise IntakeError(f"{path}: read one column {str(df.columns[0])!r} with delimiter "
+                          f"{sep!r}; the delimiter looks wrong, give it with --sep")
+    return df
 
 
 def find_time_column(df: pd.DataFrame, requested: Optional[str]) -> str:
