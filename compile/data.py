@@ -141,6 +141,21 @@ def parse_period(text) -> Optional[float]:
     return seconds
 
 
+def snapped_period(median: float, notes: list) -> float:
+    """The median spacing, snapped to whole seconds (whole ms below 1 s) when within 1 %.
+
+    Loggers sample at whole-second or whole-millisecond periods (common practice); with timing
+    jitter the median spacing misses that by a little, and over thousands of rows the error
+    adds up to whole periods: rows then collide in one slot and false gaps open between them.
+    """
+    unit = 1.0 if median >= 1.0 else 0.001
+    nice = round(median / unit) * unit
+    if nice > 0 and nice != median and abs(nice - median) <= 0.01 * median:
+        notes.append(f"median spacing {median:.6g} s taken as {fmt_period(nice)}")
+        return float(nice)
+    return median
+
+
 def read_table(path: Path, sep: Optional[str]) -> pd.DataFrame:
     path = Path(path)
     if not path.exists():
@@ -255,7 +270,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     positive = dt[dt > 0]
     if len(positive) == 0:
         raise IntakeError(f"{path}: all rows share one timestamp; need a time series")
-    period = opts.period_s or float(np.median(positive))
+    period = opts.period_s or snapped_period(float(np.median(positive)), notes)
 
     # Put every row on the grid t0 + k * period; rows sharing a slot are averaged.
     t0 = times_np[0]
