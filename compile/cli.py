@@ -126,7 +126,11 @@ def progress_printer(quiet: bool):
         info = "  ".join(f"{k} {v:.4g}" for k, v in losses.items())
         bar.update(tasks[phase], completed=epoch, info=info)
 
-    return update, bar.stop
+    def stop():
+        if tasks:          # stopping a bar that never started still prints an empty line
+            bar.stop()
+
+    return update, stop
 
 
 @app.command()
