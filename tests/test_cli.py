@@ -1,0 +1,197 @@
+"""The `ganlet` command: help everywhere, the version, one-line errors with exit code 2, and the
+model directory `ganlet train` writes."""
+
+from __future__ import annotations
+
+import importlib.metadata
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+import typer
+from synthetic import correlated_series
+from typer.testing import CliRunner
+
+from ganlet.compile.cli import app
+from ganlet.compile.data import RobustScaler
+from ganlet.compile.model import Detector, DetectorConfig
+from ganlet.compile.train import load_model
+
+pytestmark = pytest.mark.usefixtures("one_torch_thread")
+
+GANLET = Path(sys.executable).with_name("ganlet")     # the installed entry point
+TINY = {"encoder_hidden": [4], "generator_hidden": [4], "discriminator_hidden": 4,
+        "adversarial_epochs": 2, "inversion_epochs": 2, "window": 8, "max_train_windows": 200}
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"                   # reference: PNG specification, section 5.2
+
+
+def run(*args):
+    return CliRunner().invoke(app, [str(a) for a in args])
+
+
+def assert_one_error_line(result, *fragments):
+    assert result.exit_code == 2, result.output
+    errors = [ln for ln in result.stderr.splitlines() if ln.startswith("error:")]
+    assert len(errors) == 1, result.stderr
+    assert "Traceback" not in result.output
+    assert result.exception is None or isinstance(result.exception, SystemExit)
+    for fragment in fragments:
+        assert fragment in errors[0], errors[0]
+
+
+@pytest.fixture
+def config_file(tmp_path):
+    def write(**overrides) -> Path:
+        path = tmp_path / f"cfg{len(list(tmp_path.glob('cfg*')))}.json"
+        path.write_text(json.dumps({**TINY, **overrides}))
+        return path
+
+    return write
+
+
+def test_help_works_on_every_registered_command():
+    commands = typer.main.get_command(app).commands
+    assert {"train", "demo"} <= set(commands)
+    top = run("--help")
+    assert top.exit_code == 0 and "Usage" in top.stdout
+    for name in commands:
+        result = run(name, "--help")
+        assert result.exit_code == 0, (name, result.output)
+        assert "Usage" in result.stdout and name in result.stdout
+
+
+def test_version_matches_the_installed_distribution():
+    result = run("--version")
+    assert result.exit_code == 0
+    # reference: importlib.metadata, the version pip installed
+    assert result.stdout.strip() == f"ganlet {importlib.metadata.version('ganlet')}"
+
+
+def test_installed_entry_point_and_module_run():
+    assert GANLET.exists(), f"{GANLET}: the console script is not installed"
+    for cmd in ([str(GANLET), "--help"], [sys.executable, "-m", "ganlet.compile.cli", "--help"]):
+        proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+        assert proc.returncode == 0, proc.stderr
+        assert "train" in proc.stdout and "Usage" in proc.stdout
+    proc = subprocess.run([str(GANLET), "--version"], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0 and proc.stdout.strip().startswith("ganlet ")
+
+
+def test_real_process_bad_input_is_one_line_without_traceback(tmp_path):
+    proc = subprocess.run([str(GANLET), "train", str(tmp_path / "missing.csv"), "--out",
+                           str(tmp_path / "m")], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2
+    assert proc.stderr.splitlines() == [f"error: {tmp_path / 'missing.csv'}: no such file"]
+    assert proc.stdout == ""
+
+
+def test_missing_file(tmp_path):
+    result = run("train", tmp_path / "missing.csv", "--out", tmp_path / "m")
+    assert_one_error_line(result, "missing.csv: no such file")
+    assert result.stderr.count("\n") == 1
+    assert not (tmp_path / "m").exists()
+
+
+def test_constant_channel(tmp_path, write_csv):
+    df = correlated_series(300)
+    df["power"] = 4.0
+    result = run("train", write_csv(df), "--out", tmp_path / "m", "--quiet")
+    assert_one_error_line(result, "channel 'power' is constant over the training span")
+    assert result.stderr.count("\n") == 1
+    noisy = run("train", write_csv(df), "--out", tmp_path / "m")   # summary first, then the error
+    assert_one_error_line(noisy, "channel 'power' is constant")
+
+
+@pytest.mark.parametrize("period, fragment", [
+    ("soon", "--period 'soon' is not a duration"),
+    ("-5", "--period must be positive"),
+    ("0", "--period must be positive"),
+])
+def test_bad_period(tmp_path, write_csv, period, fragment):
+    result = run("train", write_csv(correlated_series(200)), "--out", tmp_path / "m",
+                 f"--period={period}", "--quiet")
+    assert_one_error_line(result, fragment)
+
+
+def test_bad_train_until_and_config_field(tmp_path, write_csv, config_file):
+    data = write_csv(correlated_series(200))
+    assert_one_error_line(run("train", data, "--out", tmp_path / "m", "--train-until", "1.5"),
+                          "--train-until 1.5: a fraction must lie in (0, 1]")
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps({"windw": 16}))
+    assert_one_error_line(run("train", data, "--out", tmp_path / "m", "--config", bad),
+                          "unknown config field(s): windw")
+
+
+def test_train_writes_the_model_directory(tmp_path, write_csv, config_file):
+    data = write_csv(correlated_series(300))
+    out = tmp_path / "model"
+    result = run("train", data, "--out", out, "--config", config_file())
+    assert result.exit_code == 0, result.output
+    assert "trained on" in result.stdout and str(out) in result.stdout
+
+    for name in ("generator.pt", "encoder.pt", "discriminator.pt", "config.json", "scaler.json",
+                 "data_summary.json", "history.json", "training.png", "model.json", "series.npz"):
+        assert (out / name).is_file(), name
+    config = DetectorConfig.from_json(json.loads((out / "config.json").read_text()))
+    assert config.window == 8 and config.adversarial_epochs == 2
+    fresh = Detector.build(3, config)
+    for part in ("generator", "encoder", "discriminator"):
+        state = torch.load(out / f"{part}.pt", weights_only=True)
+        expected = getattr(fresh, part).state_dict()
+        assert state.keys() == expected.keys()
+        assert all(state[k].shape == expected[k].shape for k in state)
+        getattr(fresh, part).load_state_dict(state)         # loads strictly
+
+    history = json.loads((out / "history.json").read_text())
+    assert len(history["adversarial"]) == 2 and len(history["inversion"]) == 2
+    assert set(history["adversarial"][0]) == {"d_loss", "g_loss"}
+    assert all(np.isfinite(r["recon"]) and r["recon"] > 0 for r in history["inversion"])
+    assert set(history["wall_s"]) == {"adversarial", "inversion", "total"}
+
+    png = (out / "training.png").read_bytes()
+    assert png[:8] == PNG_SIGNATURE
+    import matplotlib.image
+
+    assert matplotlib.image.imread(out / "training.png").ndim == 3   # reference: matplotlib
+
+    summary = json.loads((out / "data_summary.json").read_text())
+    assert summary["channels"] == ["flow", "power", "temp"] and summary["rows_read"] == 300
+    meta = json.loads((out / "model.json").read_text())
+    assert meta["format"] == "ganlet.model/1" and meta["spans"]["calibration"] == [240, 300]
+    scaler = RobustScaler.from_json(json.loads((out / "scaler.json").read_text()))
+    raw = pd.read_csv(data)[["flow", "power", "temp"]]                # reference: pandas
+    assert scaler.center == pytest.approx(raw.iloc[:240].median().tolist())
+    series = np.load(out / "series.npz")["series"]
+    np.testing.assert_allclose(series, scaler.transform(raw.to_numpy()), rtol=1e-6)
+    assert load_model(out).channels == ["flow", "power", "temp"]
+
+
+def test_quiet_prints_nothing_to_stdout_and_warnings_go_to_stderr(tmp_path, write_csv,
+                                                                   config_file):
+    data = write_csv(correlated_series(400))
+    result = run("train", data, "--out", tmp_path / "m", "--config", config_file(),
+                 "--window", "128", "--quiet")
+    assert result.exit_code == 0, result.output
+    assert result.stdout == ""
+    assert "warning: short history: using a window of 72 points instead of 128" in result.stderr
+    assert json.loads((tmp_path / "m" / "config.json").read_text())["window"] == 72
+
+
+def test_seed_from_the_config_file_is_kept_unless_seed_is_given(tmp_path, write_csv, config_file):
+    data = write_csv(correlated_series(200))
+    outs = {}
+    for key, args in {"file5": ["--config", config_file(seed=5)],
+                      "flag5": ["--config", config_file(), "--seed", "5"],
+                      "flag0": ["--config", config_file(seed=5), "--seed", "0"]}.items():
+        assert run("train", data, "--out", tmp_path / key, "--quiet", *args).exit_code == 0
+        outs[key] = torch.load(tmp_path / key / "generator.pt", weights_only=True)
+        assert json.loads((tmp_path / key / "config.json").read_text())["seed"] == (
+            0 if key == "flag0" else 5)
+    assert all(torch.equal(outs["file5"][k], outs["flag5"][k]) for k in outs["file5"])
+    assert any(not torch.equal(outs["file5"][k], outs["flag0"][k]) for k in outs["file5"])
