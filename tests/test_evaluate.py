@@ -174,7 +174,10 @@ def test_skab_bundle_beats_isolation_forest_on_f1(skab):
 
 @pytest.mark.xfail(strict=True, reason=(
     "target not met: under the static rule the bundle flags about half of the normal test "
-    "rows (pooled FAR ~0.55 vs IsolationForest ~0.19); the near-constant flow channel gets a "
-    "tiny robust scale on the 320-row fit span, so ordinary 1 L/min steps give large scores"))
+    "rows (pooled FAR ~0.55 vs IsolationForest ~0.19). Measured cause: the two temperature "
+    "channels drift 3-9 robust sigmas beyond their 400-row training range in the test span, "
+    "normal and anomalous rows alike, so their residuals dominate the score; IsolationForest's "
+    "trees saturate out-of-range values. A wider scale for point-mass channels did not help "
+    "(FAR 0.72)."))
 def test_skab_bundle_false_alarm_rate_below_isolation_forest(skab):
     assert skab[BUNDLE]["far"] < skab["IsolationForest"]["far"], skab
