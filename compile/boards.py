@@ -13,7 +13,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Dict, List, Sequence, Tuple
 
-import tomllib
+try:
+    import tomllib
+except ModuleNotFoundError:   # Python < 3.11
+    import tomli as tomllib
 
 # The repo's boards/ folder. compile/ is mapped to ganlet.compile in place (editable install),
 # so __file__ is the source file and ../boards is the shipped profile folder.

@@ -279,6 +279,10 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     # gives uneven bins (1, 3, 1, 3 rows) when resampling onto a coarser grid.
     slot = np.floor(offsets / period + 0.5).astype(np.int64)
     n_slots = int(slot[-1]) + 1
+    if n_slots > 100 * len(slot) + 1000:
+        raise IntakeError(f"a period of {fmt_period(period)} puts {len(slot)} rows on {n_slots} "
+                          "grid points (mostly empty); the data's median spacing is "
+                          f"{fmt_period(float(np.median(positive)))}: use a period near that")
     # Duplicates are rows repeating a timestamp; distinct times sharing a slot (a --period
     # coarser than the data) are resampling, not duplicates.
     duplicates = len(times_np) - len(np.unique(times_np))

@@ -39,7 +39,10 @@ from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Callable, Optional
 
-import tomllib
+try:
+    import tomllib
+except ModuleNotFoundError:   # Python < 3.11
+    import tomli as tomllib
 
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.model import DetectorConfig

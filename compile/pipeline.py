@@ -8,7 +8,10 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Optional
 
-import tomllib
+try:
+    import tomllib
+except ModuleNotFoundError:   # Python < 3.11
+    import tomli as tomllib
 
 from ganlet.compile.data import (
     IntakeError,

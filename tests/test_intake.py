@@ -360,3 +360,12 @@ def test_short_history_picks_a_shorter_window_with_a_warning(write_csv):
     small = load_frame(write_csv(correlated_series(120), "small.csv"))
     with pytest.warns(UserWarning, match="short history"):
         assert choose_window(small, split_spans(small, None, 0.2), 32) == 16
+
+
+def test_a_period_far_finer_than_the_data_is_refused(tmp_path):
+    """--period 0.001 on 1-minute data would allocate a grid of millions of empty points."""
+    path = tmp_path / "minute.csv"
+    pd.DataFrame({"time": pd.date_range("2026-01-01", periods=200, freq="60s"),
+                  "a": np.arange(200.0), "b": np.sin(np.arange(200.0))}).to_csv(path, index=False)
+    with pytest.raises(IntakeError, match="median spacing is 1 min"):
+        load_frame(path, IntakeOptions(period_s=0.001))
