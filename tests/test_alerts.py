@@ -4,6 +4,7 @@ out by hand from the rules in runtime/alerts.py (warm-up, min_hops, hysteresis, 
 import json
 
 import pytest
+
 from ganlet.runtime.alerts import AlertMachine
 
 

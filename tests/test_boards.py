@@ -2,6 +2,7 @@
 
 import pytest
 import tomllib
+
 from ganlet.compile.boards import (
     BOARDS_DIR,
     DEFAULT_BOARD,

@@ -4,6 +4,7 @@ import numpy as np
 import onnx
 import pytest
 import torch
+
 from ganlet.compile.export import build_onnx, run_onnxruntime, run_reference, save_onnx
 from ganlet.compile.layout import network_weights
 from ganlet.compile.quantise import dequantise_weights, quantise_weights

@@ -4,6 +4,9 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
+from onnx import TensorProto, helper, numpy_helper
+from onnx.reference import ReferenceEvaluator
+
 from ganlet.compile.quantise import (
     dequantise_weights,
     dequantize_linear,
@@ -12,8 +15,6 @@ from ganlet.compile.quantise import (
     quantize_linear,
     symmetric_scales,
 )
-from onnx import TensorProto, helper, numpy_helper
-from onnx.reference import ReferenceEvaluator
 
 OPSET = 20
 

@@ -9,10 +9,11 @@ import numpy as np
 import onnx
 import pytest
 import torch
-from ganlet.runtime.lstm import Network, lstm_forward, score_from_residuals, sigmoid
-from ganlet.runtime.weights import dequantise, load_weights, weights_nbytes
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
+
+from ganlet.runtime.lstm import Network, lstm_forward, score_from_residuals, sigmoid
+from ganlet.runtime.weights import dequantise, load_weights, weights_nbytes
 
 RUNTIME = Path(__file__).resolve().parents[1] / "runtime"
 

@@ -7,6 +7,8 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
+
 from ganlet.runtime.thresholds import (
     PotThreshold,
     RollingRobustThreshold,
@@ -18,7 +20,6 @@ from ganlet.runtime.thresholds import (
     pot_quantile,
     threshold_from_state,
 )
-from scipy import stats
 
 
 def test_rolling_matches_pandas_and_scipy():
