@@ -32,6 +32,7 @@ from ganlet.compile.layout import network_weights
 from ganlet.compile.quantise import dequantise_weights, quantisation_report, quantise_weights
 from ganlet.compile.sizing import StudentPlan, size_student
 from ganlet.compile.train import TrainedModel, load_model
+from ganlet.runtime.entry import RUN_PY
 from ganlet.runtime.lstm import Network, score_from_residuals
 from ganlet.runtime.manifest import SCHEMA_VERSION, write_manifest
 from ganlet.runtime.thresholds import calibrate_policy
@@ -39,19 +40,6 @@ from ganlet.runtime.thresholds import calibrate_policy
 RUNTIME_DIR = Path(runtime_pkg.__file__).resolve().parent
 THRESHOLD_KINDS = ("pot", "rolling", "static")
 
-RUN_PY = '''#!/usr/bin/env python3
-"""Run this bundle: python3 run.py check | stream | bench (see INSTALL.txt)."""
-import sys
-from pathlib import Path
-
-HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE))  # the runtime copy inside this bundle comes first
-
-from ganlet.runtime.cli import main  # noqa: E402
-
-if __name__ == "__main__":
-    sys.exit(main(bundle_dir=HERE))
-'''
 
 INSTALL_TXT = """ganlet bundle {name} for board {board}
 ==========================================================

@@ -325,19 +325,25 @@ class VerifyResult:
                            "student and the teacher are different networks and are judged by "
                            "teacher_spearman_min only"}
 
-    def summary(self) -> str:
+    def pair_rows(self) -> list:
+        """One row per compared pair, for the terminal table and the HTML report alike."""
         rows = []
         for name, p in self.pairs.items():
             ev = p["events"]
             rows.append([f"device vs {name}", p["n"], p["max_abs_error"], p["max_rel_error"],
                          p["spearman"], p["sample_agreement"],
-                         f"{ev['matched']}/{max(ev['device'], ev['other'])}",
+                         f"{ev['matched']} of {ev['device']} / {ev['other']}",
                          "strict" if p["strict"] else "rank only",
                          "PASS" if p["passed"] else "FAIL"])
+        return rows
+
+    def summary(self) -> str:
+        rows = self.pair_rows()
         lines = [f"parity of {self.bundle} on {self.data} ({self.hops} hops, device = "
                  f"{self.device_source})",
                  rep.text_table(["pair", "hops", "max abs err", "max rel err", "spearman",
-                                 "alert agree", "events", "judged", "result"], rows)]
+                                 "alert agree", "events matched (of device / other)",
+                                 "judged", "result"], rows)]
         lines += [f"note: {n}" for n in self.notes]
         lines.append("PASS" if self.passed else "FAIL")
         return "\n".join(lines)
@@ -510,15 +516,8 @@ def plots(result: VerifyResult) -> list:
 def write_html(result: VerifyResult, path: Path) -> Path:
     headers = ["pair", "hops", "max abs err", "max rel err", "spearman", "alert agreement",
                "events matched", "judged", "result"]
-    rows, classes = [], []
-    for name, p in result.pairs.items():
-        ev = p["events"]
-        rows.append([f"device vs {name}", p["n"], p["max_abs_error"], p["max_rel_error"],
-                     p["spearman"], p["sample_agreement"],
-                     f"{ev['matched']} of {ev['device']} / {ev['other']}",
-                     "strict" if p["strict"] else "rank only",
-                     "PASS" if p["passed"] else "FAIL"])
-        classes.append("pass" if p["passed"] else "fail")
+    rows = result.pair_rows()
+    classes = ["pass" if p["passed"] else "fail" for p in result.pairs.values()]
     deltas = []
     for name, p in result.pairs.items():
         for d in p["events"]["first_alert_delta_s"]:

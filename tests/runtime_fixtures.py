@@ -12,6 +12,7 @@ from typing import Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
+from ganlet.runtime.entry import RUN_PY
 from ganlet.runtime.intake import format_time
 from ganlet.runtime.lstm import Network, score_from_residuals
 from ganlet.runtime.manifest import SCHEMA_VERSION, write_manifest
@@ -23,19 +24,6 @@ CENTER = [40.0, 3.0, 1.5]
 SCALE = [5.0, 0.4, 0.3]
 T0 = 1_700_000_000.0  # 2023-11-14T22:13:20Z
 
-RUN_PY = '''#!/usr/bin/env python3
-"""Run this bundle: python3 run.py check | stream | bench (see INSTALL.txt)."""
-import sys
-from pathlib import Path
-
-HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE))  # the runtime copy inside this bundle comes first
-
-from ganlet.runtime.cli import main  # noqa: E402
-
-if __name__ == "__main__":
-    sys.exit(main(bundle_dir=HERE))
-'''
 
 
 def make_weights(n_channels: int, encoder: Sequence[int] = (8,), latent: int = 3,
