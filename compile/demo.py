@@ -79,10 +79,13 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
          f"events in {replay['events']}")
 
-    echo("== 5. parity: the gateway's scores and alerts vs the workstation's")
+    echo("== 5. parity: the gateway's scores and alerts (step 4) vs the workstation's")
     reports = out / "reports"
     reports.mkdir(exist_ok=True)
-    parity = verify_mod.verify(compiled.bundle, Path(info["data"]), model_dir=result.out)
+    # The replay's scores CSV is what a device would hand the integrator: verify takes it as
+    # the device's side rather than running the gateway a second time.
+    parity = verify_mod.verify(compiled.bundle, test_csv, device_scores=Path(replay["scores"]),
+                               model_dir=result.out)
     verify_mod.write_json(parity, reports / "parity.json")
     verify_mod.write_html(parity, reports / "parity.html")
     echo(indent(parity.summary()))

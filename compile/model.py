@@ -125,6 +125,3 @@ def score_from_residuals(res: torch.Tensor) -> torch.Tensor:
     """The one combined score: mean over channels."""
     return res.mean(dim=-1)
 
-
-def count_parameters(module: nn.Module) -> int:
-    return sum(p.numel() for p in module.parameters())

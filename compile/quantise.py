@@ -16,7 +16,7 @@ from typing import Dict, Optional
 
 import numpy as np
 
-from ganlet.runtime.weights import SCALE_SUFFIX, dequantise
+from ganlet.runtime.weights import SCALE_SUFFIX, dequantise, dequantise_dict
 
 QMIN, QMAX = -128, 127  # int8 saturation range (ONNX QuantizeLinear)
 SYMMETRIC_MAX = 127  # symmetric: use +-127 so the range is the same on both sides
@@ -110,23 +110,16 @@ def quantise_weights(weights: Dict[str, np.ndarray]) -> Dict[str, np.ndarray]:
 
 
 def dequantise_weights(qweights: Dict[str, np.ndarray]) -> Dict[str, np.ndarray]:
-    """Inverse of quantise_weights: a float32 contract dict in ONNX layout."""
-    out: Dict[str, np.ndarray] = {}
-    for key, value in qweights.items():
-        if key.endswith(SCALE_SUFFIX):
-            if key[: -len(SCALE_SUFFIX)] not in qweights:
-                raise ValueError(f"{key!r} has no matching weight")
-            continue
-        axis = matrix_axis(key)
-        value = np.asarray(value)
-        if axis is None:
-            out[key] = value.astype(np.float32)
-            continue
-        scale_key = key + SCALE_SUFFIX
-        if scale_key not in qweights:
-            raise ValueError(f"{key!r} has no companion {scale_key!r}")
-        out[key] = dequantize_linear(value, qweights[scale_key], axis)
-    return out
+    """Inverse of quantise_weights: a float32 contract dict in ONNX layout.
+
+    The gateway's own reader does the arithmetic (ganlet.runtime.weights.dequantise_dict), so
+    workstation and device dequantise with the same code; here every matrix must be quantised.
+    """
+    for key in qweights:
+        if not key.endswith(SCALE_SUFFIX) and matrix_axis(key) is not None \
+                and key + SCALE_SUFFIX not in qweights:
+            raise ValueError(f"{key!r} has no companion {key + SCALE_SUFFIX!r}")
+    return dequantise_dict(qweights)
 
 
 def quantisation_report(

@@ -23,7 +23,6 @@ from torch import nn
 
 from ganlet.compile.data import (
     Frame,
-    IntakeReport,
     RobustScaler,
     Spans,
     save_json,
@@ -284,7 +283,3 @@ def plot_training(model: TrainedModel, frame: Frame, png: Path) -> Path:
     fig.savefig(png, dpi=110)
     plt.close(fig)
     return Path(png)
-
-
-def describe(report: IntakeReport) -> str:
-    return report.summary()

@@ -48,20 +48,27 @@ def load_weights(path: Union[str, os.PathLike]) -> Dict[str, np.ndarray]:
     """Load weights.npz (no pickles) and return a float32 ONNX-layout dict, dequantised."""
     with np.load(path, allow_pickle=False) as npz:
         raw = {k: npz[k] for k in npz.files}
+    return dequantise_dict(raw, where=f"{path}: ")
+
+
+def dequantise_dict(raw: Dict[str, np.ndarray], where: str = "") -> Dict[str, np.ndarray]:
+    """A weights.npz-style dict -> float32 ONNX-layout dict: every key with a "KEY.scale"
+    companion is int8 and dequantised; other keys are converted to float32."""
     out: Dict[str, np.ndarray] = {}
     for key, value in raw.items():
+        value = np.asarray(value)
         if key.endswith(SCALE_SUFFIX):
             if key[: -len(SCALE_SUFFIX)] not in raw:
-                raise ValueError(f"{path}: {key!r} has no matching matrix")
+                raise ValueError(f"{where}{key!r} has no matching matrix")
             continue
         scale_key = key + SCALE_SUFFIX
         if scale_key in raw:
             if value.dtype != np.int8:
-                raise ValueError(f"{path}: {key!r} has a scale but is {value.dtype}, not int8")
+                raise ValueError(f"{where}{key!r} has a scale but is {value.dtype}, not int8")
             out[key] = dequantise(value, raw[scale_key], _row_axis(key, value.ndim))
         else:
             if value.dtype.kind not in "fiu":
-                raise ValueError(f"{path}: {key!r} is {value.dtype}, expected numbers")
+                raise ValueError(f"{where}{key!r} is {value.dtype}, expected numbers")
             out[key] = value.astype(np.float32)
     return out
 
