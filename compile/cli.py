@@ -151,6 +151,7 @@ def train(
     adversarial_epochs: Optional[int] = typer.Option(None, "--adversarial-epochs", help="Epochs of the G/D phase."),
     inversion_epochs: Optional[int] = typer.Option(None, "--inversion-epochs", help="Epochs of the encoder phase."),
     seed: Optional[int] = typer.Option(None, help="Random seed (default: the config's, else 0; runs are reproducible on CPU)."),
+    rate: Optional[str] = typer.Option(None, "--rate", help="Comma-separated channels to watch by their change per period instead of their level: slow quantities that wander, such as temperatures (train suggests them)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Learn one machine's normal behaviour from a sensor history."""
@@ -163,6 +164,7 @@ def train(
             max_fill=max_fill, train_until=parse_train_until(train_until),
             calibration=calibration, window=window, config_file=config,
             adversarial_epochs=adversarial_epochs, inversion_epochs=inversion_epochs, seed=seed,
+            rate=split_list(rate) or [],
         )
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))

@@ -17,6 +17,9 @@ from typing import Optional, Sequence
 import numpy as np
 import pandas as pd
 
+from ganlet.runtime.features import rate_mask
+from ganlet.runtime.features import series as feature_series
+
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
 LABEL_NAMES = ("anomaly", "label", "labels", "changepoint", "fault", "target", "is_anomaly",
                "class", "incident", "attack")
@@ -27,6 +30,9 @@ UNIT_SUFFIXES = {
     "_m3h": "m3/h", "_kpa": "kPa", "_psi": "psi",
 }
 MIN_WINDOW = 8
+# |Spearman rho| of level against time over the fit span above which intake suggests --rate
+# (common practice for a monotone-trend screen; not a significance test)
+TREND_RHO = 0.5
 
 
 class IntakeError(ValueError):
@@ -101,9 +107,14 @@ class Frame:
 
     def segments(self, start: int = 0, stop: Optional[int] = None) -> list:
         """(begin, end) row ranges without NaN, inside [start, stop)."""
-        stop = len(self.values) if stop is None else stop
-        ok = ~np.isnan(self.values[start:stop]).any(axis=1)
-        return [(start + b, start + e) for b, e in runs(ok)]
+        return segments_in(self.values, start, stop)
+
+
+def segments_in(values: np.ndarray, start: int = 0, stop: Optional[int] = None) -> list:
+    """(begin, end) row ranges of `values` without NaN, inside [start, stop)."""
+    stop = len(values) if stop is None else stop
+    ok = ~np.isnan(values[start:stop]).any(axis=1)
+    return [(start + b, start + e) for b, e in runs(ok)]
 
 
 def runs(mask: np.ndarray) -> list:
@@ -375,35 +386,72 @@ def split_spans(frame: Frame, train_until=None, calibration_fraction: float = 0.
 
 @dataclass
 class RobustScaler:
-    """(x - median) / (IQR / 1.349): the IQR of a normal distribution is 1.349 sigma."""
+    """Each channel's feature (its level, or its rate: ganlet/runtime/features.py), then
+    (f - median) / (IQR / 1.349): the IQR of a normal distribution is 1.349 sigma."""
 
     center: list
     scale: list
+    features: list = None      # "level" | "rate" per channel; None: all level
+
+    def __post_init__(self):
+        if self.features is None:
+            self.features = ["level"] * len(self.center)
 
     @classmethod
-    def fit(cls, values: np.ndarray, channels: Sequence[str]) -> RobustScaler:
+    def fit(cls, values: np.ndarray, channels: Sequence[str],
+            features: Optional[Sequence[str]] = None) -> RobustScaler:
+        features = list(features or ["level"] * len(channels))
+        values = feature_series(values, rate_mask(features))
         center = np.nanmedian(values, axis=0)
         q75, q25 = np.nanpercentile(values, [75, 25], axis=0)
         scale = (q75 - q25) / 1.349
         std = np.nanstd(values, axis=0)
         for j, name in enumerate(channels):
             if not np.isfinite(std[j]) or std[j] <= 1e-12 * max(1.0, abs(center[j])):
-                raise IntakeError(f"channel {name!r} is constant over the training span "
-                                  f"(value {center[j]:g}); it carries no information — drop it "
-                                  "with --channels or --exclude")
+                what = "(its rate) is" if features[j] == "rate" else "is"
+                raise IntakeError(f"channel {name!r} {what} constant over the training span "
+                                  f"(value {center[j]:g}); it carries no information — drop "
+                                  "it with --channels or --exclude")
             if scale[j] <= 1e-12 * max(1.0, abs(center[j])):
                 scale[j] = std[j]   # a mostly-constant channel with rare moves: fall back to std
-        return cls(center=center.tolist(), scale=scale.tolist())
+        return cls(center=center.tolist(), scale=scale.tolist(), features=features)
+
+    @property
+    def rate(self) -> np.ndarray:
+        return rate_mask(self.features)
 
     def transform(self, values: np.ndarray) -> np.ndarray:
-        return ((values - np.asarray(self.center)) / np.asarray(self.scale)).astype(np.float32)
+        """Raw rows [T, C] in time order -> scaled features (a rate channel's first row NaN)."""
+        f = feature_series(values, self.rate)
+        return ((f - np.asarray(self.center)) / np.asarray(self.scale)).astype(np.float32)
 
     def to_json(self) -> dict:
-        return {"kind": "robust", "center": self.center, "scale": self.scale}
+        return {"kind": "robust", "center": self.center, "scale": self.scale,
+                "features": self.features}
 
     @classmethod
     def from_json(cls, d: dict) -> RobustScaler:
-        return cls(center=list(d["center"]), scale=list(d["scale"]))
+        return cls(center=list(d["center"]), scale=list(d["scale"]),
+                   features=d.get("features"))
+
+
+def trending_channels(frame: Frame, span: tuple, min_rho: float = TREND_RHO) -> dict:
+    """Channels whose level follows time over the span (|Spearman rho| >= min_rho, scipy):
+    candidates to watch by their rate. name -> rho."""
+    from scipy.stats import spearmanr
+
+    b, e = span
+    out = {}
+    t = np.arange(e - b)
+    for j, name in enumerate(frame.channels):
+        v = frame.values[b:e, j]
+        ok = np.isfinite(v)
+        if ok.sum() < 10 or np.nanstd(v) == 0:
+            continue
+        rho = float(spearmanr(t[ok], v[ok]).statistic)
+        if abs(rho) >= min_rho:
+            out[name] = rho
+    return out
 
 
 def windows_from(values: np.ndarray, segments: Sequence[tuple], length: int, hop: int = 1):

@@ -4,9 +4,11 @@ Scores per grid point:
   teacher     a model directory: the torch teacher, the window ending at each point
   bundle      a bundle: the int8 student through the gateway path (`run.py stream
               --scores-out`), each hop's score and alert held until the next hop
-  baselines   IsolationForest, GaussianMixture (negative log-likelihood), OneClassSVM on the
-              scaled window's last point (one row of C channels), and a rolling z-score
-              (mean over channels of z^2 against the trailing ROLLING_Z_WINDOW points)
+  baselines   IsolationForest, GaussianMixture (negative log-likelihood), OneClassSVM on each
+              point's C channel levels, robust-scaled on the fit span, and a rolling z-score
+              (mean over channels of z^2 against the trailing ROLLING_Z_WINDOW points). They
+              see the data as delivered: levels, even for channels the detector watches by
+              rate (an off-the-shelf method is run that way; DEVELOPERS.md has both figures)
 One threshold rule for every method: the policy kind the bundle was calibrated with (for a
 model directory, the kind asked for, with the same short-span fallback as compile), calibrated
 on the method's own calibration-span scores, then the same alert machine. The bundle's alerts
@@ -31,7 +33,15 @@ import numpy as np
 import pandas as pd
 
 from ganlet.compile import report as rep
-from ganlet.compile.data import Frame, IntakeError, IntakeOptions, load_frame, parse_times
+from ganlet.compile.data import (
+    Frame,
+    IntakeError,
+    IntakeOptions,
+    RobustScaler,
+    load_frame,
+    parse_times,
+    segments_in,
+)
 from ganlet.compile.verify import (
     UnusableInput,
     alert_events,
@@ -250,6 +260,19 @@ def hold(rows: np.ndarray, values: np.ndarray, n: int) -> np.ndarray:
     return out.ffill().to_numpy()
 
 
+def level_views(model, frame: Frame):
+    """(training rows, DATA rows) as every channel's level, robust-scaled on the fit span: the
+    baselines' input. (None, None) for an old model directory without raw rows whose detector
+    watches some channel by rate."""
+    if model.raw is None:
+        if "rate" in model.scaler.features:
+            return None, None
+        return model.series, model.scaler.transform(frame.values)
+    f0, f1 = model.spans.fit
+    scaler = RobustScaler.fit(model.raw[f0:f1], model.channels)
+    return scaler.transform(model.raw), scaler.transform(frame.values)
+
+
 def source_kind(path: Path) -> str:
     path = Path(path)
     if (path / "manifest.json").is_file():
@@ -330,27 +353,31 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
 
     if model is not None:
         cal_segments = _span_segments(model.segments, model.spans.calibration)
-        fit_segments = _span_segments(model.segments, model.spans.fit)
         window = model.detector.config.window
         series = model.scaler.transform(frame.values)
         if teacher:
             cal_scores, _ = score_series(model.detector, model.series, cal_segments, window)
-            scores, _ = score_series(model.detector, series, frame.segments(), window)
+            scores, _ = score_series(model.detector, series, segments_in(series), window)
             pol, levels, alert = rule.apply(cal_scores[np.isfinite(cal_scores)], scores)
             methods["teacher"] = Method("teacher", scores, levels, alert, pol["kind"])
         if baselines:
-            c0, c1 = model.spans.calibration
-            fit_rows = np.concatenate([np.arange(b, e) for b, e in fit_segments])
-            base = baseline_scores(model.series[fit_rows], np.vstack([model.series[c0:c1],
-                                                                      series]))
-            rz_cal = rolling_z(model.series[:c1])[c0:c1]
-            base_cal = {k: v[: c1 - c0] for k, v in base.items()}
-            base_all = {k: v[c1 - c0:] for k, v in base.items()}
-            base_cal["rolling z-score"] = rz_cal
-            base_all["rolling z-score"] = rolling_z(series)
-            for name in BASELINES:
-                pol, levels, alert = rule.apply(base_cal[name], base_all[name])
-                methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
+            train_levels, levels = level_views(model, frame)
+            if train_levels is None:
+                notes.append("the model directory predates stored raw training rows and "
+                             "watches some channels by rate: baselines skipped (retrain)")
+            else:
+                c0, c1 = model.spans.calibration
+                f0, f1 = model.spans.fit
+                fit = train_levels[f0:f1]
+                base = baseline_scores(fit[np.isfinite(fit).all(axis=1)],
+                                       np.vstack([train_levels[c0:c1], levels]))
+                base_cal = {k: v[: c1 - c0] for k, v in base.items()}
+                base_all = {k: v[c1 - c0:] for k, v in base.items()}
+                base_cal["rolling z-score"] = rolling_z(train_levels[:c1])[c0:c1]
+                base_all["rolling z-score"] = rolling_z(levels)
+                for name in BASELINES:
+                    pol, levels_, alert = rule.apply(base_cal[name], base_all[name])
+                    methods[name] = Method(name, base_all[name], levels_, alert, pol["kind"])
     if not methods:
         raise UnusableInput("nothing to evaluate")
 
@@ -360,9 +387,10 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
         m.metrics.update(event_metrics(t, y[evaluated], m.alert[evaluated], frame.period_s))
     return EvalResult(source=str(source), data=str(data), times=frame.times, labels=y,
                       evaluated=evaluated, methods=methods, incidents=inc, rule=rule,
-                      features="the scaled window's last point (one row of "
-                                f"{len(frame.channels)} channels); rolling z-score over the "
-                                f"trailing {ROLLING_Z_WINDOW} points",
+                      features=f"each point's {len(frame.channels)} channel levels, "
+                               "robust-scaled on the fit span (the data as delivered, whatever "
+                               "the detector watches); rolling z-score over the trailing "
+                               f"{ROLLING_Z_WINDOW} points",
                       notes=notes)
 
 

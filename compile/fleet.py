@@ -19,6 +19,7 @@ The fleet file (TOML, our own format; see DEVELOPERS.md "Fleet files"):
     id = "p1"                     # letters, digits, - and _
     data = "data/p1.csv"          # relative to the fleet file
     channels = ["a", "b"]         # optional
+    rate = ["temp"]               # optional: channels watched by their change per period
     board = "a72-2g"              # optional, overrides [fleet].board
     incidents = "data/p1-incidents.csv"   # optional: adds a detection evaluation
     train_until = "2026-03-04T00:00:00"   # optional (row count, fraction or time)
@@ -62,6 +63,7 @@ class AssetSpec:
     data: str
     board: str
     channels: Optional[list] = None
+    rate: list = field(default_factory=list)
     incidents: Optional[str] = None
     train_until: object = None
     invented: Optional[dict] = None
@@ -130,7 +132,8 @@ def load_fleet(path: Path) -> FleetSpec:
         seen.add(a["id"])
         specs.append(AssetSpec(
             id=str(a["id"]), data=str(path.parent / a["data"]), board=str(a.get("board", board)),
-            channels=a.get("channels"), train_until=a.get("train_until"),
+            channels=a.get("channels"), rate=list(a.get("rate", [])),
+            train_until=a.get("train_until"),
             incidents=str(path.parent / a["incidents"]) if a.get("incidents") else None,
             invented=a.get("invented")))
     train = dict(raw.get("train", {}))
@@ -241,7 +244,7 @@ def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
     train = dict(fleet.train)
     options = {k: train.pop(k) for k in TRAIN_OPTION_KEYS if k in train}
     config = replace(DetectorConfig(), **train)
-    topts = TrainOptions(channels=spec.channels, config=config, **options)
+    topts = TrainOptions(channels=spec.channels, rate=spec.rate, config=config, **options)
     if spec.train_until is not None:
         topts.train_until = spec.train_until
     trained = train_from_file(Path(spec.data), out / "model", topts)

@@ -79,6 +79,8 @@ install of ganlet: this folder carries its own copy of the runtime.
 
 Input: CSV with a header naming the time column ({time_col}) and the channels
 ({channels}), any order, extra columns ignored; one row every {period:g} s.
+Always send the raw reading: a channel marked "(rate)" is watched by its change per period,
+which the gateway works out itself.
 """
 
 
@@ -192,7 +194,9 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     name = options.name or "detector"
     (out / "INSTALL.txt").write_text(INSTALL_TXT.format(
         name=name, board=board.name, folder=out.name, time_col=model.time_col,
-        channels=", ".join(model.channels), period=model.period_s))
+        channels=", ".join(c + (" (rate)" if f == "rate" else "")
+                           for c, f in zip(model.channels, model.scaler.features)),
+        period=model.period_s))
     report = {
         "teacher_vs_student": teacher_vs_student(model, student),
         "student_vs_int8": agreement(fp32_scores, device_scores),
@@ -211,7 +215,7 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
         "period_s": float(model.period_s),
         "max_gap_periods": int(model.max_fill_periods),
         "scaler": {"kind": "robust", "center": list(model.scaler.center),
-                   "scale": list(model.scaler.scale)},
+                   "scale": list(model.scaler.scale), "features": list(model.scaler.features)},
         "window": int(plan.window),
         "hop": int(plan.hop),
         "network": {"encoder": list(plan.encoder_hidden), "latent": int(plan.latent),

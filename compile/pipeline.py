@@ -21,6 +21,7 @@ from ganlet.compile.data import (
     parse_period,
     save_json,
     split_spans,
+    trending_channels,
 )
 from ganlet.compile.model import DetectorConfig
 from ganlet.compile.train import TrainedModel, plot_training, save_model, train
@@ -44,6 +45,7 @@ class TrainOptions:
     adversarial_epochs: Optional[int] = None
     inversion_epochs: Optional[int] = None
     seed: Optional[int] = None                   # None: the config's own seed
+    rate: list = field(default_factory=list)     # channels watched by their change per period
     config: Optional[DetectorConfig] = None      # used as is when given (tests, demo, fleet)
 
     def intake(self) -> IntakeOptions:
@@ -93,6 +95,20 @@ class TrainResult:
                 f"model in {self.out}")
 
 
+def rate_channels(frame, spans, asked: list, echo: Echo) -> list:
+    """Check --rate names; suggest it for channels that trend over the fit span."""
+    unknown = [c for c in asked if c not in frame.channels]
+    if unknown:
+        raise IntakeError(f"--rate {', '.join(unknown)}: no such channel; the channels are "
+                          f"{', '.join(frame.channels)}")
+    for name, rho in trending_channels(frame, spans.fit).items():
+        if name not in asked:
+            echo(f"note: channel {name!r} trends over the fit span (Spearman rho {rho:+.2f}); "
+                 f"if it is a slow quantity such as a temperature, --rate {name} watches its "
+                 "change per period instead of its level")
+    return list(asked)
+
+
 def train_from_file(data: Path, out: Path, options: TrainOptions,
                     progress=None, echo: Echo = lambda _: None) -> TrainResult:
     started = time.perf_counter()
@@ -103,7 +119,9 @@ def train_from_file(data: Path, out: Path, options: TrainOptions,
     window = choose_window(frame, spans, config.window)
     if window != config.window:
         config = replace(config, window=window)
-    model = train(frame, spans, config, progress=progress, max_fill_periods=options.max_fill)
+    rate = rate_channels(frame, spans, options.rate, echo)
+    model = train(frame, spans, config, progress=progress, max_fill_periods=options.max_fill,
+                  rate_channels=rate)
     save_model(model, out)
     plot_training(model, frame, Path(out) / "training.png")
     seconds = time.perf_counter() - started

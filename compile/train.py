@@ -15,7 +15,7 @@ import resource
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Optional
+from typing import Callable, Optional, Sequence
 
 import numpy as np
 import torch
@@ -26,6 +26,7 @@ from ganlet.compile.data import (
     RobustScaler,
     Spans,
     save_json,
+    segments_in,
     windows_from,
 )
 from ganlet.compile.model import Detector, DetectorConfig, residuals, score_from_residuals
@@ -46,6 +47,7 @@ class TrainedModel:
     history: dict = field(default_factory=dict)
     # scaled series (fit + calibration spans) and their gap-free segments, for distillation
     series: Optional[np.ndarray] = None
+    raw: Optional[np.ndarray] = None   # the same rows in raw units (baselines see levels)
     segments: list = field(default_factory=list)
     max_fill_periods: int = 5
 
@@ -56,14 +58,17 @@ def set_seed(seed: int) -> None:
 
 
 def train(frame: Frame, spans: Spans, config: DetectorConfig,
-          progress: Optional[Progress] = None, max_fill_periods: int = 5) -> TrainedModel:
-    """Fit the scaler on the fit span, then the detector on its windows."""
+          progress: Optional[Progress] = None, max_fill_periods: int = 5,
+          rate_channels: Sequence[str] = ()) -> TrainedModel:
+    """Fit the scaler on the fit span, then the detector on its windows. rate_channels are
+    watched by their change per period instead of their level (ganlet/runtime/features.py)."""
     set_seed(config.seed)
-    fit_values = frame.values[spans.fit[0]:spans.fit[1]]
-    scaler = RobustScaler.fit(fit_values, frame.channels)
+    features = ["rate" if c in rate_channels else "level" for c in frame.channels]
+    scaler = RobustScaler.fit(frame.values[spans.fit[0]:spans.fit[1]], frame.channels, features)
     end = spans.calibration[1]
     series = scaler.transform(frame.values[:end])
-    fit_segments = frame.segments(*spans.fit)
+    # a rate needs the row before it: segments follow the features' NaN, not the raw values'
+    fit_segments = segments_in(series, *spans.fit)
     x_fit, _ = windows_from(series, fit_segments, config.window)
     if len(x_fit) == 0:
         raise ValueError("no training windows; the caller should have chosen a shorter window")
@@ -76,7 +81,8 @@ def train(frame: Frame, spans: Spans, config: DetectorConfig,
         detector=detector, scaler=scaler, channels=frame.channels, units=frame.units,
         period_s=frame.period_s, time_col=frame.report.time_col, spans=spans,
         summary=frame.report.to_json(), history=history, series=series,
-        segments=frame.segments(0, end), max_fill_periods=max_fill_periods,
+        raw=np.asarray(frame.values[:end], np.float64),
+        segments=segments_in(series, 0, end), max_fill_periods=max_fill_periods,
     )
 
 
@@ -218,7 +224,10 @@ def save_model(model: TrainedModel, out: Path) -> Path:
         "max_fill_periods": model.max_fill_periods,
         "segments": [list(s) for s in model.segments],
     })
-    np.savez_compressed(out / "series.npz", series=model.series.astype(np.float32))
+    arrays = {"series": model.series.astype(np.float32)}
+    if model.raw is not None:
+        arrays["raw"] = model.raw
+    np.savez_compressed(out / "series.npz", **arrays)
     return out
 
 
@@ -235,13 +244,15 @@ def load_model(path: Path) -> TrainedModel:
         state = torch.load(path / name, weights_only=True)
         getattr(det, part).load_state_dict(state)
     spans = Spans(**{k: tuple(v) for k, v in meta["spans"].items()})
-    series = np.load(path / "series.npz", allow_pickle=False)["series"]
+    with np.load(path / "series.npz", allow_pickle=False) as npz:
+        series = npz["series"]
+        raw = npz["raw"] if "raw" in npz.files else None
     return TrainedModel(
         detector=det, scaler=RobustScaler.from_json(json.loads((path / "scaler.json").read_text())),
         channels=meta["channels"], units=meta["units"], period_s=meta["period_s"],
         time_col=meta["time_col"], spans=spans,
         summary=json.loads((path / "data_summary.json").read_text()),
-        history=json.loads((path / "history.json").read_text()), series=series,
+        history=json.loads((path / "history.json").read_text()), series=series, raw=raw,
         segments=[tuple(s) for s in meta["segments"]],
         max_fill_periods=meta.get("max_fill_periods", 5),
     )

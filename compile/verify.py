@@ -42,6 +42,7 @@ from ganlet.compile.data import (
     read_table,
 )
 from ganlet.runtime.alerts import AlertMachine
+from ganlet.runtime.features import series as feature_series
 from ganlet.runtime.lstm import Network, score_from_residuals
 from ganlet.runtime.manifest import Bundle, BundleError, load_bundle
 from ganlet.runtime.thresholds import make_threshold
@@ -385,7 +386,8 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
     off_grid = np.abs(frame.times.values[rows] - times) > np.timedelta64(
         int(frame.period_s * 0.5e9), "ns")
 
-    series = ((frame.values - bundle.center) / bundle.scale).astype(np.float32)
+    series = ((feature_series(frame.values, bundle.rate) - bundle.center)
+              / bundle.scale).astype(np.float32)
     windows, valid = hop_windows(series, rows, bundle.window)
     repaired = repaired_rows(Path(data), frame, frame.report.time_col)
     touched = np.array([repaired[max(0, r - bundle.window + 1): r + 1].any() for r in rows])

@@ -90,7 +90,7 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0) -> Tuple[Optional
     with tempfile.TemporaryDirectory() as tmp:
         csv_path = Path(tmp) / "cold.csv"
         lines = [",".join([bundle.time_column] + list(bundle.channels))]
-        for i in range(bundle.window):
+        for i in range(bundle.window + 1):  # + 1: a rate channel's first row only primes it
             vals = [format(float(c), ".6g") for c in bundle.center]
             lines.append(",".join([format_time(i * bundle.period_s)] + vals))
         csv_path.write_text("\n".join(lines) + "\n")

@@ -20,6 +20,8 @@ from typing import Dict, List, Optional
 
 import numpy as np
 
+from .features import FEATURE_KINDS, rate_mask
+
 SCHEMA_VERSION = "1.0"
 MANIFEST_NAME = "manifest.json"
 SIGNATURE_NAME = "manifest.sig"
@@ -180,6 +182,14 @@ def validate_manifest(manifest: dict) -> None:
             )
     if any(not (v > 0) for v in scaler["scale"]):
         raise BundleError("manifest: scaler.scale must be strictly positive")
+    features = scaler.get("features", ["level"] * len(channels))
+    if not isinstance(features, list) or len(features) != len(channels) or not all(
+        f in FEATURE_KINDS for f in features
+    ):
+        raise BundleError(
+            f"manifest: scaler.features must list {len(channels)} of {', '.join(FEATURE_KINDS)} "
+            "(one per channel)"
+        )
 
     net = manifest["network"]
     for key, types in _NETWORK_KEYS.items():
@@ -249,6 +259,9 @@ class Bundle:
         self.hop = int(manifest["hop"])
         self.center = np.asarray(manifest["scaler"]["center"], dtype=np.float32)
         self.scale = np.asarray(manifest["scaler"]["scale"], dtype=np.float32)
+        # bundles packed before per-channel features existed watch every channel by its level
+        self.features = list(manifest["scaler"].get("features", ["level"] * len(self.channels)))
+        self.rate = rate_mask(self.features)
         self.threshold_policy = dict(manifest["threshold"])
         self.alerting = dict(manifest["alerting"])
         self.weights_path = self.dir / manifest["network"]["weights"]

@@ -6,9 +6,11 @@ run_stream (files, signals, timers, checkpoints).
 Per sample (Detector.feed):
   - t == last time -> rejected "duplicate_time"; t < last time -> rejected "out_of_order";
   - m missing periods with m <= max_gap_periods -> the m samples are filled by linear
-    interpolation; more -> the window is reset, a "gap" event is emitted and scoring waits
-    until the ring is full again;
-  - scaled (x - center) / scale into the ring; every `hop` new samples once the ring is full,
+    interpolation in raw units; more -> the window is reset, a "gap" event is emitted and
+    scoring waits until the ring is full again;
+  - each channel's feature (its level, or its rate: features.py; a rate needs the row before,
+    so after a start or a gap the first row only primes it), scaled (f - center) / scale into
+    the ring; every `hop` new samples once the ring is full,
     exactly one window is scored: threshold = thr.update(score); transition = machine.step(...).
 
 Crash safety (why the order is what it is): on a hop that changes an alert the service emits
@@ -36,6 +38,7 @@ from typing import Dict, List, Optional
 
 import numpy as np
 
+from . import features
 from .alerts import CLOSED, OPENED, WARMED_UP, AlertMachine
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .events import AlertDbSink, EventWriter, JsonLinesSink, ScoresCsvSink
@@ -101,6 +104,7 @@ class Detector:
         self.counters = {k: 0 for k in COUNTERS}
         self.errors = {k: 0 for k in REJECT_KINDS}
         self.last_time = None  # type: Optional[float]
+        self.last_raw = None  # type: Optional[np.ndarray]  # raw row at last_time
         self.last_scored_time = None  # type: Optional[float]
         # the last min_hops hops: an alert opens at the first of them (open_since_hop)
         self.recent = deque(maxlen=self.machine.min_hops)  # (hop, time, residuals)
@@ -118,6 +122,7 @@ class Detector:
             "counters": dict(self.counters),
             "errors": dict(self.errors),
             "last_time": self.last_time,
+            "last_raw": None if self.last_raw is None else [float(v) for v in self.last_raw],
             "last_scored_time": self.last_scored_time,
             "recent": [[h, t, [float(v) for v in r]] for h, t, r in self.recent],
             "alert": self.alert,
@@ -130,6 +135,7 @@ class Detector:
         self.counters.update(d["counters"])
         self.errors.update(d["errors"])
         self.last_time = d["last_time"]
+        self.last_raw = None if d["last_raw"] is None else np.asarray(d["last_raw"], np.float64)
         self.last_scored_time = d["last_scored_time"]
         self.recent = deque(
             ((int(h), float(t), np.asarray(r, dtype=np.float64)) for h, t, r in d["recent"]),
@@ -147,36 +153,52 @@ class Detector:
                 raise RowError(
                     "out_of_order", f"time {format_time(t)} before {format_time(self.last_time)}"
                 )
-        x = (np.asarray(values, dtype=np.float64) - self.bundle.center) / self.bundle.scale
-        x = x.astype(np.float32)
-        if not (np.abs(x) <= MAX_SCALED_ABS).all():  # also catches float32 overflow (inf)
-            raise RowError(
-                "out_of_range", f"a value is more than {MAX_SCALED_ABS:g} scale units from center"
-            )
+        raw = np.asarray(values, dtype=np.float64)
+        previous = self.last_raw
+        grid = [(t, raw)]  # the grid rows this sample stands for: filled-in ones, then itself
+        gap = 0
+        if self.last_time is not None:
+            steps = max(1, int(round((t - self.last_time) / self.bundle.period_s)))
+            missing = steps - 1
+            if 0 < missing <= self.bundle.max_gap_periods and previous is not None:
+                # linear in raw units, as the workstation's intake fills short gaps
+                grid = [
+                    (self.last_time + (t - self.last_time) * k / steps,
+                     previous + (raw - previous) * (k / steps))
+                    for k in range(1, steps)
+                ] + grid
+            elif missing > self.bundle.max_gap_periods:
+                gap = missing
+                previous = None
+        rows = []  # (time, scaled features or None while a rate channel has no previous row)
+        for tk, r in grid:
+            f = features.row(r, previous, self.bundle.rate)
+            previous = r
+            known = ~np.isnan(f)
+            x = ((f - self.bundle.center) / self.bundle.scale).astype(np.float32)
+            if not (np.abs(x[known]) <= MAX_SCALED_ABS).all():  # also float32 overflow (inf)
+                raise RowError(
+                    "out_of_range",
+                    f"a value is more than {MAX_SCALED_ABS:g} scale units from center",
+                )
+            rows.append((tk, x if known.all() else None))
+        # the row is accepted: from here on the state changes
         self.counters["samples"] += 1
-        if self.last_time is None:
-            self._push(x, t)
-            self.last_time = t
-            return
-        steps = max(1, int(round((t - self.last_time) / self.bundle.period_s)))
-        missing = steps - 1
-        if 0 < missing <= self.bundle.max_gap_periods:
-            prev = self.ring.last().astype(np.float64)
-            for k in range(1, steps):
-                frac = k / steps
-                row = (prev + (x.astype(np.float64) - prev) * frac).astype(np.float32)
-                self.counters["interpolated"] += 1
-                self._push(row, self.last_time + (t - self.last_time) * frac)
-        elif missing > self.bundle.max_gap_periods:
+        if gap:
             self.counters["gaps"] += 1
             self.writer.emit(
                 "gap", start=format_time(self.last_time), end=format_time(t),
-                missing_periods=missing, max_gap_periods=self.bundle.max_gap_periods,
-                action="window_reset", samples_to_refill=self.bundle.window,
+                missing_periods=gap, max_gap_periods=self.bundle.max_gap_periods,
+                action="window_reset",
+                samples_to_refill=self.bundle.window + int(self.bundle.rate.any()),
             )
             self.ring.reset()
             self.recent.clear()
-        self._push(x, t)
+        self.counters["interpolated"] += len(rows) - 1
+        for tk, x in rows:
+            if x is not None:
+                self._push(x, tk)
+        self.last_raw = raw
         self.last_time = t
 
     def _push(self, row: np.ndarray, t: float) -> None:

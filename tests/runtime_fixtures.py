@@ -110,8 +110,11 @@ def build_bundle(
     period_s: float = 1.0,
     seed: int = 0,
     calibrate_on: Optional[np.ndarray] = None,
+    features: Optional[List[str]] = None,
+    center: Sequence[float] = CENTER,
 ) -> Path:
-    """A complete bundle folder. threshold=None -> static level from calibrate_on's scores."""
+    """A complete bundle folder. threshold=None -> static level from calibrate_on's scores.
+    features=None writes no scaler.features (a bundle from before rate channels: all level)."""
     from ganlet.compile.quantise import quantise_weights  # numpy only
 
     bundle_dir = Path(bundle_dir)
@@ -144,7 +147,8 @@ def build_bundle(
         "channels": [{"name": n, "unit": u} for n, u in CHANNELS],
         "period_s": period_s,
         "max_gap_periods": max_gap_periods,
-        "scaler": {"kind": "robust", "center": list(CENTER), "scale": list(SCALE)},
+        "scaler": {"kind": "robust", "center": list(center), "scale": list(SCALE),
+                   **({"features": list(features)} if features is not None else {})},
         "window": window,
         "hop": hop,
         "network": {"encoder": [8], "latent": 3, "generator": [8], "weights": "weights.npz",

@@ -35,6 +35,11 @@ SKAB_CONFIG = DetectorConfig(window=16, adversarial_epochs=10, inversion_epochs=
 # flagging them; the static policy (a calibration-score quantile) is the rule that works
 # for this protocol. Every method gets it.
 SKAB_THRESHOLD = "static"
+# The two thermal channels (SKAB README: motor body and loop fluid temperature, degC) wander
+# 3-9 robust sigmas beyond their 400-row training range over the test span, normal rows and
+# anomalous alike; watched by level they dominate the score (pooled FAR ~0.55). `ganlet
+# train` flags them as trending in most files' fit spans and suggests --rate for them.
+SKAB_RATE = ("Temperature", "Thermocouple")
 
 
 @pytest.fixture(scope="module")
@@ -115,7 +120,7 @@ def build_one(args):
     torch.set_num_threads(1)
     warnings.simplefilter("ignore")
     frame = load_frame(path)
-    model = train(frame, split_spans(frame, 400, 0.2), SKAB_CONFIG)
+    model = train(frame, split_spans(frame, 400, 0.2), SKAB_CONFIG, rate_channels=SKAB_RATE)
     model_dir = save_model(model, Path(out) / "model")
     compile_model(model, Path(out) / "bundle",
                   CompileOptions(board="workstation", threshold=SKAB_THRESHOLD,
@@ -172,12 +177,5 @@ def test_skab_bundle_beats_isolation_forest_on_f1(skab):
     assert skab[BUNDLE]["f1"] > skab["IsolationForest"]["f1"], skab
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "target not met: under the static rule the bundle flags about half of the normal test "
-    "rows (pooled FAR ~0.55 vs IsolationForest ~0.19). Measured cause: the two temperature "
-    "channels drift 3-9 robust sigmas beyond their 400-row training range in the test span, "
-    "normal and anomalous rows alike, so their residuals dominate the score; IsolationForest's "
-    "trees saturate out-of-range values. A wider scale for point-mass channels did not help "
-    "(FAR 0.72)."))
 def test_skab_bundle_false_alarm_rate_below_isolation_forest(skab):
     assert skab[BUNDLE]["far"] < skab["IsolationForest"]["far"], skab
