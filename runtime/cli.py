@@ -84,7 +84,9 @@ def main(argv: Optional[List[str]] = None, bundle_dir=None) -> int:
             print(f"bundle OK: {summary['name']} ({summary['bundle_id'][:12]}), "
                   f"{summary['files']} files verified, "
                   f"{'signed' if summary['signed'] else 'unsigned'}")
-            chans = ", ".join(f"{c['name']} [{c['unit']}]" for c in summary["channels"])
+            chans = ", ".join(f"{c['name']} [{c['unit']}]"
+                              + (" by rate" if c["feature"] == "rate" else "")
+                              for c in summary["channels"])
             print(f"  channels: {chans}")
             print(f"  window {summary['window']} x {summary['period_s']} s, hop {summary['hop']}, "
                   f"threshold {summary['threshold']}, board {summary['board']}")

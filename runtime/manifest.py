@@ -287,7 +287,8 @@ class Bundle:
             "tool_version": m["tool_version"],
             "created": m["created"],
             "signed": self.signed,
-            "channels": [{"name": n, "unit": u} for n, u in zip(self.channels, self.units)],
+            "channels": [{"name": n, "unit": u, "feature": f}
+                         for n, u, f in zip(self.channels, self.units, self.features)],
             "time_column": self.time_column,
             "period_s": self.period_s,
             "window": self.window,

@@ -5,7 +5,6 @@ first. `filled` counts rows pushed since the last reset, so the service knows wh
 full and when a hop is due.
 """
 
-from typing import Optional
 
 import numpy as np
 
@@ -28,12 +27,6 @@ class Ring:
         self.buf[self.next] = row
         self.next = (self.next + 1) % self.size
         self.filled += 1
-
-    def last(self) -> Optional[np.ndarray]:
-        """The newest row, or None when empty."""
-        if self.filled == 0:
-            return None
-        return self.buf[(self.next - 1) % self.size].copy()
 
     def window(self) -> np.ndarray:
         """The last `size` rows, oldest first, as a new [size, channels] array."""

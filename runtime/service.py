@@ -160,7 +160,7 @@ class Detector:
         if self.last_time is not None:
             steps = max(1, int(round((t - self.last_time) / self.bundle.period_s)))
             missing = steps - 1
-            if 0 < missing <= self.bundle.max_gap_periods and previous is not None:
+            if 0 < missing <= self.bundle.max_gap_periods:
                 # linear in raw units, as the workstation's intake fills short gaps
                 grid = [
                     (self.last_time + (t - self.last_time) * k / steps,

@@ -106,6 +106,10 @@ def test_resume_from_checkpoint_equals_one_run(rate_bundle, tmp_path):
 
 def test_manifest_features(rate_bundle, tmp_path):
     assert load_bundle(rate_bundle).features == FEATURES
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        assert main(["check"], bundle_dir=rate_bundle) == 0
+    assert "pressure [bar] by rate" in out.getvalue() and "flow [m3/h]," in out.getvalue()
     old = fx.build_bundle(tmp_path / "old", onnx_model=False)      # no scaler.features key
     assert load_bundle(old).features == ["level"] * 3
     with pytest.raises(BundleError, match="scaler.features"):
