@@ -320,6 +320,11 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
         opts = IntakeOptions(time_col=model.time_col, channels=model.channels,
                              period_s=model.period_s, max_fill_periods=model.max_fill_periods)
     frame: Frame = load_frame(data, opts)
+    watched = bundle.features if bundle is not None else model.scaler.features
+    by_rate = [c for c, f in zip(frame.channels, watched) if f == "rate"]
+    if by_rate:
+        notes.append(f"the detector watches {', '.join(by_rate)} by rate (change per period); "
+                     "the baselines see every channel's level")
     inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
     y = incident_labels(frame.times, inc)
     n = len(frame.times)

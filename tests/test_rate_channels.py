@@ -189,6 +189,7 @@ def test_baselines_see_levels_whatever_the_detector_watches(tmp_path):
         d = save_model(train(frame, spans, TINY, rate_channels=rate), tmp_path / name)
         r = evaluate(d, data, incidents, eval_from=400, threshold="static", teacher=False)
         scores[name] = r.methods["IsolationForest"].scores
+        assert (f"watches {col} by rate" in r.summary()) == bool(rate)
     np.testing.assert_array_equal(scores["level"], scores["rate"])
     # and they are the levels, robust-scaled on the fit span
     levels = RobustScaler.fit(frame.values[:spans.fit[1]], frame.channels)
