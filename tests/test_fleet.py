@@ -38,6 +38,7 @@ data = "alpha.csv"
 [[asset]]
 id = "bravo"
 data = "bravo.csv"
+rate = ["temp"]
 
 [[asset]]
 id = "broken"
@@ -71,7 +72,8 @@ def test_fleet_on_two_worker_processes_then_rerun_skips_unchanged(fleet_dir):
         r = by_id[asset]
         assert r.parity == "pass", json.loads((fleet_dir / "out" / asset / "verify.json").read_text())
         assert r.bundle_kb and r.bundle_kb > 0
-        assert (fleet_dir / "out" / asset / "bundle" / "manifest.json").is_file()
+        manifest = json.loads((fleet_dir / "out" / asset / "bundle" / "manifest.json").read_text())
+        assert manifest["scaler"]["features"][2] == ("rate" if asset == "bravo" else "level")
 
     summary = fleet.write_summary(first, spec.out / "fleet_summary.csv")
     with open(summary, newline="") as fh:
