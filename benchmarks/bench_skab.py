@@ -5,7 +5,9 @@
 Per file the first 400 rows train (the last 20 % of them calibrate), the rest is the test
 span; metrics are pooled over all files' test rows, alerts from the static rule and the alert
 machine that `ganlet evaluate` uses. For each seed and feature choice it prints the teacher's
-F1 / FAR / MAR, IsolationForest on every channel's level (what `evaluate` reports) and
+F1 / FAR / MAR for three feature choices (all levels; the two thermal channels by rate; per
+file, the channels the trend screen of `ganlet train` flags), IsolationForest on every
+channel's level (what `evaluate` reports) and
 IsolationForest on the detector's own scaled features. Teacher only: the bundle tracks the
 teacher within 0.01 F1 here (tests/test_evaluate.py checks the bundle itself).
 The SKAB folder is test data beside the repository, not part of it.
@@ -38,6 +40,7 @@ def one_file(args):
         parse_times,
         segments_in,
         split_spans,
+        trending_channels,
     )
     from ganlet.compile.evaluate import Rule, baseline_scores, default_alerting
     from ganlet.compile.model import DetectorConfig
@@ -50,6 +53,8 @@ def one_file(args):
                      seed=seed)
     frame = load_frame(path)
     spans = split_spans(frame, 400, 0.2)
+    if rate == "screen":    # what the trend screen of `ganlet train` suggests for this file
+        rate = list(trending_channels(frame, spans.fit))
     model = train(frame, spans, config, rate_channels=rate)
     series = model.scaler.transform(frame.values)
     scores, _ = score_series(model.detector, series, segments_in(series), config.window)
@@ -88,7 +93,8 @@ def main() -> None:
     ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(a.workers, mp_context=ctx) as pool:
         for seed in a.seeds:
-            for label, rate in (("levels", ()), ("thermal=rate", THERMAL)):
+            for label, rate in (("levels", ()), ("thermal=rate", THERMAL),
+                                ("screened", "screen")):
                 outs = list(pool.map(one_file, [(str(f), seed, rate) for f in files]))
                 y = np.concatenate([o["labels"] for o in outs])
                 for name in ("teacher", "IsolationForest on levels",
