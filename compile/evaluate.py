@@ -262,11 +262,8 @@ def hold(rows: np.ndarray, values: np.ndarray, n: int) -> np.ndarray:
 
 def level_views(model, frame: Frame):
     """(training rows, DATA rows) as every channel's level, robust-scaled on the fit span: the
-    baselines' input. (None, None) for an old model directory without raw rows whose detector
-    watches some channel by rate."""
-    if model.raw is None:
-        if "rate" in model.scaler.features:
-            return None, None
+    baselines' input."""
+    if model.raw is None:   # a model directory from before raw rows were kept: all levels
         return model.series, model.scaler.transform(frame.values)
     f0, f1 = model.spans.fit
     scaler = RobustScaler.fit(model.raw[f0:f1], model.channels)
@@ -366,23 +363,18 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
             pol, levels, alert = rule.apply(cal_scores[np.isfinite(cal_scores)], scores)
             methods["teacher"] = Method("teacher", scores, levels, alert, pol["kind"])
         if baselines:
-            train_levels, levels = level_views(model, frame)
-            if train_levels is None:
-                notes.append("the model directory predates stored raw training rows and "
-                             "watches some channels by rate: baselines skipped (retrain)")
-            else:
-                c0, c1 = model.spans.calibration
-                f0, f1 = model.spans.fit
-                fit = train_levels[f0:f1]
-                base = baseline_scores(fit[np.isfinite(fit).all(axis=1)],
-                                       np.vstack([train_levels[c0:c1], levels]))
-                base_cal = {k: v[: c1 - c0] for k, v in base.items()}
-                base_all = {k: v[c1 - c0:] for k, v in base.items()}
-                base_cal["rolling z-score"] = rolling_z(train_levels[:c1])[c0:c1]
-                base_all["rolling z-score"] = rolling_z(levels)
-                for name in BASELINES:
-                    pol, levels_, alert = rule.apply(base_cal[name], base_all[name])
-                    methods[name] = Method(name, base_all[name], levels_, alert, pol["kind"])
+            train_levels, data_levels = level_views(model, frame)
+            (f0, f1), (c0, c1) = model.spans.fit, model.spans.calibration
+            fit = train_levels[f0:f1]
+            base = baseline_scores(fit[np.isfinite(fit).all(axis=1)],
+                                   np.vstack([train_levels[c0:c1], data_levels]))
+            base_cal = {k: v[: c1 - c0] for k, v in base.items()}
+            base_all = {k: v[c1 - c0:] for k, v in base.items()}
+            base_cal["rolling z-score"] = rolling_z(train_levels[:c1])[c0:c1]
+            base_all["rolling z-score"] = rolling_z(data_levels)
+            for name in BASELINES:
+                pol, levels, alert = rule.apply(base_cal[name], base_all[name])
+                methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
     if not methods:
         raise UnusableInput("nothing to evaluate")
 

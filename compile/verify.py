@@ -386,8 +386,7 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
     off_grid = np.abs(frame.times.values[rows] - times) > np.timedelta64(
         int(frame.period_s * 0.5e9), "ns")
 
-    series = ((feature_series(frame.values, bundle.rate) - bundle.center)
-              / bundle.scale).astype(np.float32)
+    series = bundle.scaled(feature_series(frame.values, bundle.rate))
     windows, valid = hop_windows(series, rows, bundle.window)
     repaired = repaired_rows(Path(data), frame, frame.report.time_col)
     touched = np.array([repaired[max(0, r - bundle.window + 1): r + 1].any() for r in rows])

@@ -34,8 +34,10 @@ def series(values: np.ndarray, rate: np.ndarray) -> np.ndarray:
 
 
 def row(values: np.ndarray, previous: Optional[np.ndarray], rate: np.ndarray) -> np.ndarray:
-    """One raw row -> its features, given the raw row one period before (None: unknown)."""
-    out = np.array(values, dtype=np.float64, copy=True)
-    if rate.any():
-        out[rate] = np.nan if previous is None else out[rate] - previous[rate]
+    """One raw float64 row -> its features, given the raw row one period before (None:
+    unknown). Without rate channels the row itself is returned (the gateway's common case)."""
+    if not rate.any():
+        return values
+    out = values.copy()
+    out[rate] = np.nan if previous is None else values[rate] - previous[rate]
     return out

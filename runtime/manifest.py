@@ -182,7 +182,7 @@ def validate_manifest(manifest: dict) -> None:
             )
     if any(not (v > 0) for v in scaler["scale"]):
         raise BundleError("manifest: scaler.scale must be strictly positive")
-    features = scaler.get("features", ["level"] * len(channels))
+    features = channel_features(manifest)
     if not isinstance(features, list) or len(features) != len(channels) or not all(
         f in FEATURE_KINDS for f in features
     ):
@@ -222,6 +222,11 @@ def validate_manifest(manifest: dict) -> None:
             raise BundleError(f"manifest: files entry {rel!r} is not a safe relative path + sha256")
 
 
+def channel_features(manifest: dict) -> list:
+    """scaler.features; a bundle packed before per-channel features watches every level."""
+    return manifest["scaler"].get("features", ["level"] * len(manifest["channels"]))
+
+
 def sign_bytes(key: bytes, data: bytes) -> str:
     return hmac.new(key, data, hashlib.sha256).hexdigest()
 
@@ -259,14 +264,17 @@ class Bundle:
         self.hop = int(manifest["hop"])
         self.center = np.asarray(manifest["scaler"]["center"], dtype=np.float32)
         self.scale = np.asarray(manifest["scaler"]["scale"], dtype=np.float32)
-        # bundles packed before per-channel features existed watch every channel by its level
-        self.features = list(manifest["scaler"].get("features", ["level"] * len(self.channels)))
-        self.rate = rate_mask(self.features)
+        self.features = list(channel_features(manifest))
+        self.rate = rate_mask(self.features)  # per sample on the gateway: computed once here
         self.threshold_policy = dict(manifest["threshold"])
         self.alerting = dict(manifest["alerting"])
         self.weights_path = self.dir / manifest["network"]["weights"]
         self.onnx_path = self.dir / manifest["network"]["onnx"]
         self._weights = None  # type: Optional[Dict[str, np.ndarray]]
+
+    def scaled(self, feats: np.ndarray) -> np.ndarray:
+        """Features (one row or [T, C]) -> the float32 values the ring holds."""
+        return ((feats - self.center) / self.scale).astype(np.float32)
 
     @property
     def weights(self) -> Dict[str, np.ndarray]:

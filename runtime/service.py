@@ -175,7 +175,7 @@ class Detector:
             f = features.row(r, previous, self.bundle.rate)
             previous = r
             known = ~np.isnan(f)
-            x = ((f - self.bundle.center) / self.bundle.scale).astype(np.float32)
+            x = self.bundle.scaled(f)
             if not (np.abs(x[known]) <= MAX_SCALED_ABS).all():  # also float32 overflow (inf)
                 raise RowError(
                     "out_of_range",
