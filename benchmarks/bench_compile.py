@@ -22,11 +22,10 @@ from pathlib import Path
 import torch
 
 from ganlet.compile.boards import DEFAULT_BOARD, load_board
-from ganlet.compile.demo import load_station_module
-from ganlet.compile.model import DetectorConfig
-from ganlet.compile.pack import CompileOptions, compile_model
-from ganlet.compile.pipeline import TrainOptions, train_from_file
+from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import CompileOptions, TrainOptions, compile_model, train_from_file
 from ganlet.compile.train import load_model
+from ganlet.examples import pump_station
 
 TARGET_BUNDLE_KB = 150      # the smallest board's flash budget (boards/a53-512.toml)
 TARGET_SECONDS = 60.0       # distil + quantise + export on the demo data, 2 cores
@@ -46,15 +45,15 @@ def main(argv=None) -> int:
           f"load average at start {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores")
 
     if args.model is None:
-        station = load_station_module()
+        station = pump_station
         t0 = time.perf_counter()
         info = station.generate(work / "data", seed=args.seed)
         print(f"demo data: {info['rows']} rows -> {info['data']} "
               f"({time.perf_counter() - t0:.1f} s)")
         options = TrainOptions(train_until=info["train_end"],
-                               config=DetectorConfig(seed=args.seed), seed=args.seed)
+                               config=TeacherConfig(seed=args.seed), seed=args.seed)
         result = train_from_file(Path(info["data"]), work / "model", options)
-        print(f"teacher (default DetectorConfig): {result.describe()}")
+        print(f"teacher (default TeacherConfig): {result.describe()}")
         model_dir = result.out
     else:
         model_dir = args.model

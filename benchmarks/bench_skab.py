@@ -43,12 +43,12 @@ def one_file(args):
         trending_channels,
     )
     from ganlet.compile.evaluate import Rule, baseline_scores, default_alerting
-    from ganlet.compile.model import DetectorConfig
+    from ganlet.compile.model import TeacherConfig
     from ganlet.compile.train import score_series, train
 
     torch.set_num_threads(1)
     warnings.simplefilter("ignore")
-    config = replace(DetectorConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
+    config = replace(TeacherConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
                                     encoder_hidden=(32,), generator_hidden=(16, 32), latent=4),
                      seed=seed)
     frame = load_frame(path)
@@ -57,7 +57,7 @@ def one_file(args):
         rate = list(trending_channels(frame, spans.fit))
     model = train(frame, spans, config, rate_channels=rate)
     series = model.scaler.transform(frame.values)
-    scores, _ = score_series(model.detector, series, segments_in(series), config.window)
+    scores, _ = score_series(model.teacher, series, segments_in(series), config.window)
     levels = RobustScaler.fit(frame.values[spans.fit[0]:spans.fit[1]], frame.channels)
     level_series = levels.transform(frame.values)
     (f0, f1), (c0, c1) = spans.fit, spans.calibration

@@ -16,8 +16,8 @@ from pathlib import Path
 
 import torch
 
-from ganlet.compile.demo import load_station_module
 from ganlet.compile.pipeline import TrainOptions, train_from_file
+from ganlet.examples import pump_station
 
 TARGET_S = 180.0
 
@@ -29,7 +29,7 @@ def main() -> None:
     args = parser.parse_args()
     torch.set_num_threads(args.threads)
     out = args.out or Path(tempfile.mkdtemp(prefix="ganlet-bench-train-"))
-    info = load_station_module().generate(out / "data")
+    info = pump_station.generate(out / "data")
     started = time.perf_counter()
     result = train_from_file(Path(info["data"]), out / "model",
                              TrainOptions(train_until=info["train_end"], seed=7))
@@ -38,7 +38,7 @@ def main() -> None:
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     figures = {
         "threads": args.threads, "rows": info["rows"], "train_windows": h["train_windows"],
-        "window": result.model.detector.config.window,
+        "window": result.model.teacher.config.window,
         "adversarial_s": round(h["wall_s"]["adversarial"], 2),
         "inversion_s": round(h["wall_s"]["inversion"], 2),
         "train_from_file_s": round(wall, 2), "target_s": TARGET_S,

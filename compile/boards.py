@@ -1,7 +1,8 @@
 """Board profiles: what a target gateway can hold and compute, read from boards/*.toml.
 
 A board is data, not code. The sizer (distillation) and the packer read a Board to decide how
-big a student may be and whether a bundle fits; `ganlet boards` prints `board_table`.
+big a student may be and whether a bundle fits; `ganlet budgets` prints `board_table`; the
+board's Python and numpy must be ones the gateway runtime is written for.
 Schema: see "## Board profiles" in DEVELOPERS.md.
 """
 
@@ -18,9 +19,12 @@ try:
 except ModuleNotFoundError:   # Python < 3.11
     import tomli as tomllib
 
-# The repo's boards/ folder. compile/ is mapped to ganlet.compile in place (editable install),
-# so __file__ is the source file and ../boards is the shipped profile folder.
-BOARDS_DIR = Path(__file__).resolve().parent.parent / "boards"
+import ganlet.boards as boards_pkg
+from ganlet.runtime.manifest import REQUIRES, version_tuple
+
+# The shipped profiles: the repository's boards/ folder, installed as package data
+# (ganlet.boards) by a regular or an editable install alike.
+BOARDS_DIR = Path(boards_pkg.__file__).resolve().parent
 DEFAULT_BOARD = "a53-512"  # the smallest: if it fits there it fits everywhere
 
 _NUMBER = (int, float)
@@ -29,17 +33,15 @@ _FIELDS: Dict[str, Tuple[tuple, str]] = {
     "name": ((str,), "string"),
     "description": ((str,), "string"),
     "cpu_class": ((str,), "string"),
-    "cores": ((int,), "integer"),
     "mflops_single_core": (_NUMBER, "number"),
     "ram_budget_mb": ((int,), "integer"),
     "storage_budget_kb": ((int,), "integer"),
     "onnxruntime": ((bool,), "boolean (true/false)"),
     "python": ((str,), 'string like "3.9"'),
     "numpy": ((str,), 'string like "1.19"'),
-    "sample_period_s": (_NUMBER, "number"),
     "compute_fraction": (_NUMBER, "number"),
 }
-_POSITIVE = ("cores", "mflops_single_core", "ram_budget_mb", "storage_budget_kb", "sample_period_s")
+_POSITIVE = ("mflops_single_core", "ram_budget_mb", "storage_budget_kb")
 _MEASURED: Dict[str, Tuple[tuple, str]] = {
     "mflops_single_core": (_NUMBER, "number"),
     "measured_on": ((str,), "string"),
@@ -53,29 +55,17 @@ class Board:
     name: str
     description: str
     cpu_class: str
-    cores: int
     mflops_single_core: float  # the [measured] value when present, else the estimate
     ram_budget_mb: int
     storage_budget_kb: int
     onnxruntime: bool
     python: str
     numpy: str
-    sample_period_s: float
     compute_fraction: float
     source_path: str
     measured: bool
     measured_on: str = ""
     mflops_estimate: float = 0.0  # the top-level estimate, kept for display
-
-    @property
-    def hop_time_budget_s(self) -> float:
-        """Seconds the detector may spend per hop: compute_fraction x sample_period_s."""
-        return self.compute_fraction * self.sample_period_s
-
-    @property
-    def hop_flop_budget(self) -> float:
-        """Floating-point operations the detector may spend per hop on one core."""
-        return self.hop_time_budget_s * self.mflops_single_core * 1e6
 
 
 def _available() -> List[str]:
@@ -115,6 +105,9 @@ def _board_from_dict(raw: Dict[str, Any], source: Path) -> Board:
     for key in ("python", "numpy"):
         if not _VERSION_RE.match(raw[key]):
             raise ValueError(f"{where}: {key} must look like \"3.9\" (major.minor), got {raw[key]!r}")
+        if version_tuple(raw[key]) < version_tuple(REQUIRES[key]):
+            raise ValueError(f"{where}: {key} {raw[key]} is older than the gateway runtime "
+                             f"needs ({REQUIRES[key]}); such a board cannot run a bundle")
 
     estimate = float(raw["mflops_single_core"])
     mflops, measured, measured_on = estimate, False, ""
@@ -129,14 +122,12 @@ def _board_from_dict(raw: Dict[str, Any], source: Path) -> Board:
         name=raw["name"],
         description=raw["description"],
         cpu_class=raw["cpu_class"],
-        cores=raw["cores"],
         mflops_single_core=mflops,
         ram_budget_mb=raw["ram_budget_mb"],
         storage_budget_kb=raw["storage_budget_kb"],
         onnxruntime=raw["onnxruntime"],
         python=raw["python"],
         numpy=raw["numpy"],
-        sample_period_s=float(raw["sample_period_s"]),
         compute_fraction=float(raw["compute_fraction"]),
         source_path=str(source),
         measured=measured,
@@ -185,21 +176,19 @@ def list_boards() -> List[Board]:
 
 def board_table(boards: Sequence[Board]) -> str:
     """Plain-text table, one row per board; '*' marks a measured MFLOP/s figure."""
-    header = ("board", "cpu class", "cores", "MFLOP/s", "RAM MB", "flash kB", "onnxruntime",
-              "python", "numpy", "period s", "compute")
+    header = ("board", "cpu class", "MFLOP/s", "RAM MB", "flash kB", "onnxruntime",
+              "python", "numpy", "compute")
     rows = [header]
     for b in boards:
         rows.append((
             b.name + (" (default)" if b.name == DEFAULT_BOARD else ""),
             b.cpu_class,
-            str(b.cores),
             f"{b.mflops_single_core:g}" + ("*" if b.measured else ""),
             str(b.ram_budget_mb),
             str(b.storage_budget_kb),
             "yes" if b.onnxruntime else "no",
             b.python,
             b.numpy,
-            f"{b.sample_period_s:g}",
             f"{b.compute_fraction:.0%}",
         ))
     widths = [max(len(r[i]) for r in rows) for i in range(len(header))]
@@ -208,5 +197,5 @@ def board_table(boards: Sequence[Board]) -> str:
     notes = [f"* {b.name}: measured on {b.measured_on}" for b in boards if b.measured]
     if len(notes) < len(boards):
         notes.append("MFLOP/s without '*' are estimates from memory; a bench run measures them.")
-    notes.append("compute = share of one sample period the detector may spend per hop.")
+    notes.append("compute = share of the data's sample period the detector may spend per hop.")
     return "\n".join(lines + [""] + notes)

@@ -147,7 +147,7 @@ def train(
     train_until: Optional[str] = typer.Option(None, "--train-until", help="End of the training span: a row count, a fraction (0.6) or a time. Default: all data."),
     calibration: float = typer.Option(0.2, help="Fraction of the training span held back (at its end) to calibrate thresholds."),
     window: Optional[int] = typer.Option(None, help="Window length in samples (default 32, shorter for short histories)."),
-    config: Optional[Path] = typer.Option(None, help="JSON or TOML file of DetectorConfig fields."),
+    config: Optional[Path] = typer.Option(None, help="JSON or TOML file of TeacherConfig fields."),
     adversarial_epochs: Optional[int] = typer.Option(None, "--adversarial-epochs", help="Epochs of the G/D phase."),
     inversion_epochs: Optional[int] = typer.Option(None, "--inversion-epochs", help="Epochs of the encoder phase."),
     seed: Optional[int] = typer.Option(None, help="Random seed (default: the config's, else 0; runs are reproducible on CPU)."),
@@ -177,8 +177,8 @@ def train(
 
 
 @app.command()
-def boards():
-    """List the board profiles and their budgets."""
+def budgets():
+    """Each gateway profile's budgets: flash, RAM, compute, Python and numpy (compile --board)."""
     from ganlet.compile.boards import BOARDS_DIR, DEFAULT_BOARD, board_table, list_boards
 
     with user_errors():
@@ -194,15 +194,16 @@ def compile_cmd(
     board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512)."),
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
-    sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256."),
-    name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest (default: the model folder's name)."),
+    sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac)."),
+    name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest and used for file and service names on the gateway: letters, digits, '.', '_', '-' (default: the model folder's name)."),
     distil_epochs: int = typer.Option(80, "--distil-epochs", min=1, help="Distillation epochs."),
     seed: int = typer.Option(0, help="Random seed of the distillation."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Size a student to the board, distil, quantise to int8, export ONNX and pack the bundle."""
     from ganlet.compile.distil import DistilConfig
-    from ganlet.compile.pack import CompileOptions, compile_dir
+    from ganlet.compile.pack import safe_name
+    from ganlet.compile.pipeline import CompileOptions, compile_dir
 
     with user_errors():
         key = read_key(sign_key) if sign_key else None
@@ -210,7 +211,7 @@ def compile_cmd(
             raise UsageProblem(f"{model_dir} is not a model directory (no model.json); "
                                "create one with `ganlet train DATA --out DIR`")
         options = CompileOptions(board=board, threshold=threshold, archive=archive, sign_key=key,
-                                 name=name or model_dir.resolve().name,
+                                 name=name or safe_name(model_dir.resolve().name),
                                  distil=DistilConfig(epochs=distil_epochs, seed=seed))
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))
@@ -223,13 +224,16 @@ def compile_cmd(
 
 
 def read_key(path: Path) -> bytes:
+    """The signing key, by the gateway's own rule (runtime.manifest.read_key)."""
+    from ganlet.runtime.manifest import BundleError
+    from ganlet.runtime.manifest import read_key as read_key_file
+
     if not path.exists():
         raise UsageProblem(f"key file {path} not found")
-    key = path.read_bytes().strip()
-    if len(key) < 16:
-        raise UsageProblem(f"key file {path} holds {len(key)} bytes; use at least 16 random bytes "
-                           "(e.g. `head -c 32 /dev/urandom | base64 > key`)")
-    return key
+    try:
+        return read_key_file(path)
+    except BundleError as exc:
+        raise UsageProblem(str(exc)) from None
 
 
 @app.command()

@@ -21,7 +21,7 @@ def _fail(message: str):
 def _run(fn):
     """Boundary errors -> one line on stderr and exit code 2."""
     from ganlet.compile.data import IntakeError
-    from ganlet.compile.verify import UnusableInput
+    from ganlet.compile.gateway import UnusableInput
     from ganlet.runtime.manifest import BundleError
 
     with warnings.catch_warnings():
@@ -39,7 +39,8 @@ def verify_cmd(
         None, "--device-scores", help="Scores CSV captured on the device (run.py stream "
         "--scores-out); default: run the bundle's run.py here."),
     model: Optional[Path] = typer.Option(
-        None, "--model", help="Teacher model directory (default: the manifest's)."),
+        None, "--model", help="The teacher's model directory the bundle was compiled from: "
+        "adds device vs fp32 student and vs teacher."),
     tolerance: Optional[List[str]] = typer.Option(
         None, "--tolerance", help="Override a tolerance, KEY=VALUE (repeatable): score_rel, "
         "spearman_min, sample_agreement_min, event_match_hops, teacher_spearman_min."),
@@ -67,6 +68,9 @@ def evaluate_cmd(
         None, "--from", help="First evaluated point: a row number or a time (default: all)."),
     threshold: str = typer.Option(
         "pot", help="Policy kind for a model directory (a bundle uses its own)."),
+    model: Optional[Path] = typer.Option(
+        None, "--model", help="With a bundle: its teacher's model directory (adds the teacher "
+        "and the baselines)."),
     no_baselines: bool = typer.Option(False, "--no-baselines", help="Skip the baselines."),
     html_out: Optional[Path] = typer.Option(None, "--html", help="Write an HTML report."),
     json_out: Optional[Path] = typer.Option(None, "--json", help="Write a JSON summary."),
@@ -76,7 +80,8 @@ def evaluate_cmd(
 
     eval_from = int(start) if start is not None and start.isdigit() else start
     result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
-                                     threshold=threshold, baselines=not no_baselines))
+                                     threshold=threshold, baselines=not no_baselines,
+                                     model_dir=model))
     typer.echo(result.summary())
     if json_out:
         e.write_json(result, json_out)

@@ -8,10 +8,7 @@ a bundle for the default board -> replay the test span through the bundle on the
 from __future__ import annotations
 
 import csv
-import importlib.util
 import json
-import subprocess
-import sys
 import time
 from dataclasses import replace
 from pathlib import Path
@@ -22,26 +19,14 @@ import pandas as pd
 from ganlet.compile import evaluate as evaluate_mod
 from ganlet.compile import verify as verify_mod
 from ganlet.compile.distil import DistilConfig
-from ganlet.compile.model import DetectorConfig
-from ganlet.compile.pack import CompileOptions, compile_dir
-from ganlet.compile.pipeline import TrainOptions, train_from_file
-
-EXAMPLES_DIR = Path(__file__).resolve().parent.parent / "examples"
-
-
-def load_station_module():
-    path = EXAMPLES_DIR / "pump_station.py"
-    if not path.exists():
-        raise FileNotFoundError(f"{path} not found: the demo needs the repository's examples/ "
-                                "folder (install with `pip install -e .` from a clone)")
-    spec = importlib.util.spec_from_file_location("ganlet_pump_station", path)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
+from ganlet.compile.gateway import run_bundle
+from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import CompileOptions, TrainOptions, compile_dir, train_from_file
+from ganlet.examples import pump_station
 
 
-def demo_config(quick: bool, seed: int) -> DetectorConfig:
-    cfg = DetectorConfig(seed=seed)
+def demo_config(quick: bool, seed: int) -> TeacherConfig:
+    cfg = TeacherConfig(seed=seed)
     if quick:
         cfg = replace(cfg, adversarial_epochs=2, inversion_epochs=4, max_train_windows=600)
     return cfg
@@ -51,10 +36,9 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     started = time.perf_counter()
-    station = load_station_module()
     echo("== 1. invented data: Hollowmere booster station, pump P2 (all values invented)")
-    info = station.generate(out / "data", seed=seed)
-    station.plot(info["data"], info["incidents"], out / "data" / "station.png")
+    info = pump_station.generate(out / "data", seed=seed)
+    pump_station.plot(info["data"], info["incidents"], out / "data" / "station.png")
     echo(f"   {info['rows']} rows -> {info['data']}; incidents -> {info['incidents']}")
 
     echo("== 2. train the teacher on the normal span (until " + info["train_end"] + ")")
@@ -92,7 +76,8 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
 
     echo("== 6. detection on the test span against the invented incidents")
     detection = evaluate_mod.evaluate(compiled.bundle, Path(info["data"]),
-                                      Path(info["incidents"]), eval_from=info["test_start"])
+                                      Path(info["incidents"]), eval_from=info["test_start"],
+                                      model_dir=result.out)
     evaluate_mod.write_json(detection, reports / "detection.json")
     evaluate_mod.write_html(detection, reports / "detection.html")
     echo(indent(detection.summary()))
@@ -127,28 +112,13 @@ def write_test_span(data: Path, test_start: str, window: int, out: Path) -> Path
 
 
 def replay_through_bundle(bundle: Path, data: Path, out: Path) -> dict:
-    """Run the bundle's own run.py in a subprocess: the real gateway path."""
-    out.mkdir(parents=True, exist_ok=True)
-    events_path, scores, alert_db = out / "events.jsonl", out / "scores.csv", out / "alerts.sqlite"
-    for stale in (scores, alert_db, out / "state.json"):
-        stale.unlink(missing_ok=True)
-    cmd = [sys.executable, str(bundle / "run.py"), "stream", "--input", str(data),
-           "--scores-out", str(scores), "--alert-db", str(alert_db),
-           "--state", str(out / "state.json"), "--score-every", "0"]
-    proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
-    events_path.write_text(proc.stdout)
-    if proc.returncode != 0:
-        raise RuntimeError(f"the bundle's stream exited {proc.returncode}: {proc.stderr.strip()}")
-    events = [json.loads(line) for line in proc.stdout.splitlines() if line.strip()]
-    alerts = {}
-    for ev in events:
-        if ev["event"] in ("alert_opened", "alert_closed"):
-            alerts[ev["alert_id"]] = ev
-    stop = next((ev for ev in reversed(events) if ev["event"] == "stop"), {})
-    errors = {k: v for k, v in stop.get("errors", {}).items() if v}
-    return {"alerts": list(alerts.values()), "hops": stop.get("counters", {}).get("hops", 0),
-            "errors": errors, "events": str(events_path), "scores": str(scores),
-            "alert_db": str(alert_db)}
+    """The bundle's own run.py in a subprocess (the real gateway path), with a state file and
+    an alert database as a gateway would keep them."""
+    run = run_bundle(bundle, data, out, keep_state=True)
+    errors = {k: v for k, v in run.stop.get("errors", {}).items() if v}
+    return {"alerts": run.alerts, "hops": run.stop.get("counters", {}).get("hops", 0),
+            "errors": errors, "events": str(out / "events.jsonl"), "scores": str(run.scores),
+            "alert_db": str(out / "alerts.sqlite")}
 
 
 def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:

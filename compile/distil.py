@@ -15,12 +15,11 @@ from typing import Callable, Optional
 
 import numpy as np
 import torch
-from scipy.stats import spearmanr
 
-from ganlet.compile.data import windows_from
+from ganlet.compile.layout import network_weights
 from ganlet.compile.model import LSTMStack, residuals
 from ganlet.compile.sizing import StudentPlan
-from ganlet.compile.train import TrainedModel, score_windows, set_seed
+from ganlet.compile.train import TrainedModel, set_seed
 
 
 @dataclass
@@ -46,6 +45,11 @@ class Student:
     def reconstruct(self, x: torch.Tensor) -> torch.Tensor:
         return self.generator(self.encoder(x))
 
+    def weights(self) -> dict:
+        """The student as the float32 weight dict of the network contract (ONNX layout)."""
+        return network_weights(self.encoder.layers, self.encoder.head,
+                               self.generator.layers, self.generator.head)
+
 
 def perturb(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Off-normal versions of real windows: the teacher's answer there is worth copying too."""
@@ -70,36 +74,19 @@ def perturb(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
 
 
 def distillation_windows(model: TrainedModel, cfg: DistilConfig) -> np.ndarray:
-    window = model.detector.config.window
-    real, _ = windows_from(model.series, fit_segments(model), window)
+    window = model.teacher.config.window
+    real = model.windows_of(model.spans.fit)
     if len(real) > cfg.max_real_windows:
         real = real[:: int(np.ceil(len(real) / cfg.max_real_windows))]
     rng = np.random.default_rng(cfg.seed)
     gen = torch.Generator().manual_seed(cfg.seed)
     n_syn = int(len(real) * cfg.synthetic_factor)
     with torch.no_grad():
-        z = torch.randn(n_syn, window, model.detector.config.latent, generator=gen)
-        synthetic = model.detector.generator.eval()(z).numpy().astype(np.float32)
+        z = torch.randn(n_syn, window, model.teacher.config.latent, generator=gen)
+        synthetic = model.teacher.generator.eval()(z).numpy().astype(np.float32)
     n_pert = int(len(real) * cfg.perturbed_factor)
     perturbed = perturb(real[rng.integers(0, len(real), size=n_pert)], rng)
     return np.concatenate([real, synthetic, perturbed])
-
-
-def fit_segments(model: TrainedModel):
-    """Gap-free segments inside the fit span."""
-    b0, e0 = model.spans.fit
-    out = []
-    for b, e in model.segments:
-        b, e = max(b, b0), min(e, e0)
-        if e > b:
-            out.append((b, e))
-    return out
-
-
-def calibration_windows(model: TrainedModel):
-    b0, e0 = model.spans.calibration
-    segs = [(max(b, b0), min(e, e0)) for b, e in model.segments if min(e, e0) > max(b, b0)]
-    return windows_from(model.series, segs, model.detector.config.window)
 
 
 def distil(model: TrainedModel, plan: StudentPlan, cfg: Optional[DistilConfig] = None,
@@ -107,7 +94,7 @@ def distil(model: TrainedModel, plan: StudentPlan, cfg: Optional[DistilConfig] =
     cfg = cfg or DistilConfig()
     started = time.perf_counter()
     set_seed(cfg.seed)
-    teacher = model.detector
+    teacher = model.teacher
     n_channels = len(model.channels)
     x = distillation_windows(model, cfg)
     with torch.no_grad():
@@ -144,28 +131,3 @@ def distil(model: TrainedModel, plan: StudentPlan, cfg: Optional[DistilConfig] =
     encoder.eval()
     generator.eval()
     return Student(encoder, generator, plan, history, time.perf_counter() - started)
-
-
-@torch.no_grad()
-def student_scores(student: Student, windows: np.ndarray):
-    x = torch.from_numpy(np.ascontiguousarray(windows, dtype=np.float32))
-    res = residuals(x, student.reconstruct(x)).numpy()
-    return res.mean(axis=1), res
-
-
-def agreement(reference: np.ndarray, other: np.ndarray) -> dict:
-    """Spearman rank correlation (scipy.stats.spearmanr) and error figures of two score series."""
-    reference = np.asarray(reference, np.float64)
-    other = np.asarray(other, np.float64)
-    err = np.abs(other - reference)
-    rho = float(spearmanr(reference, other).statistic) if len(reference) > 2 else float("nan")
-    return {"n": int(len(reference)), "spearman": rho, "max_abs_error": float(err.max()),
-            "max_rel_error": float((err / np.maximum(np.abs(reference), 1e-12)).max()),
-            "median_rel_error": float(np.median(err / np.maximum(np.abs(reference), 1e-12)))}
-
-
-def teacher_vs_student(model: TrainedModel, student: Student) -> dict:
-    x, _ = calibration_windows(model)
-    teacher, _ = score_windows(model.detector, x)
-    ours, _ = student_scores(student, x)
-    return agreement(teacher, ours)

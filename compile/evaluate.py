@@ -33,24 +33,20 @@ import numpy as np
 import pandas as pd
 
 from ganlet.compile import report as rep
+from ganlet.compile.calibrate import policy_for
 from ganlet.compile.data import (
     Frame,
     IntakeError,
     IntakeOptions,
     RobustScaler,
+    grid_index,
     load_frame,
     parse_times,
     segments_in,
 )
-from ganlet.compile.verify import (
-    UnusableInput,
-    alert_events,
-    clean_json,
-    gateway_csv,
-    read_scores,
-    replay_alerts,
-    run_gateway,
-)
+from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
+from ganlet.compile.verify import alert_events, clean_json, replay_alerts
+from ganlet.runtime.alerts import default_alerting
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
 BASELINES = ("IsolationForest", "GaussianMixture", "OneClassSVM", "rolling z-score")
@@ -135,21 +131,12 @@ class Rule:
     alerting: dict
 
     def policy(self, calibration_scores: np.ndarray) -> dict:
-        from ganlet.compile.pack import calibrate
-
-        s = np.asarray(calibration_scores, float)
-        return calibrate(self.kind, s[np.isfinite(s)])
+        return policy_for(self.kind, calibration_scores)
 
     def apply(self, calibration_scores: np.ndarray, scores: np.ndarray):
         policy = self.policy(calibration_scores)
         levels, alert = replay_alerts(scores, policy, self.alerting)
         return policy, levels, alert
-
-
-def default_alerting(window: int, hop: int = 1) -> dict:
-    """The alert machine compile packs by default (compile/pack.py CompileOptions)."""
-    return {"warmup_hops": 0, "min_hops": 3, "close_ratio": 0.8,
-            "cooldown_hops": max(1, window // hop)}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -287,9 +274,11 @@ def _span_segments(segments, span) -> list:
 
 def evaluate(source: Path, data: Path, incidents, eval_from=None,
              eval_mask: Optional[np.ndarray] = None, threshold: str = "pot",
-             baselines: bool = True, teacher: bool = True) -> EvalResult:
-    """source: a model directory or a bundle. eval_from: first evaluated row (int) or time
-    (str); eval_mask: explicit grid points to evaluate (overrides eval_from)."""
+             baselines: bool = True, teacher: bool = True,
+             model_dir: Optional[Path] = None) -> EvalResult:
+    """source: a model directory or a bundle (then model_dir, its teacher's folder, adds the
+    teacher and the baselines). eval_from: first evaluated row (int) or time (str); eval_mask:
+    explicit grid points to evaluate (overrides eval_from)."""
     from ganlet.compile.train import load_model, score_series
 
     kind = source_kind(source)
@@ -302,18 +291,16 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
             bundle = load_bundle(source)
         except BundleError as exc:
             raise UnusableInput(f"bundle refused: {exc}") from None
-        model_dir = bundle.manifest.get("teacher", {}).get("model_dir")
-        model = load_model(model_dir) if model_dir and Path(model_dir, "model.json").is_file() \
-            else None
+        model = load_model(model_dir) if model_dir is not None else None
         if model is None:
-            notes.append("the bundle's teacher model directory is not available: teacher and "
-                         "baselines (which need its training split) are skipped")
+            notes.append("no --model DIR given: the teacher and the baselines (which need its "
+                         "training split) are skipped")
         rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting))
         opts = IntakeOptions(time_col=bundle.time_column, channels=bundle.channels,
                              period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods)
     else:
         model = load_model(source)
-        rule = Rule(threshold, default_alerting(model.detector.config.window))
+        rule = Rule(threshold, default_alerting(model.teacher.config.window, 1))
         opts = IntakeOptions(time_col=model.time_col, channels=model.channels,
                              period_s=model.period_s, max_fill_periods=model.max_fill_periods)
     frame: Frame = load_frame(data, opts)
@@ -342,11 +329,9 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     if bundle is not None:
         with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
             feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp))
-            dev = read_scores(run_gateway(bundle.dir, feed, Path(tmp) / "scores.csv"))
-        offset = (dev["time"].to_numpy() - frame.times.values[0]) / np.timedelta64(1, "s")
-        rows = np.rint(offset / frame.period_s).astype(np.int64)
-        keep = (rows >= 0) & (rows < n)
-        rows = rows[keep]
+            dev = read_scores(run_bundle(bundle.dir, feed, Path(tmp) / "gateway").scores)
+        rows = grid_index(frame, dev["time"].to_numpy())
+        keep = np.ones(len(rows), bool)
         alert = hold(rows, dev["alert"].to_numpy()[keep].astype(float), n)
         methods["bundle"] = Method("bundle (int8, gateway path)",
                                    hold(rows, dev["score"].to_numpy()[keep], n),
@@ -355,11 +340,11 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
 
     if model is not None:
         cal_segments = _span_segments(model.segments, model.spans.calibration)
-        window = model.detector.config.window
+        window = model.teacher.config.window
         series = model.scaler.transform(frame.values)
         if teacher:
-            cal_scores, _ = score_series(model.detector, model.series, cal_segments, window)
-            scores, _ = score_series(model.detector, series, segments_in(series), window)
+            cal_scores, _ = score_series(model.teacher, model.series, cal_segments, window)
+            scores, _ = score_series(model.teacher, series, segments_in(series), window)
             pol, levels, alert = rule.apply(cal_scores[np.isfinite(cal_scores)], scores)
             methods["teacher"] = Method("teacher", scores, levels, alert, pol["kind"])
         if baselines:

@@ -16,10 +16,12 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from ganlet.compile.quantise import SCALE_SUFFIX, matrix_axis
+from ganlet.runtime.lstm import architecture
+from ganlet.runtime.manifest import ONNX_INPUT, ONNX_OPSET, ONNX_RECONSTRUCTION, ONNX_RESIDUALS
+from ganlet.runtime.weights import SCALE_SUFFIX, row_axis
 
-INPUT = "window"
-OUTPUTS = ("reconstruction", "residuals")
+INPUT = ONNX_INPUT
+OUTPUTS = (ONNX_RECONSTRUCTION, ONNX_RESIDUALS)
 
 
 class _Graph:
@@ -41,7 +43,7 @@ class _Graph:
 
     def tensor(self, key: str) -> str:
         """A float32 tensor for contract key: the initializer itself, or DequantizeLinear of it."""
-        axis = matrix_axis(key)
+        axis = row_axis(key)
         value = self.weights[key]
         if axis is None or not self.quantised:
             return self.const(key, np.asarray(value, dtype=np.float32))
@@ -51,21 +53,11 @@ class _Graph:
         return self.node("DequantizeLinear", [q, s], key + ".dq", axis=axis)
 
 
-def _layer_count(weights: Dict[str, np.ndarray], net: str) -> int:
-    n = 0
-    while f"{net}.lstm{n}.W" in weights:
-        n += 1
-    if n == 0:
-        raise ValueError(f"no {net}.lstm0.W in the weights: not a network contract dict")
-    return n
-
-
-def _check_weights(weights: Dict[str, np.ndarray], n_channels: int, quantised: bool) -> None:
+def _check_weights(weights: Dict[str, np.ndarray], n_channels: int, quantised: bool):
+    """int8 + scale for every matrix when quantised (float32 otherwise), and the shapes of the
+    network contract for n_channels; returns runtime.lstm.architecture of the weights."""
     for key, value in weights.items():
-        if key.endswith(SCALE_SUFFIX):
-            continue
-        axis = matrix_axis(key)
-        if axis is None:
+        if key.endswith(SCALE_SUFFIX) or row_axis(key) is None:
             continue
         is_int8 = np.asarray(value).dtype == np.int8
         if quantised and not (is_int8 and key + SCALE_SUFFIX in weights):
@@ -75,40 +67,25 @@ def _check_weights(weights: Dict[str, np.ndarray], n_channels: int, quantised: b
             )
         if not quantised and is_int8:
             raise ValueError(f"{key!r} is int8: use quantised=True (or dequantise_weights first)")
-    width = n_channels
-    for net in ("enc", "gen"):
-        for k in range(_layer_count(weights, net)):
-            w = weights[f"{net}.lstm{k}.W"]
-            r = weights[f"{net}.lstm{k}.R"]
-            b = weights[f"{net}.lstm{k}.B"]
-            hidden = r.shape[2]
-            expected = {"W": (1, 4 * hidden, width), "R": (1, 4 * hidden, hidden),
-                        "B": (1, 8 * hidden)}
-            for name, arr in (("W", w), ("R", r), ("B", b)):
-                if tuple(arr.shape) != expected[name]:
-                    raise ValueError(f"{net}.lstm{k}.{name} has shape {tuple(arr.shape)}, "
-                                     f"expected {expected[name]}")
-            width = hidden
-        head_w = weights[f"{net}.head.W"]
-        if head_w.shape[1] != width or weights[f"{net}.head.b"].shape != (head_w.shape[0],):
-            raise ValueError(f"{net}.head does not fit: W {head_w.shape}, input width {width}")
-        width = head_w.shape[0]
-    if width != n_channels:
-        raise ValueError(f"generator writes {width} channels, model built for {n_channels}")
+    arch = architecture({k: v for k, v in weights.items() if not k.endswith(SCALE_SUFFIX)})
+    if arch[0] != n_channels:
+        raise ValueError(f"the weights read {arch[0]} channels, model built for {n_channels}")
+    return arch
 
 
 def build_onnx(
-    weights: Dict[str, np.ndarray], n_channels: int, opset: int = 20, quantised: bool = True
+    weights: Dict[str, np.ndarray], n_channels: int, opset: int = ONNX_OPSET,
+    quantised: bool = True
 ) -> onnx.ModelProto:
     """ONNX model of E then G from a contract dict (int8 + scales, or float32 with quantised=False)."""
-    _check_weights(weights, n_channels, quantised)
+    _, enc, _, gen = _check_weights(weights, n_channels, quantised)
     g = _Graph(weights, quantised)
     squeeze_axes = g.const("axes_num_directions", np.array([1], dtype=np.int64))
     time_axis = g.const("axes_time", np.array([1], dtype=np.int64))
 
     x = g.node("Transpose", [INPUT], "window_tnc", perm=[1, 0, 2])  # [L, N, C]
-    for net in ("enc", "gen"):
-        for k in range(_layer_count(weights, net)):
+    for net, sizes in (("enc", enc), ("gen", gen)):
+        for k in range(len(sizes)):
             key = f"{net}.lstm{k}"
             hidden = int(weights[f"{key}.R"].shape[2])
             w, r, b = (g.tensor(f"{key}.{p}") for p in ("W", "R", "B"))

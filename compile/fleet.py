@@ -12,7 +12,7 @@ The fleet file (TOML, our own format; see DEVELOPERS.md "Fleet files"):
     out = "fleet-out"             # results folder, relative to the fleet file
     board = "a53-512"             # default board for every asset
 
-    [train]                       # optional: DetectorConfig fields, TrainOptions fields
+    [train]                       # optional: TeacherConfig fields, TrainOptions fields
     [distil]                      # optional: DistilConfig fields
 
     [[asset]]
@@ -46,7 +46,7 @@ except ModuleNotFoundError:   # Python < 3.11
     import tomli as tomllib
 
 from ganlet.compile.distil import DistilConfig
-from ganlet.compile.model import DetectorConfig
+from ganlet.compile.model import TeacherConfig
 
 ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]*$")
 TRAIN_OPTION_KEYS = ("train_until", "calibration", "period", "max_fill", "window", "seed")
@@ -137,7 +137,7 @@ def load_fleet(path: Path) -> FleetSpec:
             incidents=str(path.parent / a["incidents"]) if a.get("incidents") else None,
             invented=a.get("invented")))
     train = dict(raw.get("train", {}))
-    check_keys(train, {f.name for f in fields(DetectorConfig)} | set(TRAIN_OPTION_KEYS),
+    check_keys(train, {f.name for f in fields(TeacherConfig)} | set(TRAIN_OPTION_KEYS),
                f"{path}: [train]")
     distil = dict(raw.get("distil", {}))
     check_keys(distil, {f.name for f in fields(DistilConfig)}, f"{path}: [distil]")
@@ -170,11 +170,10 @@ def ensure_data(spec: AssetSpec) -> None:
     data = Path(spec.data)
     if data.exists():
         return
-    from ganlet.compile.demo import load_station_module
+    from ganlet.examples import pump_station
 
-    station = load_station_module()
     tmp = data.parent / f".{data.stem}-gen"
-    info = station.generate(tmp, days=float(spec.invented.get("days", 7)),
+    info = pump_station.generate(tmp, days=float(spec.invented.get("days", 7)),
                             seed=int(spec.invented.get("seed", 7)))
     data.parent.mkdir(parents=True, exist_ok=True)
     Path(info["data"]).replace(data)
@@ -238,12 +237,11 @@ def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
     from dataclasses import replace
 
     from ganlet.compile import verify as verify_mod
-    from ganlet.compile.pack import CompileOptions, compile_dir
-    from ganlet.compile.pipeline import TrainOptions, train_from_file
+    from ganlet.compile.pipeline import CompileOptions, TrainOptions, compile_dir, train_from_file
 
     train = dict(fleet.train)
     options = {k: train.pop(k) for k in TRAIN_OPTION_KEYS if k in train}
-    config = replace(DetectorConfig(), **train)
+    config = replace(TeacherConfig(), **train)
     topts = TrainOptions(channels=spec.channels, rate=spec.rate, config=config, **options)
     if spec.train_until is not None:
         topts.train_until = spec.train_until
@@ -264,7 +262,7 @@ def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
 
         split = trained.model.spans.calibration[1]     # evaluate after the training span
         detection = evaluate_mod.evaluate(compiled.bundle, Path(spec.data), Path(spec.incidents),
-                                          eval_from=split)
+                                          eval_from=split, model_dir=trained.out)
         evaluate_mod.write_json(detection, out / "evaluate.json")
         evaluate_mod.write_html(detection, out / "evaluate.html")
         result.f1 = float(detection.methods["bundle"].metrics["f1"])

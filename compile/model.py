@@ -1,4 +1,4 @@
-"""The detector's networks: generator G, discriminator D, encoder E.
+"""The teacher's networks: generator G, discriminator D, encoder E.
 
 G maps a latent sequence to a window, E maps a window back to a latent sequence, D tells real
 windows from generated ones. The score is the reconstruction residual of x through E then G
@@ -14,7 +14,7 @@ from torch import nn
 
 
 @dataclass
-class DetectorConfig:
+class TeacherConfig:
     """Sizes and training recipe. Defaults suit 1k-20k point series of a handful of sensors."""
 
     window: int = 32
@@ -43,7 +43,7 @@ class DetectorConfig:
         return d
 
     @classmethod
-    def from_json(cls, d: dict) -> DetectorConfig:
+    def from_json(cls, d: dict) -> TeacherConfig:
         known = {f.name for f in fields(cls)}
         unknown = sorted(set(d) - known)
         if unknown:
@@ -88,14 +88,14 @@ class Discriminator(nn.Module):
 
 
 @dataclass
-class Detector:
+class Teacher:
     generator: LSTMStack
     encoder: LSTMStack
     discriminator: Discriminator
-    config: DetectorConfig = field(default_factory=DetectorConfig)
+    config: TeacherConfig = field(default_factory=TeacherConfig)
 
     @classmethod
-    def build(cls, n_channels: int, config: DetectorConfig) -> Detector:
+    def build(cls, n_channels: int, config: TeacherConfig) -> Teacher:
         config = resolved(config, n_channels)
         return cls(
             generator=LSTMStack(config.latent, tuple(config.generator_hidden), n_channels),
@@ -108,7 +108,7 @@ class Detector:
         return self.generator(self.encoder(x))
 
 
-def resolved(config: DetectorConfig, n_channels: int) -> DetectorConfig:
+def resolved(config: TeacherConfig, n_channels: int) -> TeacherConfig:
     """Fill automatic sizes. A per-step latent narrower than the channels keeps E-G from
     learning the identity, so a channel that breaks the others' pattern leaves a residual."""
     if config.latent > 0:
@@ -119,9 +119,3 @@ def resolved(config: DetectorConfig, n_channels: int) -> DetectorConfig:
 def residuals(x: torch.Tensor, recon: torch.Tensor) -> torch.Tensor:
     """Per-channel residual of each window: mean over time of the squared error -> [N, C]."""
     return ((x - recon) ** 2).mean(dim=1)
-
-
-def score_from_residuals(res: torch.Tensor) -> torch.Tensor:
-    """The one combined score: mean over channels."""
-    return res.mean(dim=-1)
-

@@ -16,7 +16,7 @@ from typing import Dict, Optional
 
 import numpy as np
 
-from ganlet.runtime.weights import SCALE_SUFFIX, dequantise, dequantise_dict
+from ganlet.runtime.weights import SCALE_SUFFIX, dequantise, dequantise_dict, row_axis
 
 QMIN, QMAX = -128, 127  # int8 saturation range (ONNX QuantizeLinear)
 SYMMETRIC_MAX = 127  # symmetric: use +-127 so the range is the same on both sides
@@ -81,17 +81,6 @@ def symmetric_scales(w: np.ndarray, axis: int) -> np.ndarray:
     return scale
 
 
-def matrix_axis(key: str) -> Optional[int]:
-    """Output-channel axis of a contract key, or None for a key that stays float32 (biases)."""
-    if key.endswith(".head.W"):
-        return 0
-    if ".lstm" in key and (key.endswith(".W") or key.endswith(".R")):
-        return 1
-    if key.endswith(".B") or key.endswith(".head.b"):
-        return None
-    raise ValueError(f"key {key!r} is not part of the network contract (see DEVELOPERS.md)")
-
-
 def quantise_weights(weights: Dict[str, np.ndarray]) -> Dict[str, np.ndarray]:
     """Float32 contract dict -> the dict that goes into weights.npz (int8 + KEY.scale, biases)."""
     out: Dict[str, np.ndarray] = {}
@@ -99,7 +88,7 @@ def quantise_weights(weights: Dict[str, np.ndarray]) -> Dict[str, np.ndarray]:
         if key.endswith(SCALE_SUFFIX):
             raise ValueError(f"{key!r}: these weights look quantised already")
         value = np.asarray(value, dtype=np.float32)
-        axis = matrix_axis(key)
+        axis = row_axis(key)
         if axis is None:
             out[key] = value.copy()
             continue
@@ -116,7 +105,7 @@ def dequantise_weights(qweights: Dict[str, np.ndarray]) -> Dict[str, np.ndarray]
     workstation and device dequantise with the same code; here every matrix must be quantised.
     """
     for key in qweights:
-        if not key.endswith(SCALE_SUFFIX) and matrix_axis(key) is not None \
+        if not key.endswith(SCALE_SUFFIX) and row_axis(key) is not None \
                 and key + SCALE_SUFFIX not in qweights:
             raise ValueError(f"{key!r} has no companion {key + SCALE_SUFFIX!r}")
     return dequantise_dict(qweights)

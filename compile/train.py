@@ -29,14 +29,15 @@ from ganlet.compile.data import (
     segments_in,
     windows_from,
 )
-from ganlet.compile.model import Detector, DetectorConfig, residuals, score_from_residuals
+from ganlet.compile.model import Teacher, TeacherConfig, residuals
+from ganlet.runtime.score import ScoreRule, score_section
 
 Progress = Callable[[str, int, int, dict], None]   # (phase, epoch, epochs, losses)
 
 
 @dataclass
 class TrainedModel:
-    detector: Detector
+    teacher: Teacher
     scaler: RobustScaler
     channels: list
     units: list
@@ -51,16 +52,25 @@ class TrainedModel:
     segments: list = field(default_factory=list)
     max_fill_periods: int = 5
 
+    def segments_of(self, span: tuple) -> list:
+        """Gap-free segments inside a span (fit or calibration) of the kept series."""
+        b0, e0 = span
+        return [(max(b, b0), min(e, e0)) for b, e in self.segments if min(e, e0) > max(b, b0)]
+
+    def windows_of(self, span: tuple) -> np.ndarray:
+        """Every window [N, L, C] that lies inside a span's gap-free segments."""
+        return windows_from(self.series, self.segments_of(span), self.teacher.config.window)[0]
+
 
 def set_seed(seed: int) -> None:
     torch.manual_seed(seed)
     np.random.seed(seed % (2**32))
 
 
-def train(frame: Frame, spans: Spans, config: DetectorConfig,
+def train(frame: Frame, spans: Spans, config: TeacherConfig,
           progress: Optional[Progress] = None, max_fill_periods: int = 5,
           rate_channels: Sequence[str] = ()) -> TrainedModel:
-    """Fit the scaler on the fit span, then the detector on its windows. rate_channels are
+    """Fit the scaler on the fit span, then the teacher on its windows. rate_channels are
     watched by their change per period instead of their level (ganlet/runtime/features.py)."""
     set_seed(config.seed)
     features = ["rate" if c in rate_channels else "level" for c in frame.channels]
@@ -75,10 +85,10 @@ def train(frame: Frame, spans: Spans, config: DetectorConfig,
     if len(x_fit) > config.max_train_windows:
         stride = int(np.ceil(len(x_fit) / config.max_train_windows))
         x_fit = x_fit[::stride]
-    detector = Detector.build(len(frame.channels), config)
-    history = fit_detector(detector, torch.from_numpy(x_fit), detector.config, progress)
+    teacher = Teacher.build(len(frame.channels), config)
+    history = fit_teacher(teacher, torch.from_numpy(x_fit), teacher.config, progress)
     return TrainedModel(
-        detector=detector, scaler=scaler, channels=frame.channels, units=frame.units,
+        teacher=teacher, scaler=scaler, channels=frame.channels, units=frame.units,
         period_s=frame.period_s, time_col=frame.report.time_col, spans=spans,
         summary=frame.report.to_json(), history=history, series=series,
         raw=np.asarray(frame.values[:end], np.float64),
@@ -92,7 +102,7 @@ def batches(n: int, size: int, generator: torch.Generator):
         yield order[k:k + size]
 
 
-def fit_detector(det: Detector, x: torch.Tensor, cfg: DetectorConfig,
+def fit_teacher(det: Teacher, x: torch.Tensor, cfg: TeacherConfig,
                  progress: Optional[Progress] = None) -> dict:
     g, e, d = det.generator, det.encoder, det.discriminator
     rng = torch.Generator().manual_seed(cfg.seed)
@@ -169,19 +179,36 @@ def fit_detector(det: Detector, x: torch.Tensor, cfg: DetectorConfig,
 
 
 @torch.no_grad()
-def score_windows(det: Detector, windows: np.ndarray, batch: int = 2048):
-    """(scores [N], residuals [N, C]) of scaled windows [N, L, C] through E then G."""
+def teacher_residuals(det: Teacher, windows: np.ndarray, batch: int = 2048) -> np.ndarray:
+    """Per-channel residuals [N, C] of scaled windows [N, L, C] through E then G."""
     det.encoder.eval()
     det.generator.eval()
     out = []
     for k in range(0, len(windows), batch):
         x = torch.from_numpy(np.ascontiguousarray(windows[k:k + batch], dtype=np.float32))
         out.append(residuals(x, det.reconstruct(x)).numpy())
-    res = np.concatenate(out) if out else np.zeros((0, windows.shape[-1]), np.float32)
-    return score_from_residuals(torch.from_numpy(res)).numpy(), res
+    return np.concatenate(out) if out else np.zeros((0, windows.shape[-1]), np.float32)
 
 
-def score_series(det: Detector, series: np.ndarray, segments, window: int, hop: int = 1):
+def score_windows(det: Teacher, windows: np.ndarray):
+    """(scores [N], residuals [N, C]): the teacher's residuals under the gateway's score rule."""
+    res = teacher_residuals(det, windows)
+    return ScoreRule(score_section()).apply(res)[0], res
+
+
+class TeacherScorer:
+    """The teacher as a network backend (residuals of windows), for the gateway's detector."""
+
+    name = "teacher"
+
+    def __init__(self, det: Teacher):
+        self.det = det
+
+    def residuals(self, windows) -> np.ndarray:
+        return teacher_residuals(self.det, np.asarray(windows, np.float32))
+
+
+def score_series(det: Teacher, series: np.ndarray, segments, window: int, hop: int = 1):
     """Causal per-point score: the score of the window ending at each point (NaN before the
     first full window of a segment, and between hops). Returns (scores [T], residuals [T, C])."""
     scores = np.full(len(series), np.nan, np.float64)
@@ -196,8 +223,8 @@ def score_series(det: Detector, series: np.ndarray, segments, window: int, hop: 
 
 def scores_on(model: TrainedModel, values_raw: np.ndarray, segments, hop: int = 1):
     """Score raw values (same channels, same grid) with the model's scaler."""
-    return score_series(model.detector, model.scaler.transform(values_raw), segments,
-                        model.detector.config.window, hop)
+    return score_series(model.teacher, model.scaler.transform(values_raw), segments,
+                        model.teacher.config.window, hop)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -210,7 +237,7 @@ WEIGHT_FILES = {"generator": "generator.pt", "encoder": "encoder.pt",
 def save_model(model: TrainedModel, out: Path) -> Path:
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    det = model.detector
+    det = model.teacher
     for part, name in WEIGHT_FILES.items():
         torch.save(getattr(det, part).state_dict(), out / name)
     save_json(out / "config.json", det.config.to_json())
@@ -238,8 +265,8 @@ def load_model(path: Path) -> TrainedModel:
         raise FileNotFoundError(f"{path} is not a model directory (no model.json); "
                                 "create one with `ganlet train DATA --out DIR`")
     meta = json.loads(meta_file.read_text())
-    config = DetectorConfig.from_json(json.loads((path / "config.json").read_text()))
-    det = Detector.build(len(meta["channels"]), config)
+    config = TeacherConfig.from_json(json.loads((path / "config.json").read_text()))
+    det = Teacher.build(len(meta["channels"]), config)
     for part, name in WEIGHT_FILES.items():
         state = torch.load(path / name, weights_only=True)
         getattr(det, part).load_state_dict(state)
@@ -248,7 +275,7 @@ def load_model(path: Path) -> TrainedModel:
         series = npz["series"]
         raw = npz["raw"] if "raw" in npz.files else None
     return TrainedModel(
-        detector=det, scaler=RobustScaler.from_json(json.loads((path / "scaler.json").read_text())),
+        teacher=det, scaler=RobustScaler.from_json(json.loads((path / "scaler.json").read_text())),
         channels=meta["channels"], units=meta["units"], period_s=meta["period_s"],
         time_col=meta["time_col"], spans=spans,
         summary=json.loads((path / "data_summary.json").read_text()),
@@ -281,8 +308,8 @@ def plot_training(model: TrainedModel, frame: Frame, png: Path) -> Path:
     axes[1].set_xlabel("epoch")
     axes[1].legend()
     end = model.spans.calibration[1]
-    scores, _ = score_series(model.detector, model.series, model.segments,
-                             model.detector.config.window)
+    scores, _ = score_series(model.teacher, model.series, model.segments,
+                             model.teacher.config.window)
     t = frame.times[:end]
     axes[2].plot(t, scores[:end], lw=0.6, color="tab:blue")
     cal = model.spans.calibration

@@ -1,15 +1,17 @@
 """Parity: the device's scores and alerts against the workstation's, on one stream.
 
-Series, all at the hop times the device scored:
+Series, all at the hops the device scored:
   device        the bundle's gateway path: `run.py stream --scores-out` (spawned here on the
-                workstation with --backend numpy), or a scores CSV captured on the device
+                workstation with --backend numpy, compile/gateway.py), or a scores CSV captured
+                on the device
   onnxruntime   the bundle's int8 model.onnx in onnxruntime
-  numpy         the bundle's int8 weights through runtime.lstm.Network in one batch
-  fp32 student  the student before quantisation (its npz beside the teacher)
-  teacher       the torch teacher (E then G)
-The workstation windows come from compile.data.load_frame and the bundle's scaler. Each
-workstation series goes through the bundle's own threshold policy and alert machine, hop by
-hop, as the device does, so alerts compare one to one.
+  numpy         the bundle's int8 weights through runtime.lstm.Network
+  fp32 student  the student before quantisation (the model directory's record, --model)
+  teacher       the torch teacher (E then G) of the model directory (--model)
+Every workstation series is the same stream fed row by row through the gateway's own detector
+(runtime/detector.py: intake, gap filling, features, scaling, ring, score rule, threshold policy,
+alert machine), with only the network backend swapped; so alerts compare one to one, and rows
+the gateway refuses (repeated or out-of-order times) are refused for every series alike.
 
 Judging: pairs that share the int8 weights (device vs onnxruntime, device vs numpy) must agree
 to float rounding (score_rel, spearman_min, sample_agreement_min, every alert event matched
@@ -20,8 +22,6 @@ are judged by rank correlation only (teacher_spearman_min).
 from __future__ import annotations
 
 import json
-import subprocess
-import sys
 import tempfile
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
@@ -32,36 +32,24 @@ import pandas as pd
 from scipy.stats import spearmanr
 
 from ganlet.compile import report as rep
-from ganlet.compile.data import (
-    Frame,
-    IntakeError,
-    IntakeOptions,
-    grid_index,
-    load_frame,
-    parse_times,
-    read_table,
-)
-from ganlet.runtime.alerts import AlertMachine
-from ganlet.runtime.features import series as feature_series
-from ganlet.runtime.lstm import Network, score_from_residuals
-from ganlet.runtime.manifest import Bundle, BundleError, load_bundle
-from ganlet.runtime.thresholds import make_threshold
+from ganlet.compile.data import parse_times, runs
+from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
+from ganlet.runtime.detector import Detector, Judge
+from ganlet.runtime.intake import RowError
+from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
+from ganlet.runtime.scorer import NetworkScorer, make_scorer
+from ganlet.runtime.sources import Control, CsvSource
 
 STRICT = ("onnxruntime", "numpy")          # share the int8 weights with the device
-LOOSE = ("fp32 student", "teacher")        # different networks: rank agreement only
-
-
-class UnusableInput(ValueError):
-    """The inputs cannot be compared at all (exit code 2); the message says why."""
 
 
 @dataclass
 class Tolerances:
-    score_rel: float = 1e-4
-    spearman_min: float = 0.999
-    sample_agreement_min: float = 0.995
-    event_match_hops: int = 3
-    teacher_spearman_min: float = 0.95
+    score_rel: float = PARITY_TOLERANCES["score_rel"]
+    spearman_min: float = PARITY_TOLERANCES["spearman_min"]
+    sample_agreement_min: float = PARITY_TOLERANCES["sample_agreement_min"]
+    event_match_hops: int = PARITY_TOLERANCES["event_match_hops"]
+    teacher_spearman_min: float = PARITY_TOLERANCES["teacher_spearman_min"]
 
     @classmethod
     def from_manifest(cls, manifest: dict, overrides: Sequence[str] = ()) -> Tolerances:
@@ -84,88 +72,58 @@ class Tolerances:
 
 
 # ---------------------------------------------------------------------------------------------
-# the gateway path
+# the same stream through the gateway's detector, one backend at a time
 
 
-def gateway_csv(data: Path, time_col: str, channels: Sequence[str], workdir: Path) -> Path:
-    """DATA as the gateway reads it (comma CSV, header, one row per sample, rows in file order).
-    A comma CSV is passed as is; other delimiters or Parquet are rewritten row for row."""
-    data = Path(data)
-    if data.suffix.lower() == ".csv":
-        with open(data, encoding="utf-8", errors="replace") as fh:
-            header = fh.readline()
-        cells = [c.strip().strip('"') for c in header.split(",")]
-        if time_col in cells and all(c in cells for c in channels):
-            return data
-    table = read_table(data, None)
-    missing = [c for c in [time_col, *channels] if c not in table.columns]
-    if missing:
-        raise IntakeError(f"{data}: column(s) {', '.join(missing)} the bundle needs are absent")
-    out = Path(workdir) / "gateway_input.csv"
-    table[[time_col, *channels]].to_csv(out, index=False)
-    return out
+@dataclass
+class Replay:
+    """Per hop: time (datetime64), score, threshold, alert open; and the rows refused."""
+
+    times: np.ndarray
+    score: np.ndarray
+    threshold: np.ndarray
+    alert: np.ndarray
+    refused: dict
 
 
-def run_gateway(bundle_dir: Path, data: Path, scores_out: Path, backend: str = "numpy") -> Path:
-    """Spawn the bundle's own run.py on DATA; returns its scores CSV."""
-    cmd = [sys.executable, str(Path(bundle_dir) / "run.py"), "stream", "--input", str(data),
-           "--scores-out", str(scores_out), "--backend", backend, "--score-every", "0",
-           "--heartbeat", "0", "--checkpoint-every", "0"]
-    proc = subprocess.run(cmd, capture_output=True, text=True)
-    if proc.returncode != 0:
-        last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
-        raise UnusableInput(f"run.py stream exited with {proc.returncode}: {last}")
-    return Path(scores_out)
-
-
-def read_scores(path: Path) -> pd.DataFrame:
-    """A scores CSV (time,score,threshold,alert) with times as naive UTC datetimes."""
-    path = Path(path)
-    if not path.is_file():
-        raise UnusableInput(f"{path}: no such scores file")
-    try:
-        df = pd.read_csv(path)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise UnusableInput(f"{path}: not a scores CSV ({exc})") from None
-    need = ["time", "score", "threshold", "alert"]
-    if [c for c in need if c not in df.columns]:
-        raise UnusableInput(f"{path}: expected columns {','.join(need)}, found "
-                            f"{','.join(map(str, df.columns))}")
-    if len(df) == 0:
-        raise UnusableInput(f"{path}: no scored hops")
-    times = parse_times(df["time"].astype(str))
-    if times.isna().any():
-        raise UnusableInput(f"{path}: {int(times.isna().sum())} times cannot be parsed")
-    return pd.DataFrame({"time": times.to_numpy(),
-                         "score": pd.to_numeric(df["score"], errors="coerce").to_numpy(float),
-                         "threshold": pd.to_numeric(df["threshold"],
-                                                    errors="coerce").to_numpy(float),
-                         "alert": df["alert"].fillna(0).astype(int).to_numpy() > 0})
-
-
-# ---------------------------------------------------------------------------------------------
-# thresholds, alerts, events
+def replay_feed(bundle: Bundle, scorer, feed: Path) -> Replay:
+    """Feed a CSV through runtime.detector.Detector as `run.py stream` does, with `scorer`."""
+    det = Detector(bundle, scorer)
+    refused = {}
+    hops = []
+    with open(feed, "rb") as fh:
+        for rec in CsvSource(fh, bundle.time_column, bundle.channels, False, None, Control()):
+            if rec.error is not None or rec.blank:
+                if rec.error is not None:
+                    refused[rec.error.kind] = refused.get(rec.error.kind, 0) + 1
+                continue
+            try:
+                events = det.feed(rec.time, rec.values)
+            except RowError as exc:  # refused by time order or range, as on the gateway
+                refused[exc.kind] = refused.get(exc.kind, 0) + 1
+                continue
+            hops += [e for e in events if e["event"] == "score"]
+    return Replay(parse_times(pd.Series([e["time"] for e in hops], dtype=object)).to_numpy(),
+                  np.array([np.nan if e["score"] is None else e["score"] for e in hops], float),
+                  np.array([np.nan if e["threshold"] is None else e["threshold"] for e in hops],
+                           float),
+                  np.array([e["alert_open"] for e in hops], bool), refused)
 
 
 def replay_alerts(scores: np.ndarray, policy: dict, alerting: dict):
-    """(thresholds, alert_open) per hop: the device's threshold.update then machine.step."""
-    thr = make_threshold(dict(policy))
-    machine = AlertMachine(int(alerting["warmup_hops"]), int(alerting["min_hops"]),
-                           float(alerting["close_ratio"]), int(alerting["cooldown_hops"]))
+    """(thresholds, alert_open) per hop of a score series, through the gateway's Judge."""
+    judge = Judge("", [], [], policy, alerting)
     levels = np.empty(len(scores))
     open_ = np.zeros(len(scores), bool)
     for k, s in enumerate(np.asarray(scores, float)):
-        levels[k] = thr.update(float(s))
-        machine.step(float(s), levels[k])
-        open_[k] = machine.is_open
+        judge.step(0.0, float(s))
+        levels[k], open_[k] = judge.level, judge.is_open
     return levels, open_
 
 
 def alert_events(alert: np.ndarray) -> list:
     """Runs of open alert as half-open (first, end) index pairs."""
-    padded = np.concatenate([[False], np.asarray(alert, bool), [False]]).astype(np.int8)
-    edges = np.flatnonzero(np.diff(padded))
-    return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
+    return runs(np.asarray(alert, bool))
 
 
 def match_events(a: list, b: list, tolerance: int):
@@ -188,12 +146,10 @@ def match_events(a: list, b: list, tolerance: int):
 # comparing two series
 
 
-def compare(times: np.ndarray, ref: dict, other: dict, usable: np.ndarray, tol: Tolerances,
-            strict: bool) -> dict:
-    """ref/other: {"score", "alert"} arrays per hop. usable: hops whose windows both sides
-    computed from the same samples (score figures use only those)."""
+def compare(times: np.ndarray, ref: dict, other: dict, tol: Tolerances, strict: bool) -> dict:
+    """ref/other: {"score", "alert"} arrays per hop (NaN where a series has no score)."""
     a, b = np.asarray(ref["score"], float), np.asarray(other["score"], float)
-    ok = usable & np.isfinite(a) & np.isfinite(b)
+    ok = np.isfinite(a) & np.isfinite(b)
     n = int(ok.sum())
     out = {"n": n, "strict": strict}
     if n >= 3:
@@ -206,10 +162,25 @@ def compare(times: np.ndarray, ref: dict, other: dict, usable: np.ndarray, tol: 
         out.update(max_abs_error=float("nan"), max_rel_error=float("nan"),
                    spearman=float("nan"))
     out["sample_agreement"] = float(np.mean(ref["alert"] == other["alert"]))
-    ev_a, ev_b = alert_events(ref["alert"]), alert_events(other["alert"])
-    pairs, miss_a, miss_b = match_events(ev_a, ev_b, tol.event_match_hops)
+    out["events"] = _event_figures(times, ref["alert"], other["alert"], tol.event_match_hops)
+    checks = {}
+    if strict:
+        checks["score_rel"] = bool(out["max_rel_error"] <= tol.score_rel)
+        checks["spearman"] = bool(out["spearman"] >= tol.spearman_min)
+        checks["sample_agreement"] = bool(out["sample_agreement"] >= tol.sample_agreement_min)
+        checks["events"] = not out["events"]["only_device"] and not out["events"]["only_other"]
+    else:
+        checks["spearman"] = bool(out["spearman"] >= tol.teacher_spearman_min)
+    out["checks"] = checks
+    out["passed"] = all(checks.values())
+    return out
+
+
+def _event_figures(times: np.ndarray, ref_alert, other_alert, match_hops: int) -> dict:
+    ev_a, ev_b = alert_events(ref_alert), alert_events(other_alert)
+    pairs, miss_a, miss_b = match_events(ev_a, ev_b, match_hops)
     step = np.timedelta64(1, "s")
-    out["events"] = {
+    return {
         "device": len(ev_a), "other": len(ev_b), "matched": len(pairs),
         "only_device": [str(times[ev_a[i][0]]) for i in miss_a],
         "only_other": [str(times[ev_b[j][0]]) for j in miss_b],
@@ -219,81 +190,38 @@ def compare(times: np.ndarray, ref: dict, other: dict, usable: np.ndarray, tol: 
              "delta_s": float((times[ev_b[j][0]] - times[ev_a[i][0]]) / step)}
             for i, j in pairs],
     }
-    checks = {}
-    if strict:
-        checks["score_rel"] = bool(out["max_rel_error"] <= tol.score_rel)
-        checks["spearman"] = bool(out["spearman"] >= tol.spearman_min)
-        checks["sample_agreement"] = bool(out["sample_agreement"] >= tol.sample_agreement_min)
-        checks["events"] = not miss_a and not miss_b
-    else:
-        checks["spearman"] = bool(out["spearman"] >= tol.teacher_spearman_min)
-    out["checks"] = checks
-    out["passed"] = all(checks.values())
-    return out
 
 
 # ---------------------------------------------------------------------------------------------
-# the workstation series
+# the workstation's backends
 
 
-def repaired_rows(data: Path, frame: Frame, time_col: str) -> np.ndarray:
-    """Grid rows the workstation intake repaired differently from the gateway: repeated
-    timestamps (averaged here, later copies rejected there) and rows out of time order
-    (sorted here, rejected there)."""
-    table = read_table(Path(data), None)
-    times = parse_times(table[time_col]).dropna().to_numpy()
-    slots = grid_index(frame, times)
-    out = np.zeros(len(frame.times), bool)
-    uniq, counts = np.unique(times, return_counts=True)
-    if (counts > 1).any():
-        out[grid_index(frame, uniq[counts > 1])] = True
-    late = np.flatnonzero(times[1:] < np.maximum.accumulate(times)[:-1]) + 1
-    out[slots[late]] = True
-    return out
+def workstation_scorers(bundle: Bundle, model_dir: Optional[Path], notes: list) -> dict:
+    """name -> network backend for each workstation series that can be computed here."""
+    scorers = {}
+    try:
+        scorers["onnxruntime"] = make_scorer(bundle, "onnxruntime")
+    except BundleError as exc:
+        notes.append(f"device vs onnxruntime skipped: {exc}")
+    scorers["numpy"] = make_scorer(bundle, "numpy")
+    if model_dir is None:
+        notes.append("no --model DIR given: device vs fp32 student and vs teacher skipped "
+                     "(the bundle carries nothing of the workstation)")
+        return scorers
+    if not (Path(model_dir) / "model.json").is_file():
+        raise UnusableInput(f"--model {model_dir}: not a model directory (no model.json)")
+    from ganlet.compile.pipeline import student_file
+    from ganlet.compile.train import TeacherScorer, load_model
 
-
-def hop_windows(series: np.ndarray, rows: np.ndarray, window: int):
-    """Windows [N, L, C] ending at each row, and which of them are complete (no NaN)."""
-    n, c = len(rows), series.shape[1]
-    out = np.zeros((n, window, c), np.float32)
-    valid = rows >= window - 1
-    for k in np.flatnonzero(valid):
-        w = series[rows[k] - window + 1: rows[k] + 1]
-        if np.isnan(w).any():
-            valid[k] = False
-        else:
-            out[k] = w
-    return out, valid
-
-
-def network_scores(weights: dict, windows: np.ndarray, valid: np.ndarray) -> np.ndarray:
-    scores = np.full(len(windows), np.nan)
-    if valid.any():
-        _, res = Network(weights).forward(windows[valid])
-        scores[valid] = score_from_residuals(res)
-    return scores
-
-
-def onnx_scores(bundle: Bundle, windows: np.ndarray, valid: np.ndarray) -> np.ndarray:
-    from ganlet.compile.export import run_onnxruntime
-
-    scores = np.full(len(windows), np.nan)
-    if valid.any():
-        _, res = run_onnxruntime(bundle.onnx_path, windows[valid])
-        scores[valid] = score_from_residuals(np.asarray(res, np.float32))
-    return scores
-
-
-def teacher_scores(model_dir: Path, series: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    from ganlet.compile.train import load_model, score_windows
-
-    model = load_model(model_dir)
-    windows, valid = hop_windows(series, rows, model.detector.config.window)
-    scores = np.full(len(rows), np.nan)
-    if valid.any():
-        s, _ = score_windows(model.detector, windows[valid])
-        scores[valid] = s
-    return scores
+    student = student_file(model_dir, bundle.bundle_id)
+    if student.is_file():
+        with np.load(student, allow_pickle=False) as npz:
+            scorers["fp32 student"] = NetworkScorer(dict(npz), "fp32 student")
+    else:
+        notes.append(f"{model_dir} holds no record of this bundle ({bundle.bundle_id[:12]}; "
+                     "compiled from another model directory?): device vs fp32 student skipped")
+    scorers["teacher"] = TeacherScorer(load_model(model_dir).teacher)
+    return scorers
 
 
 @dataclass
@@ -307,7 +235,6 @@ class VerifyResult:
     tolerances: Tolerances
     notes: list = field(default_factory=list)
     hops: int = 0
-    excluded_hops: int = 0
     device_replay_agreement: float = float("nan")
 
     @property
@@ -318,7 +245,6 @@ class VerifyResult:
     def to_json(self) -> dict:
         return {"passed": self.passed, "bundle": self.bundle, "data": self.data,
                 "device_source": self.device_source, "hops": self.hops,
-                "excluded_hops": self.excluded_hops,
                 "device_alert_replay_agreement": self.device_replay_agreement,
                 "tolerances": asdict(self.tolerances), "pairs": self.pairs, "notes": self.notes,
                 "judging": "pairs sharing the int8 weights (device vs onnxruntime, device vs "
@@ -358,79 +284,24 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
         raise UnusableInput(f"bundle refused: {exc}") from None
     tol = Tolerances.from_manifest(bundle.manifest, tolerances)
     notes = []
-    opts = IntakeOptions(time_col=bundle.time_column, channels=bundle.channels,
-                         period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods)
-    frame = load_frame(data, opts)
-
     with tempfile.TemporaryDirectory(prefix="ganlet-verify-") as tmp:
+        feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp))
         if device_scores is None:
-            feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp))
-            scores_csv = run_gateway(bundle.dir, feed, Path(tmp) / "scores.csv")
+            device = read_scores(run_bundle(bundle.dir, feed, Path(tmp) / "gateway").scores)
             source = "workstation run of the bundle's run.py stream (numpy backend)"
-            device = read_scores(scores_csv)
         else:
-            source = f"device capture {device_scores}"
             device = read_scores(device_scores)
-
+            source = f"device capture {device_scores}"
+        replays = {name: replay_feed(bundle, scorer, feed)
+                   for name, scorer in workstation_scorers(bundle, model_dir, notes).items()}
     times = device["time"].to_numpy()
-    offset_s = (times - frame.times.values[0]) / np.timedelta64(1, "s")
-    rows = np.rint(offset_s / frame.period_s).astype(np.int64)
-    inside = (rows >= 0) & (rows < len(frame.times))
-    if not inside.any():
-        raise UnusableInput("the device's scored hops do not fall inside DATA's time span; "
-                            "pass the same data the device read")
-    if not inside.all():
-        notes.append(f"{int((~inside).sum())} device hops lie outside DATA's span; left out")
-        device = device[inside].reset_index(drop=True)
-        times, rows = times[inside], rows[inside]
-    off_grid = np.abs(frame.times.values[rows] - times) > np.timedelta64(
-        int(frame.period_s * 0.5e9), "ns")
-
-    series = bundle.scaled(feature_series(frame.values, bundle.rate))
-    windows, valid = hop_windows(series, rows, bundle.window)
-    repaired = repaired_rows(Path(data), frame, frame.report.time_col)
-    touched = np.array([repaired[max(0, r - bundle.window + 1): r + 1].any() for r in rows])
-    usable = valid & ~touched & ~off_grid
-    if touched.any():
-        notes.append(f"{int(touched.sum())} hops have a window over rows the workstation intake "
-                     "repaired (repeated timestamps averaged, out-of-order rows sorted) while "
-                     "the gateway rejected them; their scores differ by construction and are "
-                     "left out of the score figures (alerts still compared)")
-    if off_grid.any():
-        notes.append(f"{int(off_grid.sum())} device hops fall between grid points; left out "
-                     "of the score figures")
-    if (~valid).any():
-        notes.append(f"{int((~valid).sum())} device hops have no complete window in DATA "
-                     "(gaps); left out of the score figures")
-
-    computed = {}
-    try:
-        computed["onnxruntime"] = onnx_scores(bundle, windows, valid)
-    except ImportError:
-        notes.append("onnxruntime is not installed: device vs onnxruntime skipped")
-    computed["numpy"] = network_scores(bundle.weights, windows, valid)
-    teacher_info = bundle.manifest.get("teacher", {})
-    student_file = teacher_info.get("student_weights")
-    if student_file and Path(student_file).is_file():
-        with np.load(student_file, allow_pickle=False) as npz:
-            computed["fp32 student"] = network_scores(dict(npz), windows, valid)
-    else:
-        notes.append("fp32 student weights not available (manifest teacher.student_weights "
-                     f"{student_file!r}): device vs fp32 student skipped")
-    tdir = Path(model_dir) if model_dir else (Path(teacher_info["model_dir"])
-                                                 if teacher_info.get("model_dir") else None)
-    if tdir is not None and (tdir / "model.json").is_file():
-        try:
-            computed["teacher"] = teacher_scores(tdir, series, rows)
-        except ImportError:
-            notes.append("torch is not installed: device vs teacher skipped")
-    else:
-        notes.append(f"teacher model directory not available ({tdir}); pass --model DIR: "
-                     "device vs teacher skipped")
-
     dev = {"score": device["score"].to_numpy(float), "threshold": device["threshold"].to_numpy(),
            "alert": device["alert"].to_numpy(bool)}
-    out_series = {"device": dev}
+    series, pairs = {"device": dev}, {}
+    for name, r in replays.items():
+        series[name] = _at_device_hops(times, r)
+        pairs[name] = compare(times, dev, series[name], tol, strict=name in STRICT)
+    _note_alignment(notes, times, next(iter(replays.values())))
     _, replayed = replay_alerts(dev["score"], bundle.threshold_policy, bundle.alerting)
     replay_agreement = float(np.mean(replayed == dev["alert"]))
     if replay_agreement < 1.0:
@@ -438,15 +309,34 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
                      f"machine reproduces its alert column on {replay_agreement:.2%} of hops "
                      "(a restart from a checkpoint mid-stream, or a different runtime, would "
                      "explain a difference)")
-    pairs = {}
-    for name, scores in computed.items():
-        levels, alert = replay_alerts(scores, bundle.threshold_policy, bundle.alerting)
-        out_series[name] = {"score": scores, "threshold": levels, "alert": alert}
-        pairs[name] = compare(times, dev, out_series[name], usable, tol, strict=name in STRICT)
     return VerifyResult(bundle=str(bundle.dir), data=str(data), device_source=source,
-                        times=times, series=out_series, pairs=pairs, tolerances=tol, notes=notes,
-                        hops=len(times), excluded_hops=int((~usable).sum()),
-                        device_replay_agreement=replay_agreement)
+                        times=times, series=series, pairs=pairs, tolerances=tol, notes=notes,
+                        hops=len(times), device_replay_agreement=replay_agreement)
+
+
+def _at_device_hops(times: np.ndarray, r: Replay) -> dict:
+    """A workstation series at the device's hop times (NaN / closed where it has no hop)."""
+    index = pd.Index(r.times)
+    at = index.get_indexer(times)
+    have = at >= 0
+    pick = lambda values, empty: np.where(have, values[np.maximum(at, 0)], empty)  # noqa: E731
+    return {"score": pick(r.score, np.nan), "threshold": pick(r.threshold, np.nan),
+            "alert": pick(r.alert, False).astype(bool)}
+
+
+def _note_alignment(notes: list, times: np.ndarray, r: Replay) -> None:
+    if r.refused:
+        kinds = ", ".join(f"{k} {v}" for k, v in sorted(r.refused.items()))
+        notes.append(f"the gateway's intake refused rows of DATA ({kinds}); every series "
+                     "skipped the same rows")
+    missing = int((pd.Index(r.times).get_indexer(times) < 0).sum())
+    if missing:
+        notes.append(f"{missing} device hops have no hop at the same time in the workstation's "
+                     "replay of DATA (was the device fed other data, or resumed mid-stream?); "
+                     "they count as disagreements")
+    extra = len(r.times) - (len(times) - missing)
+    if extra > 0:
+        notes.append(f"the workstation's replay scored {extra} hops the device did not report")
 
 
 # ---------------------------------------------------------------------------------------------

@@ -21,16 +21,23 @@ from typing import Any, Dict, Optional
 WARMED_UP = "warmed_up"
 OPENED = "opened"
 CLOSED = "closed"
+ALERTING_KEYS = ("warmup_hops", "min_hops", "close_ratio", "cooldown_hops")
+
+
+def default_alerting(window: int, hop: int) -> dict:
+    """The alert settings a bundle gets unless the engineer says otherwise.
+
+    min_hops 3: one or two noisy hops never open an alert (common practice: a short on-delay);
+    close_ratio 0.8: hysteresis, so a score hovering at the threshold does not chatter;
+    cooldown: one window's worth of hops, the time a spike takes to leave the window.
+    """
+    return {"warmup_hops": 0, "min_hops": 3, "close_ratio": 0.8,
+            "cooldown_hops": max(1, window // hop)}
 
 
 class AlertMachine:
-    def __init__(
-        self,
-        warmup_hops: int = 0,
-        min_hops: int = 1,
-        close_ratio: float = 0.8,
-        cooldown_hops: int = 0,
-    ):
+    def __init__(self, *, warmup_hops: int, min_hops: int, close_ratio: float,
+                 cooldown_hops: int):
         for name, v, lo in (
             ("warmup_hops", warmup_hops, 0),
             ("min_hops", min_hops, 1),
@@ -118,7 +125,7 @@ class AlertMachine:
 
     @classmethod
     def from_state(cls, d: Dict[str, Any]) -> "AlertMachine":
-        m = cls(d["warmup_hops"], d["min_hops"], d["close_ratio"], d["cooldown_hops"])
+        m = cls(**{k: d[k] for k in ALERTING_KEYS})
         m.hop = int(d["hop"])
         m.is_open = bool(d["is_open"])
         m.open_since_hop = None if d["open_since_hop"] is None else int(d["open_since_hop"])

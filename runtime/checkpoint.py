@@ -14,7 +14,7 @@ import os
 from pathlib import Path
 from typing import Optional
 
-CHECKPOINT_VERSION = 2  # 2: the last raw row (rate features, raw-space gap filling)
+CHECKPOINT_VERSION = 3  # 3: detector state split (judge), sink states by sink name
 
 
 class CheckpointError(Exception):

@@ -8,20 +8,11 @@ A thin argparse layer over load_bundle, make_scorer, run_stream and run_bench. E
 import argparse
 import json
 import sys
-from pathlib import Path
 from typing import List, Optional
 
 from .checkpoint import CheckpointError
-from .manifest import BundleError, load_bundle
+from .manifest import BundleError, load_bundle, read_key
 from .scorer import BACKENDS, make_scorer
-
-
-def read_key(path: str) -> bytes:
-    """The signing key: the file's bytes with surrounding whitespace (a trailing newline) removed."""
-    key = Path(path).read_bytes().strip()
-    if not key:
-        raise BundleError(f"{path}: key file is empty")
-    return key
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -29,7 +20,7 @@ def _parser() -> argparse.ArgumentParser:
     common.add_argument("--bundle", help="bundle folder (default: the folder of run.py)")
     common.add_argument("--key", help="file holding the HMAC key the bundle was signed with")
     common.add_argument("--require-signature", action="store_true",
-                        help="refuse a bundle without a valid manifest.sig")
+                        help="refuse a bundle without a valid manifest.hmac")
 
     p = argparse.ArgumentParser(
         prog="run.py", description="ganlet gateway runtime (advisory condition monitoring)"

@@ -1,16 +1,21 @@
-"""Events and where they go.
+"""Events and the sinks they go to.
 
-An event is a flat JSON object {"event": NAME, ...}. The service hands each event to every sink;
-each sink keeps the kinds it cares about:
+An event is a flat JSON object {"event": NAME, ...}; EVENTS names every kind the gateway emits.
+The service hands each event to every sink, durable sinks first; each sink keeps the kinds it
+cares about. A sink is any object with this protocol (a new one is one class in one file):
 
-- JsonLinesSink: every event as one JSON line (stdout); score events thinned to every Nth hop.
-- ScoresCsvSink: every score event as a row time,score,threshold,alert (never thinned).
-- AlertDbSink: alert_opened / alert_closed as an idempotent upsert by alert id into SQLite.
+    handle(event: dict) -> None     take one event; raise OSError when its store fails
+    durable_state() -> dict | None  make what was handled durable (fsync / commit) and return
+                                    what a restart needs to resume it exactly (kept in the
+                                    checkpoint under the sink's `name`); None if nothing
+    close() -> None
 
-Durability: the CSV sink can report a byte offset after an fsync, which the checkpoint records;
-on resume the file is cut back to that offset and the replayed hops append the same rows again,
-so a restart neither loses nor duplicates a row. The SQLite sink commits one transaction per
-alert change (WAL, synchronous=FULL) and upserts by a deterministic id, so replaying a change
+Built in here: JsonLinesSink (stdout), ScoresCsvSink (--scores-out), AlertDbSink (--alert-db).
+
+Durability: the CSV sink reports its byte size after an fsync, which the checkpoint records; on
+resume the file is cut back to that size and the replayed hops append the same rows again, so a
+restart neither loses nor duplicates a row. The SQLite sink commits one transaction per alert
+change (WAL, synchronous=FULL) and upserts by a deterministic id, so replaying a change
 rewrites the same row.
 """
 
@@ -20,8 +25,19 @@ import sqlite3
 from pathlib import Path
 from typing import List, Optional
 
-SCORES_HEADER = "time,score,threshold,alert\n"
+EVENTS = (
+    "start",  # the service started (with the advisory notice)
+    "warmed_up",  # the alert machine's warm-up is over
+    "score",  # one scored hop
+    "alert_opened",
+    "alert_closed",
+    "gap",  # a long gap reset the window
+    "input_error",  # rejected rows, counted by kind (rate-limited)
+    "heartbeat",
+    "stop",  # the service stopped (with every counter)
+)
 ALERT_EVENTS = ("alert_opened", "alert_closed")
+SCORES_HEADER = "time,score,threshold,alert\n"
 
 
 def _num(x) -> str:
@@ -30,6 +46,8 @@ def _num(x) -> str:
 
 
 class JsonLinesSink:
+    name = "stdout"
+
     def __init__(self, stream, score_every: int = 1):
         self.stream = stream
         self.score_every = int(score_every)
@@ -41,6 +59,9 @@ class JsonLinesSink:
         self.stream.write(json.dumps(event, separators=(",", ":"), allow_nan=False) + "\n")
         self.stream.flush()
 
+    def durable_state(self) -> Optional[dict]:
+        return None  # at-least-once: replayed hops print their events again
+
     def close(self) -> None:
         try:
             self.stream.flush()
@@ -49,7 +70,10 @@ class JsonLinesSink:
 
 
 class ScoresCsvSink:
-    def __init__(self, path, resume_offset: Optional[int] = None):
+    name = "scores_csv"
+
+    def __init__(self, path, resume: Optional[dict] = None):
+        resume_offset = resume.get("offset") if resume else None
         self.path = Path(path)
         self.fh = open(self.path, "ab")
         if resume_offset is not None:
@@ -73,11 +97,11 @@ class ScoresCsvSink:
         self.fh.write(row.encode("ascii"))
         self.fh.flush()  # visible to readers at once; fsync'd (durable) at each checkpoint
 
-    def durable_offset(self) -> int:
+    def durable_state(self) -> dict:
         """Flush + fsync, then the file size: everything before it survives a power cut."""
         self.fh.flush()
         os.fsync(self.fh.fileno())
-        return self.fh.tell()
+        return {"offset": self.fh.tell()}
 
     def close(self) -> None:
         if not self.fh.closed:
@@ -87,6 +111,7 @@ class ScoresCsvSink:
 
 
 class AlertDbSink:
+    name = "alert_db"
     SCHEMA = (
         "CREATE TABLE IF NOT EXISTS alerts ("
         " id TEXT PRIMARY KEY,"
@@ -130,28 +155,32 @@ class AlertDbSink:
             raise
         self.db.execute("COMMIT")
 
+    def durable_state(self) -> Optional[dict]:
+        return None  # each alert change is committed as it is handled
+
     def close(self) -> None:
         self.db.close()
 
 
 class EventWriter:
-    """Fan an event out to the sinks, durable sinks first (see module docstring)."""
+    """Fan an event out to the sinks in the order given (durable sinks first)."""
 
     def __init__(self, sinks: List):
         self.sinks = list(sinks)
 
-    def emit(self, event_name: str, /, **fields) -> dict:
-        event = {"event": event_name}
-        event.update(fields)
+    def emit(self, event: dict) -> dict:
         for sink in self.sinks:
             sink.handle(event)
         return event
 
-    def find(self, kind):
+    def durable_state(self) -> dict:
+        """Every sink made durable; what each needs to resume, by sink name."""
+        out = {}
         for sink in self.sinks:
-            if isinstance(sink, kind):
-                return sink
-        return None
+            state = sink.durable_state()
+            if state is not None:
+                out[sink.name] = state
+        return out
 
     def close(self) -> None:
         for sink in self.sinks:

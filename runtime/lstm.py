@@ -11,25 +11,17 @@ The equations are those of the ONNX LSTM operator (opset 14+) with its default a
 Weight layout (DEVELOPERS.md): W [1, 4H, I], R [1, 4H, H], B [1, 8H] = [Wb, Rb].
 Because the layout is the operator's own, one weight file serves this scorer and an ONNX model.
 
-The network is the contract in DEVELOPERS.md: encoder LSTM stack + linear head -> latent
-sequence z; generator LSTM stack + linear head -> reconstruction; the score is the mean over
-channels of the per-channel mean squared residual.
+The network is the contract in DEVELOPERS.md (contract_shapes below states its layout once):
+encoder LSTM stack + linear head -> latent sequence z; generator LSTM stack + linear head ->
+reconstruction; per channel the mean squared residual over the window. score.py turns the
+residuals into the score.
 """
 
-from typing import Dict, List, Optional, Tuple
+from typing import Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
 F32 = np.float32
-
-
-def sigmoid(x: np.ndarray) -> np.ndarray:
-    """Logistic function without overflow: exp is only ever taken of -|x|."""
-    x = np.asarray(x)
-    if x.dtype != np.float64:
-        x = x.astype(F32, copy=False)
-    e = np.exp(-np.abs(x))
-    return np.where(x >= 0, 1.0 / (1.0 + e), e / (1.0 + e)).astype(x.dtype, copy=False)
 
 
 def _as_state(s: Optional[np.ndarray], n: int, h: int, name: str) -> np.ndarray:
@@ -130,15 +122,56 @@ def lstm_forward(
     return _lstm_layer(x, wt, rt, b, h, c)
 
 
-def _count_layers(weights: Dict[str, np.ndarray], net: str) -> int:
-    k = 0
-    while f"{net}.lstm{k}.W" in weights:
-        k += 1
-    if k == 0:
-        raise ValueError(
-            f"weights have no '{net}.lstm0.W': not a ganlet network (see DEVELOPERS.md)"
-        )
-    return k
+def contract_shapes(n_channels: int, encoder: Sequence[int], latent: int,
+                    generator: Sequence[int]) -> Dict[str, Tuple[int, ...]]:
+    """Every key of the network's weight dict and its shape (DEVELOPERS.md, "the network
+    contract"): the one statement of the layout that the manifest, the exporter, the packer and
+    this scorer check against."""
+    shapes = {}
+    for net, sizes, n_in, n_out in (("enc", encoder, n_channels, latent),
+                                    ("gen", generator, latent, n_channels)):
+        prev = n_in
+        for k, h in enumerate(sizes):
+            shapes[f"{net}.lstm{k}.W"] = (1, 4 * h, prev)
+            shapes[f"{net}.lstm{k}.R"] = (1, 4 * h, h)
+            shapes[f"{net}.lstm{k}.B"] = (1, 8 * h)
+            prev = h
+        shapes[f"{net}.head.W"] = (n_out, prev)
+        shapes[f"{net}.head.b"] = (n_out,)
+    return shapes
+
+
+def architecture(weights: Dict[str, np.ndarray]) -> Tuple[int, List[int], int, List[int]]:
+    """(channels, encoder widths, latent, generator widths) of a float32 weight dict, after
+    checking that its keys and shapes are exactly contract_shapes(...) of those sizes."""
+    sizes = {}
+    for net in ("enc", "gen"):
+        widths = []
+        while f"{net}.lstm{len(widths)}.R" in weights:
+            widths.append(int(np.shape(weights[f"{net}.lstm{len(widths)}.R"])[-1]))
+        if not widths:
+            raise ValueError(f"weights have no '{net}.lstm0.R': not a ganlet network "
+                             "(see DEVELOPERS.md)")
+        sizes[net] = widths
+    try:
+        n_channels = int(np.shape(weights["enc.lstm0.W"])[2])
+        latent = int(np.shape(weights["enc.head.W"])[0])
+    except (KeyError, IndexError):
+        raise ValueError("weights lack enc.lstm0.W [1, 4H, C] or enc.head.W [K, H]") from None
+    expected = contract_shapes(n_channels, sizes["enc"], latent, sizes["gen"])
+    unknown = sorted(set(weights) - set(expected))
+    if unknown:
+        raise ValueError(f"unexpected weight keys {unknown} (quantised? use load_weights)")
+    for key, shape in expected.items():
+        if key not in weights:
+            raise ValueError(f"weights are missing {key!r}")
+        got = tuple(np.shape(weights[key]))
+        if got != shape:
+            raise ValueError(f"{key} has shape {got}, the network implies {shape}: each "
+                             "layer's input size is the previous width "
+                             f"({n_channels} channels, encoder {sizes['enc']}, latent {latent}, "
+                             f"generator {sizes['gen']})")
+    return n_channels, sizes["enc"], latent, sizes["gen"]
 
 
 class Network:
@@ -150,51 +183,19 @@ class Network:
     """
 
     def __init__(self, weights: Dict[str, np.ndarray]):
+        self._n_channels, enc, self._latent, gen = architecture(weights)
+        self._sizes = {"enc": enc, "gen": gen}
         self._layers: Dict[str, List[Tuple[np.ndarray, np.ndarray, np.ndarray]]] = {}
         self._heads: Dict[str, Tuple[np.ndarray, np.ndarray]] = {}
-        self._sizes: Dict[str, List[int]] = {}
-        expected = set()
         for net in ("enc", "gen"):
-            layers = []
-            for k in range(_count_layers(weights, net)):
-                pre = f"{net}.lstm{k}"
-                for part in ("W", "R", "B"):
-                    if f"{pre}.{part}" not in weights:
-                        raise ValueError(f"weights are missing '{pre}.{part}'")
-                    expected.add(f"{pre}.{part}")
-                layers.append(
-                    _prepare(weights[f"{pre}.W"], weights[f"{pre}.R"], weights[f"{pre}.B"], pre)
-                )
-            for part in ("W", "b"):
-                if f"{net}.head.{part}" not in weights:
-                    raise ValueError(f"weights are missing '{net}.head.{part}'")
-                expected.add(f"{net}.head.{part}")
+            self._layers[net] = [
+                _prepare(weights[f"{net}.lstm{k}.W"], weights[f"{net}.lstm{k}.R"],
+                         weights[f"{net}.lstm{k}.B"], f"{net}.lstm{k}")
+                for k in range(len(self._sizes[net]))
+            ]
             hw = np.asarray(weights[f"{net}.head.W"], dtype=F32)
-            hb = np.asarray(weights[f"{net}.head.b"], dtype=F32)
-            if hw.ndim != 2 or hb.shape != (hw.shape[0],):
-                raise ValueError(
-                    f"{net}.head: W must be [out, in] and b [out], got {hw.shape} and {hb.shape}"
-                )
-            # each layer's input size must be the previous layer's hidden size
-            for k in range(1, len(layers)):
-                if layers[k][0].shape[0] != layers[k - 1][1].shape[0]:
-                    raise ValueError(f"{net}.lstm{k}.W input size does not match {net}.lstm{k - 1}")
-            if hw.shape[1] != layers[-1][1].shape[0]:
-                raise ValueError(
-                    f"{net}.head.W input size does not match the last {net} LSTM layer"
-                )
-            self._layers[net] = layers
-            self._heads[net] = (np.ascontiguousarray(hw.T), hb)
-            self._sizes[net] = [int(rt.shape[0]) for _, rt, _ in layers]
-        unknown = sorted(k for k in weights if k not in expected)
-        if unknown:
-            raise ValueError(f"unexpected weight keys {unknown} (quantised? use load_weights)")
-        self._n_channels = int(self._layers["enc"][0][0].shape[0])
-        self._latent = int(self._heads["enc"][0].shape[1])
-        if self._layers["gen"][0][0].shape[0] != self._latent:
-            raise ValueError("gen.lstm0 input size must equal the encoder's latent size")
-        if self._heads["gen"][0].shape[1] != self._n_channels:
-            raise ValueError("gen.head output size must equal the number of channels")
+            self._heads[net] = (np.ascontiguousarray(hw.T),
+                                np.asarray(weights[f"{net}.head.b"], dtype=F32))
 
     @property
     def encoder_sizes(self) -> List[int]:
@@ -270,11 +271,3 @@ class Network:
             hwt = self._heads[net][0]
             macs += hwt.shape[0] * hwt.shape[1]
         return int(2 * macs * window_len)
-
-
-def score_from_residuals(residuals: np.ndarray) -> np.ndarray:
-    """The one score definition: mean over channels of the per-channel residuals. [N, C] -> [N]."""
-    r = np.asarray(residuals, dtype=F32)
-    if r.ndim != 2:
-        raise ValueError(f"residuals must have shape [N, C], got {r.shape}")
-    return np.mean(r, axis=1, dtype=F32)

@@ -1,30 +1,52 @@
-"""The bundle manifest: the one definition of what a bundle is, its writer and its reader.
+"""The bundle manifest: the one definition of what a bundle is, its builder, writer and reader.
 
 A bundle is a folder:
 
-    manifest.json  manifest.sig (optional)  model.onnx  weights.npz  run.py  INSTALL.txt
+    manifest.json  manifest.hmac (optional)  model.onnx  weights.npz  run.py  INSTALL.txt
     ganlet/runtime/*.py   (a copy of this package, so the gateway needs no pip install)
 
 manifest.json lists every other file with its SHA-256, so a gateway can prove the folder is the
-one the workstation packed. manifest.sig, when present, is the hex HMAC-SHA256 of the exact
-manifest.json bytes under a shared key. The reader (load_bundle) is the authority; compile/
-writes bundles through write_manifest so both halves agree by construction.
+one the workstation packed. manifest.hmac, when present, holds the hex HMAC-SHA256 of the exact
+manifest.json bytes under a shared key. The reader (load_bundle) is the authority: compile/ and
+the tests build manifests through build_manifest and write them through write_manifest, so both
+halves agree by construction. The manifest carries nothing of the workstation (no paths, no
+teacher); the workstation keeps its own record beside the teacher (compile/pack.py).
 """
 
 import hashlib
 import hmac
 import json
-from datetime import datetime
+import sys
+from datetime import datetime, timezone
 from pathlib import Path, PurePosixPath
-from typing import Dict, List, Optional
+from typing import Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
+from .alerts import AlertMachine
 from .features import FEATURE_KINDS, rate_mask
+from .lstm import contract_shapes
+from .score import ScoreRule
+from .thresholds import make_threshold
 
-SCHEMA_VERSION = "1.0"
+SCHEMA_VERSION = "2.0"  # 2: manifest.hmac, no workstation section, requires
 MANIFEST_NAME = "manifest.json"
-SIGNATURE_NAME = "manifest.sig"
+HMAC_NAME = "manifest.hmac"
+WEIGHTS_NAME = "weights.npz"
+ONNX_NAME = "model.onnx"
+QUANTISATION = "int8-symmetric-per-row"
+# model.onnx's interface: compile/export.py builds to it, scorer.py runs it.
+ONNX_OPSET = 20
+ONNX_INPUT = "window"  # [N, L, C] float32, scaled
+ONNX_RECONSTRUCTION = "reconstruction"  # [N, L, C]
+ONNX_RESIDUALS = "residuals"  # [N, C]
+# The oldest gateway this runtime is written for (Python 3.9 syntax, numpy 1.19 API); board
+# profiles promising less are refused at compile time.
+REQUIRES = {"python": "3.9", "numpy": "1.19"}
+# Device vs workstation on the same int8 weights may differ by float rounding only; the teacher
+# and the fp32 student are other networks, judged by rank agreement.
+PARITY_TOLERANCES = {"score_rel": 1e-4, "spearman_min": 0.999, "sample_agreement_min": 0.995,
+                     "event_match_hops": 3, "teacher_spearman_min": 0.95}
 _SKIP_DIRS = ("__pycache__",)
 
 # key -> accepted python types (bool is excluded from numbers explicitly below)
@@ -46,6 +68,7 @@ _REQUIRED = {
     "alerting": (dict,),
     "board": (dict,),
     "parity": (dict,),
+    "requires": (dict,),
     "files": (dict,),
 }
 _NETWORK_KEYS = {
@@ -57,7 +80,6 @@ _NETWORK_KEYS = {
     "quantisation": (str,),
     "onnx_opset": (int,),
 }
-_ALERTING_KEYS = ("warmup_hops", "min_hops", "close_ratio", "cooldown_hops")
 
 
 class BundleError(Exception):
@@ -80,7 +102,7 @@ def _bundle_files(bundle_dir: Path) -> List[str]:
         if not p.is_file() or any(part in _SKIP_DIRS for part in rel.parts):
             continue
         relposix = rel.as_posix()
-        if relposix in (MANIFEST_NAME, SIGNATURE_NAME):
+        if relposix in (MANIFEST_NAME, HMAC_NAME):
             continue
         out.append(relposix)
     return out
@@ -114,7 +136,7 @@ def _schema_major(version: str) -> int:
 
 
 def validate_manifest(manifest: dict) -> None:
-    """Check required keys and their types. Raises BundleError naming the first problem."""
+    """Check required keys, types and values. Raises BundleError naming the first problem."""
     if not isinstance(manifest, dict):
         raise BundleError("manifest: top level must be a JSON object; re-pack the bundle")
     missing = [k for k in _REQUIRED if k not in manifest]
@@ -125,27 +147,39 @@ def validate_manifest(manifest: dict) -> None:
         )
     for key, types in _REQUIRED.items():
         _check_type(key, manifest[key], types)
-
-    major = _schema_major(manifest["schema_version"])
-    ours = _schema_major(SCHEMA_VERSION)
-    if major > ours:
-        raise BundleError(
-            f"manifest: bundle schema {manifest['schema_version']} is newer than this runtime "
-            f"understands ({SCHEMA_VERSION}); update the gateway runtime (use the run.py that "
-            "ships inside the bundle) or re-pack with an older tool"
-        )
-    if major < ours:
-        raise BundleError(
-            f"manifest: bundle schema {manifest['schema_version']} is older than this runtime "
-            f"supports ({SCHEMA_VERSION}); re-pack the bundle"
-        )
+    _check_schema(manifest["schema_version"])
     try:
         datetime.fromisoformat(manifest["created"].replace("Z", "+00:00"))
     except ValueError:
         raise BundleError(
             f"manifest: created {manifest['created']!r} is not an ISO 8601 time"
         ) from None
+    _check_channels(manifest)
+    _check_scaler(manifest)
+    _check_network(manifest["network"])
+    _check_sections(manifest)
+    for rel, digest in manifest["files"].items():
+        p = PurePosixPath(rel)
+        if p.is_absolute() or ".." in p.parts or not isinstance(digest, str) or len(digest) != 64:
+            raise BundleError(f"manifest: files entry {rel!r} is not a safe relative path + sha256")
 
+
+def _check_schema(version: str) -> None:
+    major, ours = _schema_major(version), _schema_major(SCHEMA_VERSION)
+    if major > ours:
+        raise BundleError(
+            f"manifest: bundle schema {version} is newer than this runtime understands "
+            f"({SCHEMA_VERSION}); update the gateway runtime (use the run.py that ships inside "
+            "the bundle) or re-pack with an older tool"
+        )
+    if major < ours:
+        raise BundleError(
+            f"manifest: bundle schema {version} is older than this runtime supports "
+            f"({SCHEMA_VERSION}); re-pack the bundle"
+        )
+
+
+def _check_channels(manifest: dict) -> None:
     channels = manifest["channels"]
     if not channels:
         raise BundleError("manifest: channels is empty; the model needs at least one input")
@@ -161,7 +195,6 @@ def validate_manifest(manifest: dict) -> None:
         raise BundleError(f"manifest: channel names are not unique: {names}")
     if manifest["time_column"] in names:
         raise BundleError("manifest: time_column is also listed as a channel")
-
     if not (_is_number(manifest["period_s"]) and manifest["period_s"] > 0):
         raise BundleError("manifest: period_s must be a positive number of seconds")
     if manifest["max_gap_periods"] < 0:
@@ -169,29 +202,30 @@ def validate_manifest(manifest: dict) -> None:
     if manifest["window"] < 1 or manifest["hop"] < 1:
         raise BundleError("manifest: window and hop must be >= 1")
 
-    scaler = manifest["scaler"]
+
+def _check_scaler(manifest: dict) -> None:
+    scaler, n = manifest["scaler"], len(manifest["channels"])
     if scaler.get("kind") != "robust":
         raise BundleError(f"manifest: scaler.kind {scaler.get('kind')!r} unknown (expected 'robust')")
     for k in ("center", "scale"):
         vals = scaler.get(k)
-        if not isinstance(vals, list) or len(vals) != len(channels) or not all(
-            _is_number(v) for v in vals
-        ):
+        if not isinstance(vals, list) or len(vals) != n or not all(_is_number(v) for v in vals):
             raise BundleError(
-                f"manifest: scaler.{k} must be a list of {len(channels)} numbers (one per channel)"
+                f"manifest: scaler.{k} must be a list of {n} numbers (one per channel)"
             )
     if any(not (v > 0) for v in scaler["scale"]):
         raise BundleError("manifest: scaler.scale must be strictly positive")
-    features = channel_features(manifest)
-    if not isinstance(features, list) or len(features) != len(channels) or not all(
+    features = scaler.get("features")
+    if not isinstance(features, list) or len(features) != n or not all(
         f in FEATURE_KINDS for f in features
     ):
         raise BundleError(
-            f"manifest: scaler.features must list {len(channels)} of {', '.join(FEATURE_KINDS)} "
+            f"manifest: scaler.features must list {n} of {', '.join(FEATURE_KINDS)} "
             "(one per channel)"
         )
 
-    net = manifest["network"]
+
+def _check_network(net: dict) -> None:
     for key, types in _NETWORK_KEYS.items():
         if key not in net:
             raise BundleError(f"manifest: network lacks {key!r}")
@@ -200,46 +234,117 @@ def validate_manifest(manifest: dict) -> None:
         if not net[part] or not all(isinstance(h, int) and h > 0 for h in net[part]):
             raise BundleError(f"manifest: network.{part} must be a non-empty list of sizes")
 
-    score = manifest["score"]
-    if score.get("combine") != "mean" or not isinstance(score.get("residual"), str):
-        raise BundleError("manifest: score must be {'residual': str, 'combine': 'mean'}")
-    if not isinstance(manifest["threshold"].get("kind"), str):
-        raise BundleError("manifest: threshold.kind must name a policy (static, rolling, pot)")
-    for k in _ALERTING_KEYS:
-        if k not in manifest["alerting"]:
-            raise BundleError(f"manifest: alerting lacks {k!r}")
-        if not _is_number(manifest["alerting"][k]):
-            raise BundleError(f"manifest: alerting.{k} must be a number")
+
+def _check_sections(manifest: dict) -> None:
+    """score, threshold and alerting are checked by building them, as the gateway will."""
+    for section, build in (("score", ScoreRule), ("threshold", make_threshold),
+                           ("alerting", lambda d: AlertMachine(**d))):
+        try:
+            build(manifest[section])
+        except (TypeError, ValueError) as exc:
+            raise BundleError(f"manifest: {section}: {exc}; re-pack the bundle") from None
     board = manifest["board"]
     if not isinstance(board.get("name"), str):
         raise BundleError("manifest: board.name must be a string")
     for k in ("budget", "estimate"):
         if not isinstance(board.get(k), dict):
             raise BundleError(f"manifest: board.{k} must be an object")
-    for rel, digest in manifest["files"].items():
-        p = PurePosixPath(rel)
-        if p.is_absolute() or ".." in p.parts or not isinstance(digest, str) or len(digest) != 64:
-            raise BundleError(f"manifest: files entry {rel!r} is not a safe relative path + sha256")
+    for k in REQUIRES:
+        if version_tuple(manifest["requires"].get(k)) is None:
+            raise BundleError(f"manifest: requires.{k} must be a version 'MAJOR.MINOR'")
 
 
-def channel_features(manifest: dict) -> list:
-    """scaler.features; a bundle packed before per-channel features watches every level."""
-    return manifest["scaler"].get("features", ["level"] * len(manifest["channels"]))
+def version_tuple(text) -> Optional[Tuple[int, int]]:
+    """'3.9' or '1.19.5' -> (3, 9) / (1, 19); None when it is not a version."""
+    try:
+        major, minor = str(text).split(".")[:2]
+        return int(major), int(minor)
+    except ValueError:
+        return None
+
+
+def unmet_requirements(manifest: dict) -> List[str]:
+    """What this interpreter lacks of the bundle's `requires` (empty when it can run it)."""
+    here = {"python": "{}.{}".format(*sys.version_info[:2]), "numpy": np.__version__}
+    return [f"{k} {here[k]} is older than the bundle needs ({v})"
+            for k, v in manifest["requires"].items()
+            if k in here and version_tuple(here[k]) < version_tuple(v)]
+
+
+def build_manifest(
+    *,
+    name: str,
+    time_column: str,
+    channels: Sequence[Tuple[str, str]],
+    period_s: float,
+    max_gap_periods: int,
+    scaler: dict,
+    window: int,
+    hop: int,
+    network: dict,
+    score: dict,
+    threshold: dict,
+    alerting: dict,
+    board: dict,
+    tool_version: str,
+    parity_tolerances: Optional[dict] = None,
+    created: Optional[str] = None,
+) -> dict:
+    """Every manifest is made here: the caller gives what varies, this fills the constants of
+    the contract (schema, file names, quantisation, opset, tolerances, requirements).
+    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit)."""
+    return {
+        "schema_version": SCHEMA_VERSION,
+        "tool_version": tool_version,
+        "created": created or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "name": name,
+        "time_column": time_column,
+        "channels": [{"name": n, "unit": u} for n, u in channels],
+        "period_s": float(period_s),
+        "max_gap_periods": int(max_gap_periods),
+        "scaler": dict(scaler),
+        "window": int(window),
+        "hop": int(hop),
+        "network": {"encoder": [int(h) for h in network["encoder"]],
+                    "latent": int(network["latent"]),
+                    "generator": [int(h) for h in network["generator"]],
+                    "weights": WEIGHTS_NAME, "onnx": ONNX_NAME, "quantisation": QUANTISATION,
+                    "onnx_opset": ONNX_OPSET},
+        "score": dict(score),
+        "threshold": dict(threshold),
+        "alerting": dict(alerting),
+        "board": dict(board),
+        "parity": {"tolerances": {**PARITY_TOLERANCES, **(parity_tolerances or {})}},
+        "requires": dict(REQUIRES),
+    }
 
 
 def sign_bytes(key: bytes, data: bytes) -> str:
     return hmac.new(key, data, hashlib.sha256).hexdigest()
 
 
+def read_key(path) -> bytes:
+    """A signing key file: its bytes without surrounding whitespace (a trailing newline).
+    Shared by the workstation (signing) and the gateway (checking): one rule for both."""
+    key = Path(path).read_bytes().strip()
+    if len(key) < MIN_KEY_BYTES:
+        raise BundleError(f"{path}: the key holds {len(key)} bytes; use at least "
+                          f"{MIN_KEY_BYTES} random bytes (head -c 32 /dev/urandom | base64 > KEY)")
+    return key
+
+
+MIN_KEY_BYTES = 16
+
+
 def write_manifest(bundle_dir, manifest: dict, sign_key: Optional[bytes] = None) -> Path:
-    """Fill manifest['files'] from the folder, validate, write manifest.json (+ manifest.sig)."""
+    """Fill manifest['files'] from the folder, validate, write manifest.json (+ manifest.hmac)."""
     bundle_dir = Path(bundle_dir)
     manifest["files"] = {rel: file_sha256(bundle_dir / rel) for rel in _bundle_files(bundle_dir)}
     validate_manifest(manifest)
     path = bundle_dir / MANIFEST_NAME
     data = (json.dumps(manifest, sort_keys=True, indent=2) + "\n").encode("utf-8")
     path.write_bytes(data)
-    sig_path = bundle_dir / SIGNATURE_NAME
+    sig_path = bundle_dir / HMAC_NAME
     if sign_key is not None:
         sig_path.write_text(sign_bytes(sign_key, data) + "\n")
     elif sig_path.exists():
@@ -264,7 +369,7 @@ class Bundle:
         self.hop = int(manifest["hop"])
         self.center = np.asarray(manifest["scaler"]["center"], dtype=np.float32)
         self.scale = np.asarray(manifest["scaler"]["scale"], dtype=np.float32)
-        self.features = list(channel_features(manifest))
+        self.features = list(manifest["scaler"]["features"])
         self.rate = rate_mask(self.features)  # per sample on the gateway: computed once here
         self.threshold_policy = dict(manifest["threshold"])
         self.alerting = dict(manifest["alerting"])
@@ -307,28 +412,11 @@ class Bundle:
         }
 
 
-def _expected_shapes(manifest: dict) -> Dict[str, tuple]:
-    """Weight shapes implied by the manifest (ONNX LSTM layout, see DEVELOPERS.md)."""
-    net = manifest["network"]
-    n_ch = len(manifest["channels"])
-    shapes = {}
-    for prefix, sizes, n_in, n_out in (
-        ("enc", net["encoder"], n_ch, net["latent"]),
-        ("gen", net["generator"], net["latent"], n_ch),
-    ):
-        prev = n_in
-        for k, h in enumerate(sizes):
-            shapes[f"{prefix}.lstm{k}.W"] = (1, 4 * h, prev)
-            shapes[f"{prefix}.lstm{k}.R"] = (1, 4 * h, h)
-            shapes[f"{prefix}.lstm{k}.B"] = (1, 8 * h)
-            prev = h
-        shapes[f"{prefix}.head.W"] = (n_out, prev)
-        shapes[f"{prefix}.head.b"] = (n_out,)
-    return shapes
-
-
 def check_weight_shapes(manifest: dict, weights: Dict[str, np.ndarray]) -> None:
-    expected = _expected_shapes(manifest)
+    """The weights must be the network the manifest describes (lstm.contract_shapes)."""
+    net = manifest["network"]
+    expected = contract_shapes(len(manifest["channels"]), net["encoder"], net["latent"],
+                               net["generator"])
     missing = sorted(set(expected) - set(weights))
     if missing:
         raise BundleError(
@@ -342,6 +430,9 @@ def check_weight_shapes(manifest: dict, weights: Dict[str, np.ndarray]) -> None:
                 f"weights: {key} has shape {got}, the manifest implies {shape} "
                 f"({len(manifest['channels'])} channels); re-pack the bundle"
             )
+    extra = sorted(set(weights) - set(expected))
+    if extra:
+        raise BundleError(f"weights: unexpected array(s) {', '.join(extra)}; re-pack the bundle")
 
 
 def load_bundle(
@@ -371,14 +462,14 @@ def load_bundle(
                 "the gateway runtime"
             )
 
-    sig_path = bundle_dir / SIGNATURE_NAME
+    sig_path = bundle_dir / HMAC_NAME
     signed = sig_path.is_file()
     if require_signature and key is None:
         raise BundleError("a signature is required but no key was given; pass --key FILE")
     if key is not None:
         if not signed:
             raise BundleError(
-                f"{bundle_dir}: a key was given but the bundle has no manifest.sig; "
+                f"{bundle_dir}: a key was given but the bundle has no manifest.hmac; "
                 "re-pack it with the signing key"
             )
         expected = sign_bytes(key, raw)
@@ -412,6 +503,10 @@ def load_bundle(
                 "(only packed code may run from a bundle)"
             )
 
+    unmet = unmet_requirements(manifest)
+    if unmet:
+        raise BundleError(f"this gateway cannot run the bundle: {'; '.join(unmet)}; upgrade it "
+                          "or compile for a board profile that matches it")
     bundle = Bundle(bundle_dir, manifest, raw, signed)
     if not bundle.weights_path.is_file():
         raise BundleError(f"{bundle.weights_path}: weights file missing; copy the bundle again")

@@ -1,20 +1,15 @@
-"""Scoring backends: the same score from the numpy LSTM or from onnxruntime on model.onnx.
+"""Network backends: per-channel residuals from the numpy LSTM or from onnxruntime.
 
-Both take scaled float32 windows [N, L, C] and return (scores [N], residuals [N, C]). The score
-is always score_from_residuals(residuals) (mean over channels), computed here in numpy for both
-backends, so the two can only differ by the network arithmetic itself.
+Both take scaled float32 windows [N, L, C] and return residuals [N, C]; score.py turns them into
+the score for both, so the two backends can only differ by the network arithmetic itself.
 """
-
-from typing import Tuple
 
 import numpy as np
 
-from .lstm import Network, score_from_residuals
-from .manifest import BundleError
+from .lstm import Network
+from .manifest import ONNX_INPUT, ONNX_RESIDUALS, BundleError
 
 BACKENDS = ("auto", "numpy", "onnxruntime")
-ONNX_INPUT = "window"  # names fixed by the bundle's model.onnx (compile/export.py)
-ONNX_RESIDUALS = "residuals"
 
 
 def _as_windows(windows, n_channels: int) -> np.ndarray:
@@ -24,16 +19,17 @@ def _as_windows(windows, n_channels: int) -> np.ndarray:
     return w
 
 
-class NumpyScorer:
-    name = "numpy"
+class NetworkScorer:
+    """The numpy LSTM on a float32 weight dict: the bundle's own (dequantised int8), or another
+    network of the same contract (the workstation's fp32 student, in `ganlet verify`)."""
 
-    def __init__(self, bundle):
-        self.n_channels = len(bundle.channels)
-        self.network = Network(bundle.weights)
+    def __init__(self, weights, name: str = "numpy"):
+        self.name = name
+        self.network = Network(weights)
+        self.n_channels = self.network.n_channels
 
-    def score_windows(self, windows) -> Tuple[np.ndarray, np.ndarray]:
-        _, residuals = self.network.forward(_as_windows(windows, self.n_channels))
-        return score_from_residuals(residuals), residuals
+    def residuals(self, windows) -> np.ndarray:
+        return self.network.forward(_as_windows(windows, self.n_channels))[1]
 
 
 class OnnxRuntimeScorer:
@@ -58,11 +54,10 @@ class OnnxRuntimeScorer:
                 f"{ONNX_RESIDUALS!r}, found inputs {inputs} outputs {outputs}; re-pack the bundle"
             )
 
-    def score_windows(self, windows) -> Tuple[np.ndarray, np.ndarray]:
+    def residuals(self, windows) -> np.ndarray:
         w = _as_windows(windows, self.n_channels)
         (residuals,) = self.session.run([ONNX_RESIDUALS], {ONNX_INPUT: w})
-        residuals = np.asarray(residuals, dtype=np.float32)
-        return score_from_residuals(residuals), residuals
+        return np.asarray(residuals, dtype=np.float32)
 
 
 def onnxruntime_available() -> bool:
@@ -87,7 +82,7 @@ def make_scorer(bundle, backend: str = "auto"):
     if backend == "auto":
         backend = "onnxruntime" if "onnxruntime" in available_backends(bundle) else "numpy"
     if backend == "numpy":
-        return NumpyScorer(bundle)
+        return NetworkScorer(bundle.weights)
     if not onnxruntime_available():
         raise BundleError(
             "backend 'onnxruntime' was asked for but the onnxruntime package cannot be imported "

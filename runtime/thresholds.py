@@ -366,6 +366,7 @@ class PotThreshold:
 # ---------------------------------------------------------------- factory and calibration
 
 _KINDS = {c.kind: c for c in (StaticThreshold, RollingRobustThreshold, PotThreshold)}
+KINDS = tuple(_KINDS)  # "static", "rolling", "pot"
 
 
 def _check_kind(cls, d: Dict[str, Any]) -> None:

@@ -7,7 +7,7 @@ DequantizeLinear operator with zero point 0. Row axis: 1 for LSTM W / R ([1, 4H,
 """
 
 import os
-from typing import Dict, Union
+from typing import Dict, Optional, Union
 
 import numpy as np
 
@@ -35,13 +35,16 @@ def dequantise(q: np.ndarray, scale: np.ndarray, axis: int) -> np.ndarray:
     return (q.astype(np.float32) * s).astype(np.float32, copy=False)
 
 
-def _row_axis(key: str, ndim: int) -> int:
-    """Row axis of a quantised matrix: [1, 4H, *] LSTM W/R -> 1, [out, in] head.W -> 0."""
-    if ndim == 3 and (key.endswith(".W") or key.endswith(".R")):
-        return 1
-    if ndim == 2 and key.endswith("head.W"):
+def row_axis(key: str) -> Optional[int]:
+    """The axis that holds one int8 scale per row for a contract key: 1 for an LSTM W / R
+    ([1, 4H, *]), 0 for a head.W ([out, in]); None for a key that stays float32 (biases)."""
+    if key.endswith(".head.W"):
         return 0
-    raise ValueError(f"{key!r} has a scale but is neither an LSTM W/R [1, 4H, *] nor a head.W")
+    if ".lstm" in key and (key.endswith(".W") or key.endswith(".R")):
+        return 1
+    if key.endswith(".B") or key.endswith(".head.b"):
+        return None
+    raise ValueError(f"key {key!r} is not part of the network contract (see DEVELOPERS.md)")
 
 
 def load_weights(path: Union[str, os.PathLike]) -> Dict[str, np.ndarray]:
@@ -65,22 +68,12 @@ def dequantise_dict(raw: Dict[str, np.ndarray], where: str = "") -> Dict[str, np
         if scale_key in raw:
             if value.dtype != np.int8:
                 raise ValueError(f"{where}{key!r} has a scale but is {value.dtype}, not int8")
-            out[key] = dequantise(value, raw[scale_key], _row_axis(key, value.ndim))
+            axis = row_axis(key)
+            if axis is None:
+                raise ValueError(f"{where}{key!r} has a scale but is a bias; biases stay float32")
+            out[key] = dequantise(value, raw[scale_key], axis)
         else:
             if value.dtype.kind not in "fiu":
                 raise ValueError(f"{where}{key!r} is {value.dtype}, expected numbers")
             out[key] = value.astype(np.float32)
     return out
-
-
-def weights_nbytes(path_or_dict: Union[str, os.PathLike, Dict[str, np.ndarray]]) -> int:
-    """Bytes of the weight arrays.
-
-    For a dict: the sum of its arrays' nbytes (e.g. RAM of load_weights' float32 result).
-    For a path: the arrays as stored in the npz (int8 matrices + scales + biases), without the
-    zip container's overhead; use os.path.getsize for the file size on flash.
-    """
-    if isinstance(path_or_dict, dict):
-        return int(sum(np.asarray(v).nbytes for v in path_or_dict.values()))
-    with np.load(path_or_dict, allow_pickle=False) as npz:
-        return int(sum(npz[k].nbytes for k in npz.files))

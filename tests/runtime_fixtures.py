@@ -14,8 +14,9 @@ import numpy as np
 
 from ganlet.runtime.entry import RUN_PY
 from ganlet.runtime.intake import format_time
-from ganlet.runtime.lstm import Network, score_from_residuals
-from ganlet.runtime.manifest import SCHEMA_VERSION, write_manifest
+from ganlet.runtime.lstm import Network
+from ganlet.runtime.manifest import build_manifest, write_manifest
+from ganlet.runtime.score import ScoreRule, score_section
 from ganlet.runtime.weights import load_weights
 
 RUNTIME_DIR = Path(__file__).resolve().parent.parent / "runtime"
@@ -95,7 +96,7 @@ def direct_scores(bundle_dir, x_scaled: np.ndarray, window: int, hop: int) -> np
     """Scores computed here, straight from Network.forward on the bundle's own weights."""
     net = Network(load_weights(Path(bundle_dir) / "weights.npz"))
     _, res = net.forward(windows_of(x_scaled, window, hop))
-    return score_from_residuals(res)
+    return ScoreRule(score_section()).apply(res)[0]
 
 
 def build_bundle(
@@ -114,7 +115,7 @@ def build_bundle(
     center: Sequence[float] = CENTER,
 ) -> Path:
     """A complete bundle folder. threshold=None -> static level from calibrate_on's scores.
-    features=None writes no scaler.features (a bundle from before rate channels: all level)."""
+    features=None watches every channel's level."""
     from ganlet.compile.quantise import quantise_weights  # numpy only
 
     bundle_dir = Path(bundle_dir)
@@ -138,33 +139,21 @@ def build_bundle(
         base = calibrate_on if calibrate_on is not None else raw_values(600, seed=99)
         s = direct_scores(bundle_dir, scaled(base), window, hop)
         threshold = {"kind": "static", "level": float(np.quantile(s, 0.99) * 1.5)}
-    manifest = {
-        "schema_version": SCHEMA_VERSION,
-        "tool_version": "0.1.0-test",
-        "created": "2024-01-01T00:00:00Z",
-        "name": "fixture-pump",
-        "time_column": "time",
-        "channels": [{"name": n, "unit": u} for n, u in CHANNELS],
-        "period_s": period_s,
-        "max_gap_periods": max_gap_periods,
-        "scaler": {"kind": "robust", "center": list(center), "scale": list(SCALE),
-                   **({"features": list(features)} if features is not None else {})},
-        "window": window,
-        "hop": hop,
-        "network": {"encoder": [8], "latent": 3, "generator": [8], "weights": "weights.npz",
-                    "onnx": "model.onnx", "quantisation": "int8-symmetric-per-channel",
-                    "onnx_opset": 20},
-        "score": {"residual": "mean_t squared error per channel", "combine": "mean"},
-        "threshold": threshold,
-        "alerting": alerting or {"warmup_hops": 2, "min_hops": 2, "close_ratio": 0.8,
-                                 "cooldown_hops": 2},
-        "board": {"name": "test-board",  # key names as compile/pack.py writes them
-                  "budget": {"hop_ms": 50.0, "ram_mb": 256, "storage_kb": 150,
-                             "onnxruntime": False},
-                  "estimate": {"hop_ms": 1.0, "ram_mb": 1.0, "flops_per_hop": 1}},
-        "parity": {"tolerances": {"score_rel": 1e-5}},
-    }
-    if not onnx_model:
-        manifest["network"]["onnx"] = "model.onnx"  # named but absent: numpy backend only
+    manifest = build_manifest(
+        name="fixture-pump", time_column="time", channels=CHANNELS, period_s=period_s,
+        max_gap_periods=max_gap_periods,
+        scaler={"kind": "robust", "center": list(center), "scale": list(SCALE),
+                "features": list(features or ["level"] * len(CHANNELS))},
+        window=window, hop=hop, network={"encoder": [8], "latent": 3, "generator": [8]},
+        score=score_section(), threshold=threshold,
+        alerting=alerting or {"warmup_hops": 2, "min_hops": 2, "close_ratio": 0.8,
+                              "cooldown_hops": 2},
+        board={"name": "test-board",  # key names as compile/pack.py writes them
+               "budget": {"hop_ms": 50.0, "ram_mb": 256, "storage_kb": 150,
+                          "onnxruntime": False},
+               "estimate": {"hop_ms": 1.0, "ram_mb": 1.0, "flops_per_hop": 1}},
+        tool_version="0.1.0-test", created="2024-01-01T00:00:00Z",
+        parity_tolerances={"score_rel": 1e-5},
+    )
     write_manifest(bundle_dir, manifest, sign_key=sign_key)
     return bundle_dir

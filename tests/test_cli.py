@@ -19,7 +19,7 @@ from typer.testing import CliRunner
 
 from ganlet.compile.cli import app
 from ganlet.compile.data import RobustScaler
-from ganlet.compile.model import Detector, DetectorConfig
+from ganlet.compile.model import Teacher, TeacherConfig
 from ganlet.compile.train import load_model
 
 pytestmark = pytest.mark.usefixtures("one_torch_thread")
@@ -138,9 +138,9 @@ def test_train_writes_the_model_directory(tmp_path, write_csv, config_file):
     for name in ("generator.pt", "encoder.pt", "discriminator.pt", "config.json", "scaler.json",
                  "data_summary.json", "history.json", "training.png", "model.json", "series.npz"):
         assert (out / name).is_file(), name
-    config = DetectorConfig.from_json(json.loads((out / "config.json").read_text()))
+    config = TeacherConfig.from_json(json.loads((out / "config.json").read_text()))
     assert config.window == 8 and config.adversarial_epochs == 2
-    fresh = Detector.build(3, config)
+    fresh = Teacher.build(3, config)
     for part in ("generator", "encoder", "discriminator"):
         state = torch.load(out / f"{part}.pt", weights_only=True)
         expected = getattr(fresh, part).state_dict()

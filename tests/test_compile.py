@@ -28,18 +28,19 @@ from typer.testing import CliRunner
 import ganlet.runtime as runtime_pkg
 from ganlet.compile import __version__
 from ganlet.compile.boards import DEFAULT_BOARD, load_board
+from ganlet.compile.calibrate import agreement, network_scores
 from ganlet.compile.cli import app
 from ganlet.compile.data import IntakeOptions, load_frame, split_spans
-from ganlet.compile.distil import DistilConfig, agreement, calibration_windows, distil
-from ganlet.compile.distil import teacher_vs_student as distil_teacher_vs_student
-from ganlet.compile.model import DetectorConfig
+from ganlet.compile.distil import DistilConfig, distil
+from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import STUDENTS_DIR, student_file
 from ganlet.compile.sizing import size_student
 from ganlet.compile.train import save_model, score_windows, train
-from ganlet.runtime.lstm import Network, score_from_residuals
+from ganlet.runtime.lstm import Network
 from ganlet.runtime.manifest import SCHEMA_VERSION
 from ganlet.runtime.weights import load_weights
 
-TINY = DetectorConfig(window=16, adversarial_epochs=2, inversion_epochs=5, encoder_hidden=(16,),
+TINY = TeacherConfig(window=16, adversarial_epochs=2, inversion_epochs=5, encoder_hidden=(16,),
                       generator_hidden=(8, 16), discriminator_hidden=8, max_train_windows=400)
 KEY = b"0123456789abcdef-test-signing-key"
 # Teacher-vs-student Spearman bar on the calibration span. An untrained student already ranks
@@ -74,8 +75,12 @@ def bundle(teacher):
                                       "--distil-epochs", "3"])
     assert result.exit_code == 0, result.output
     manifest_bytes = (out / "manifest.json").read_bytes()
+    bundle_id = hashlib.sha256(manifest_bytes).hexdigest()
+    record = teacher["model_dir"] / STUDENTS_DIR / f"{bundle_id[:16]}.json"
     return {"dir": out, "key_file": key_file, "stdout": result.stdout, "started": started,
-            "manifest": json.loads(manifest_bytes), "manifest_bytes": manifest_bytes}
+            "manifest": json.loads(manifest_bytes), "manifest_bytes": manifest_bytes,
+            "fp32": student_file(teacher["model_dir"], bundle_id),
+            "report": json.loads(record.read_text())["report"]}
 
 
 def bundle_files(folder):
@@ -114,14 +119,12 @@ def test_agreement_matches_scipy_pandas_and_numpy():
 
 def test_distilled_student_agrees_with_teacher_and_an_untrained_one_does_not(teacher, bundle):
     model = teacher["model"]
-    m = bundle["manifest"]
-    x, _ = calibration_windows(model)
+    x = model.windows_of(model.spans.calibration)
     assert len(x) > 100
-    teacher_scores, _ = score_windows(model.detector, x)
+    teacher_scores, _ = score_windows(model.teacher, x)
     # The distilled student: the fp32 weights `ganlet compile` kept beside the teacher.
-    fp32 = dict(np.load(m["teacher"]["student_weights"], allow_pickle=False))
-    _, res = Network(fp32).forward(x)
-    student_scores = score_from_residuals(res)
+    fp32 = dict(np.load(bundle["fp32"], allow_pickle=False))
+    student_scores = network_scores(fp32, x)
     ours = agreement(teacher_scores, student_scores)
     # reference: scipy.stats.spearmanr and numpy on the same arrays
     assert ours["spearman"] == pytest.approx(spearmanr(teacher_scores, student_scores).statistic,
@@ -129,16 +132,17 @@ def test_distilled_student_agrees_with_teacher_and_an_untrained_one_does_not(tea
     assert ours["max_abs_error"] == pytest.approx(
         np.max(np.abs(student_scores.astype(np.float64) - teacher_scores)), rel=1e-9)
     # the figure the compile reported (torch student) is the one we recompute (numpy student)
-    reported = m["teacher"]["agreement"]
+    reported = bundle["report"]["teacher_vs_student"]
     assert reported["n"] == len(x)
     assert abs(reported["spearman"] - ours["spearman"]) < 1e-3
     assert f"Spearman {reported['spearman']:.4f}" in bundle["stdout"]
 
     # An untrained student of the same plan: distil with zero epochs.
     plan = size_student(load_board(DEFAULT_BOARD), len(model.channels),
-                        model.detector.config.latent, model.detector.config.window,
+                        model.teacher.config.latent, model.teacher.config.window,
                         model.period_s)
-    untrained = distil_teacher_vs_student(model, distil(model, plan, DistilConfig(epochs=0)))
+    untrained = agreement(teacher_scores, network_scores(
+        distil(model, plan, DistilConfig(epochs=0)).weights(), x))
     print(f"\nteacher vs student on the calibration span: distilled Spearman "
           f"{ours['spearman']:.5f} (median rel error {ours['median_rel_error']:.3g}), untrained "
           f"{untrained['spearman']:.5f} (median rel error {untrained['median_rel_error']:.3g})")
@@ -148,11 +152,11 @@ def test_distilled_student_agrees_with_teacher_and_an_untrained_one_does_not(tea
 
 
 def test_quantisation_effect_on_scores_is_reported_and_small(teacher, bundle):
-    x, _ = calibration_windows(teacher["model"])
-    fp32 = dict(np.load(bundle["manifest"]["teacher"]["student_weights"], allow_pickle=False))
-    fp32_scores = score_from_residuals(Network(fp32).forward(x)[1])
-    int8_scores = score_from_residuals(
-        Network(load_weights(bundle["dir"] / "weights.npz")).forward(x)[1])
+    model = teacher["model"]
+    x = model.windows_of(model.spans.calibration)
+    fp32 = dict(np.load(bundle["fp32"], allow_pickle=False))
+    fp32_scores = network_scores(fp32, x)
+    int8_scores = network_scores(load_weights(bundle["dir"] / "weights.npz"), x)
     q = agreement(fp32_scores, int8_scores)
     # reference: scipy.stats.spearmanr
     rho = spearmanr(fp32_scores, int8_scores).statistic
@@ -192,7 +196,7 @@ def test_manifest_describes_the_detector(teacher, bundle):
     np.testing.assert_allclose(m["scaler"]["scale"], (q75 - q25) / 1.349, rtol=1e-12)
     assert 1.349 == pytest.approx(norm.ppf(0.75) - norm.ppf(0.25), abs=1e-3)
     board = load_board(DEFAULT_BOARD)
-    plan = size_student(board, 3, model.detector.config.latent, TINY.window, 60.0)
+    plan = size_student(board, 3, model.teacher.config.latent, TINY.window, 60.0)
     assert m["window"] == TINY.window and m["hop"] == plan.hop
     assert m["network"]["encoder"] == list(plan.encoder_hidden)
     assert m["network"]["generator"] == list(plan.generator_hidden)
@@ -212,15 +216,15 @@ def test_manifest_describes_the_detector(teacher, bundle):
 def test_every_file_is_hashed_and_the_signature_is_hmac_sha256(bundle):
     folder, m = bundle["dir"], bundle["manifest"]
     present = bundle_files(folder)
-    assert {"manifest.json", "manifest.sig", "model.onnx", "weights.npz", "run.py",
+    assert {"manifest.json", "manifest.hmac", "model.onnx", "weights.npz", "run.py",
             "INSTALL.txt", "ganlet/__init__.py", "ganlet/runtime/lstm.py"} <= present
-    assert set(m["files"]) == present - {"manifest.json", "manifest.sig"}
+    assert set(m["files"]) == present - {"manifest.json", "manifest.hmac"}
     for rel, digest in m["files"].items():
         # reference: hashlib.sha256
         assert hashlib.sha256((folder / rel).read_bytes()).hexdigest() == digest, rel
     # reference: hmac (RFC 2104) with SHA-256 over the exact manifest bytes
     expected = hmac.new(KEY, bundle["manifest_bytes"], hashlib.sha256).hexdigest()
-    assert (folder / "manifest.sig").read_text().strip() == expected
+    assert (folder / "manifest.hmac").read_text().strip() == expected
 
 
 def test_flash_use_is_within_the_estimate_and_the_budget(bundle):
@@ -243,11 +247,10 @@ def test_runtime_copy_is_the_runtime_package(bundle):
 
 
 def test_weights_npz_is_int8_with_row_scales(bundle):
-    m = bundle["manifest"]
     # reference: numpy.load without pickles
     with np.load(bundle["dir"] / "weights.npz", allow_pickle=False) as npz:
         raw = {k: npz[k] for k in npz.files}
-    fp32 = dict(np.load(m["teacher"]["student_weights"], allow_pickle=False))
+    fp32 = dict(np.load(bundle["fp32"], allow_pickle=False))
     matrices = [k for k in fp32 if k.endswith((".W", ".R"))]
     assert set(raw) == set(fp32) | {k + ".scale" for k in matrices}
     for key in fp32:
@@ -272,8 +275,8 @@ def test_onnx_model_checks_and_matches_the_numpy_network(teacher, bundle):
     path = bundle["dir"] / "model.onnx"
     # reference: onnx.checker
     onnx.checker.check_model(onnx.load(path), full_check=True)
-    x, _ = calibration_windows(teacher["model"])
-    x = x[:200]
+    model = teacher["model"]
+    x = model.windows_of(model.spans.calibration)[:200]
     # reference: onnxruntime's LSTM / DequantizeLinear kernels
     session = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
     recon, res = session.run(["reconstruction", "residuals"], {"window": x})
@@ -321,12 +324,12 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
 @pytest.mark.parametrize("kind", ["file", "folder"])
 def test_out_that_is_not_a_bundle_is_refused_before_distillation(teacher, tmp_path, kind,
                                                                  monkeypatch):
-    import ganlet.compile.pack as pack
+    import ganlet.compile.pipeline as pipeline
 
     def no_distil(*_args, **_kwargs):
         raise AssertionError("distillation started before --out was checked")
 
-    monkeypatch.setattr(pack, "distil", no_distil)
+    monkeypatch.setattr(pipeline, "distil", no_distil)
     out = tmp_path / "out"
     if kind == "file":
         out.write_text("not a folder")

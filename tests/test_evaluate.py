@@ -19,16 +19,16 @@ from ganlet.compile.cli_reports import register
 from ganlet.compile.data import grid_index, load_frame, parse_times, split_spans
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.evaluate import BASELINES, evaluate, point_metrics, rolling_z
-from ganlet.compile.model import DetectorConfig
-from ganlet.compile.pack import CompileOptions, compile_model
+from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import CompileOptions, compile_model
 from ganlet.compile.train import save_model, train
 
 REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab" / "valve1"
-TINY = DetectorConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
+TINY = TeacherConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
                       generator_hidden=(6, 8), latent=2, max_train_windows=400)
 # The small, fast configuration for SKAB (one file trains in seconds on one core).
-SKAB_CONFIG = DetectorConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
+SKAB_CONFIG = TeacherConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
                              encoder_hidden=(32,), generator_hidden=(16, 32), latent=4)
 # The SKAB calibration span is 80 rows (~65 scores): too few for a peaks-over-threshold fit,
 # and the rolling policy absorbs the long valve anomalies into its own median and stops
@@ -99,6 +99,7 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
     register(app)
     r = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(synthetic["data"]),
                                  "--incidents", str(synthetic["incidents"]), "--from", "500",
+                                 "--model", str(synthetic["model"]),
                                  "--html", str(tmp_path / "e.html"),
                                  "--json", str(tmp_path / "e.json")])
     assert r.exit_code == 0, r.output
@@ -154,7 +155,8 @@ def skab(tmp_path_factory):
         mask[test_rows] = True
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            r = evaluate(root / f.stem / "bundle", f, incidents, eval_mask=mask)
+            r = evaluate(root / f.stem / "bundle", f, incidents, eval_mask=mask,
+                         model_dir=root / f.stem / "model")
         for m in r.methods.values():
             y, p = pooled.setdefault(m.name, ([], []))
             y.append(labels[400:])                       # the benchmark's own row labels

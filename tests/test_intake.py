@@ -21,7 +21,7 @@ from ganlet.compile.data import (
     split_spans,
     windows_from,
 )
-from ganlet.compile.model import DetectorConfig
+from ganlet.compile.model import TeacherConfig
 from ganlet.compile.train import train
 
 CHANNELS = ["flow", "power", "temp"]
@@ -325,11 +325,11 @@ def test_scaler_and_weights_see_the_fit_span_only(write_csv):
     changed = df.copy()
     changed.loc[320:, CHANNELS] = changed.loc[320:, CHANNELS] * 10 + 7
     frame_b = load_frame(write_csv(changed, "b.csv"))
-    cfg = DetectorConfig(window=16, encoder_hidden=(4,), generator_hidden=(4,),
+    cfg = TeacherConfig(window=16, encoder_hidden=(4,), generator_hidden=(4,),
                          discriminator_hidden=4, adversarial_epochs=1, inversion_epochs=1)
     a, b = train(frame, spans, cfg), train(frame_b, spans, cfg)
     assert a.scaler == b.scaler
-    sa, sb = a.detector.encoder.state_dict(), b.detector.encoder.state_dict()
+    sa, sb = a.teacher.encoder.state_dict(), b.teacher.encoder.state_dict()
     assert all(np.array_equal(sa[k].numpy(), sb[k].numpy()) for k in sa)
     inside = df.copy()
     inside.loc[:100, "flow"] += 3.0                      # a change inside the fit span does show

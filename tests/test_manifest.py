@@ -53,7 +53,7 @@ def test_round_trip(bundle_dir):
     # every file under the folder is listed (and nothing else), with its sha256
     on_disk = sorted(
         p.relative_to(bundle_dir).as_posix() for p in bundle_dir.rglob("*")
-        if p.is_file() and p.name not in ("manifest.json", "manifest.sig")
+        if p.is_file() and p.name not in ("manifest.json", "manifest.hmac")
         and "__pycache__" not in p.parts
     )
     assert sorted(m["files"]) == on_disk
@@ -94,7 +94,7 @@ def test_unlisted_python_file_refused(bundle_dir):
 def test_signature_good_wrong_key_and_required(bundle_dir):
     m = _manifest(bundle_dir)
     write_manifest(bundle_dir, m, sign_key=KEY)
-    sig = (bundle_dir / "manifest.sig").read_text().strip()
+    sig = (bundle_dir / "manifest.hmac").read_text().strip()
     # reference: hmac.new(key, msg, sha256) from the standard library, computed here
     expected = hmac.new(KEY, (bundle_dir / "manifest.json").read_bytes(), hashlib.sha256).hexdigest()
     assert sig == expected
@@ -110,8 +110,8 @@ def test_signature_good_wrong_key_and_required(bundle_dir):
 
 
 def test_unsigned_with_require_signature_refused(bundle_dir):
-    assert not (bundle_dir / "manifest.sig").exists()
-    with pytest.raises(BundleError, match="no manifest.sig"):
+    assert not (bundle_dir / "manifest.hmac").exists()
+    with pytest.raises(BundleError, match="no manifest.hmac"):
         load_bundle(bundle_dir, key=KEY, require_signature=True)
     with pytest.raises(BundleError, match="no key was given"):
         load_bundle(bundle_dir, require_signature=True)
@@ -165,6 +165,7 @@ def test_weight_shapes_checked_against_channels(bundle_dir):
     m["channels"].append({"name": "temperature", "unit": "degC"})
     m["scaler"]["center"].append(0.0)
     m["scaler"]["scale"].append(1.0)
+    m["scaler"]["features"].append("level")
     write_manifest(bundle_dir, m)
     with pytest.raises(BundleError, match=r"enc\.lstm0\.W has shape \(1, 32, 3\).*\(1, 32, 4\)"):
         load_bundle(bundle_dir)
@@ -188,7 +189,7 @@ def test_check_command(bundle_dir, tmp_path):
     assert ok.returncode == 0, ok.stderr
     summary = json.loads(ok.stdout)
     assert summary["verified"] is True and summary["signed"] is True
-    (tmp_path / "bad").write_bytes(b"nope")
+    (tmp_path / "bad").write_bytes(b"not-the-key-it-was-signed-with")
     bad = subprocess.run([sys.executable, str(bundle_dir / "run.py"), "check",
                           "--key", str(tmp_path / "bad")], capture_output=True, text=True)
     assert bad.returncode == 1 and "signature does not match" in bad.stderr

@@ -17,8 +17,8 @@ from typer.testing import CliRunner
 from ganlet.compile.cli import app
 from ganlet.compile.data import RobustScaler, load_frame, split_spans
 from ganlet.compile.distil import DistilConfig
-from ganlet.compile.model import DetectorConfig
-from ganlet.compile.pack import CompileOptions, compile_model
+from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import CompileOptions, compile_model
 from ganlet.compile.train import load_model, save_model, train
 from ganlet.compile.verify import verify
 from ganlet.runtime import features
@@ -120,7 +120,7 @@ def test_manifest_features(rate_bundle, tmp_path):
 # the workstation side
 
 
-TINY = DetectorConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
+TINY = TeacherConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
                       generator_hidden=(6, 8), latent=2, max_train_windows=400)
 
 
@@ -155,7 +155,7 @@ def test_train_rate_scaler_and_parity(tmp_path):
                   model_dir=model_dir)
     assert load_bundle(tmp_path / "bundle").features[j] == "rate"
     assert f"{col} (rate)" in (tmp_path / "bundle" / "INSTALL.txt").read_text()
-    result = verify(tmp_path / "bundle", data)
+    result = verify(tmp_path / "bundle", data, model_dir=model_dir)
     assert result.passed, result.summary()
     assert result.hops == 900 - TINY.window      # one fewer than levels: the rate's first row
 

@@ -14,17 +14,16 @@ from ganlet.compile.boards import DEFAULT_BOARD, list_boards, load_board
 from ganlet.compile.cli import app
 from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.layout import network_weights
-from ganlet.compile.model import DetectorConfig, LSTMStack
+from ganlet.compile.model import LSTMStack, TeacherConfig
 from ganlet.compile.sizing import LADDER, DoesNotFit, network_counts, plan_for, size_student
 from ganlet.compile.train import save_model, train
 from ganlet.runtime.lstm import Network
 
 # A board that holds everything; tests shrink one budget at a time.
 ROOMY = {
-    "name": "tiny", "description": "test board", "cpu_class": "test-cpu", "cores": 1,
+    "name": "tiny", "description": "test board", "cpu_class": "test-cpu",
     "mflops_single_core": 1000.0, "ram_budget_mb": 1024, "storage_budget_kb": 65536,
-    "onnxruntime": False, "python": "3.9", "numpy": "1.19", "sample_period_s": 10.0,
-    "compute_fraction": 0.5,
+    "onnxruntime": False, "python": "3.9", "numpy": "1.19", "compute_fraction": 0.5,
 }
 
 
@@ -50,12 +49,12 @@ def fits(plan, board) -> bool:
 
 
 @pytest.mark.parametrize("channels, window", [(3, 16), (3, 32), (8, 64)])
-def test_plan_respects_every_budget_of_every_shipped_board(channels, window):
+@pytest.mark.parametrize("period", [1.0, 10.0])
+def test_plan_respects_every_budget_of_every_shipped_board(channels, window, period):
     boards = list_boards()
     assert {b.name for b in boards} >= {"a53-512", "a72-2g", "x86-lowpower", "workstation"}
     latent = max(2, channels // 2)
     for board in boards:
-        period = board.sample_period_s
         plan = size_student(board, channels, latent, window, period)
         assert plan.board == board.name
         assert plan.storage_bytes <= board.storage_budget_kb * 1024
@@ -175,7 +174,7 @@ def untrained_model_dir(tmp_path_factory):
     csv = root / "data.csv"
     correlated_series(400).to_csv(csv, index=False)
     frame = load_frame(csv, IntakeOptions())
-    cfg = DetectorConfig(window=16, adversarial_epochs=0, inversion_epochs=0,
+    cfg = TeacherConfig(window=16, adversarial_epochs=0, inversion_epochs=0,
                          encoder_hidden=(8,), generator_hidden=(8,), discriminator_hidden=4)
     return save_model(train(frame, split_spans(frame, None, 0.2), cfg), root / "model")
 
@@ -196,8 +195,8 @@ def test_cli_refuses_a_board_that_cannot_hold_the_model(untrained_model_dir, tmp
     assert not (tmp_path / "X").exists()
 
 
-def test_cli_boards_lists_every_shipped_board_and_the_default():
-    result = CliRunner().invoke(app, ["boards"])
+def test_cli_budgets_lists_every_shipped_board_and_the_default():
+    result = CliRunner().invoke(app, ["budgets"])
     assert result.exit_code == 0, result.output
     for board in list_boards():
         assert board.name in result.output

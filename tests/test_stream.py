@@ -12,6 +12,7 @@ import runtime_fixtures as fx
 from ganlet.runtime.cli import main
 from ganlet.runtime.intake import REJECT_KINDS, format_time
 from ganlet.runtime.manifest import BundleError, load_bundle
+from ganlet.runtime.score import ScoreRule
 from ganlet.runtime.scorer import make_scorer
 
 WINDOW, HOP = 16, 4
@@ -183,8 +184,10 @@ def test_numpy_and_onnxruntime_agree(bundle_dir, tmp_path):
     # residuals per channel too, straight from the two scorers
     b = load_bundle(bundle_dir)
     w = fx.windows_of(fx.scaled(values), WINDOW, HOP)
-    s1, r1 = make_scorer(b, "numpy").score_windows(w)
-    s2, r2 = make_scorer(b, "onnxruntime").score_windows(w)
+    rule = ScoreRule(b.manifest["score"])
+    r1 = make_scorer(b, "numpy").residuals(w)
+    r2 = make_scorer(b, "onnxruntime").residuals(w)
+    (s1, _), (s2, _) = rule.apply(r1), rule.apply(r2)
     np.testing.assert_allclose(r2, r1, rtol=1e-5, atol=1e-7)
     np.testing.assert_allclose(s2, s1, rtol=1e-5)
 

@@ -12,18 +12,18 @@ from sklearn.metrics import roc_auc_score
 from synthetic import correlated_series, inject
 
 from ganlet.compile.data import IntakeOptions, choose_window, grid_index, load_frame, split_spans
-from ganlet.compile.model import DetectorConfig
+from ganlet.compile.model import TeacherConfig
 from ganlet.compile.train import scores_on, train
 
 pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
-TINY = DetectorConfig(window=16, encoder_hidden=(8,), generator_hidden=(8,),
+TINY = TeacherConfig(window=16, encoder_hidden=(8,), generator_hidden=(8,),
                       discriminator_hidden=8, adversarial_epochs=2, inversion_epochs=3,
                       max_train_windows=300)
 
 
 def _state(model) -> dict:
-    det = model.detector
+    det = model.teacher
     return {f"{part}.{k}": v for part in ("generator", "encoder", "discriminator")
             for k, v in getattr(det, part).state_dict().items()}
 
@@ -35,7 +35,7 @@ def _frame(write_csv, df, name="data.csv"):
 def test_same_seed_same_weights_and_scores_other_seed_differs(write_csv):
     frame = _frame(write_csv, correlated_series(500))
     spans = split_spans(frame, None, 0.2)
-    runs = [train(frame, spans, DetectorConfig(**{**TINY.to_json(), "seed": s}))
+    runs = [train(frame, spans, TeacherConfig(**{**TINY.to_json(), "seed": s}))
             for s in (3, 3, 4)]
     a, b, c = (_state(m) for m in runs)
     assert a.keys() == b.keys() == c.keys()
@@ -51,7 +51,7 @@ def test_synthetic_anomalies_separate_on_the_held_back_span(write_csv):
     frame = _frame(write_csv, df)
     spans = split_spans(frame, 2400, 0.2)
     assert spans.calibration == (1920, 2400) and spans.rest == (2400, 4000)
-    cfg = DetectorConfig(window=32, adversarial_epochs=10, inversion_epochs=60,
+    cfg = TeacherConfig(window=32, adversarial_epochs=10, inversion_epochs=60,
                          encoder_hidden=(32,), generator_hidden=(16, 32))
     model = train(frame, spans, cfg)
     scores, res = scores_on(model, frame.values, frame.segments())
@@ -71,7 +71,7 @@ def _normalised(scores: np.ndarray, train_scores: np.ndarray) -> np.ndarray:
 @pytest.mark.slow
 def test_skab_valve1_teacher_beats_isolation_forest(skab_dir):
     # SKAB's protocol: per file, the first 400 rows train (normal), the rest is the test span.
-    cfg = DetectorConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
+    cfg = TeacherConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
                          encoder_hidden=(32,), generator_hidden=(16, 32), latent=4)
     files = sorted((skab_dir / "valve1").glob("*.csv"), key=lambda p: int(p.stem))
     assert len(files) == 16
@@ -83,7 +83,7 @@ def test_skab_valve1_teacher_beats_isolation_forest(skab_dir):
         assert set(frame.report.excluded) == {"anomaly", "changepoint"}
         spans = split_spans(frame, raw["datetime"].iloc[399], 0.2)
         window = choose_window(frame, spans, cfg.window)
-        model = train(frame, spans, DetectorConfig(**{**cfg.to_json(), "window": window}))
+        model = train(frame, spans, TeacherConfig(**{**cfg.to_json(), "window": window}))
         scores, _ = scores_on(model, frame.values, frame.segments())
         rows = grid_index(frame, raw["datetime"])
         fit_rows, test_rows = rows[:400], rows[400:]
@@ -116,10 +116,10 @@ def test_small_history_trains_and_scores_every_full_window(write_csv):
     # common practice: 1,000 points is the small-data regime the default recipe must handle
     frame = _frame(write_csv, correlated_series(1000))
     spans = split_spans(frame, None, 0.2)
-    base = DetectorConfig(adversarial_epochs=2, inversion_epochs=3, max_train_windows=400)
+    base = TeacherConfig(adversarial_epochs=2, inversion_epochs=3, max_train_windows=400)
     window = choose_window(frame, spans, base.window)
     assert 8 <= window <= base.window
-    model = train(frame, spans, DetectorConfig(**{**base.to_json(), "window": window}))
+    model = train(frame, spans, TeacherConfig(**{**base.to_json(), "window": window}))
     scores, res = scores_on(model, frame.values, frame.segments())
     assert np.isnan(scores[:window - 1]).all()
     assert np.isfinite(scores[window - 1:]).all() and np.isfinite(res[window - 1:]).all()

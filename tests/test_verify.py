@@ -14,12 +14,13 @@ from typer.testing import CliRunner
 from ganlet.compile.cli_reports import register
 from ganlet.compile.data import load_frame, split_spans
 from ganlet.compile.distil import DistilConfig
-from ganlet.compile.model import DetectorConfig
-from ganlet.compile.pack import CompileOptions, compile_model
+from ganlet.compile.gateway import run_bundle
+from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import CompileOptions, compile_model
 from ganlet.compile.train import save_model, train
-from ganlet.compile.verify import hop_windows, run_gateway, verify
+from ganlet.compile.verify import verify
 
-TINY = DetectorConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
+TINY = TeacherConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
                       generator_hidden=(6, 8), latent=2, max_train_windows=400)
 
 
@@ -52,7 +53,7 @@ def cli():
 
 
 def test_parity_passes_and_reports(built, tmp_path):
-    result = verify(built["bundle"], built["data"])
+    result = verify(built["bundle"], built["data"], model_dir=built["model"])
     assert set(result.pairs) == {"onnxruntime", "numpy", "fp32 student", "teacher"}
     assert result.passed, result.summary()
     assert result.pairs["onnxruntime"]["strict"] and not result.pairs["teacher"]["strict"]
@@ -68,8 +69,7 @@ def test_parity_passes_and_reports(built, tmp_path):
     b = load_bundle(built["bundle"])
     frame = load_frame(built["data"])
     series = ((frame.values - b.center) / b.scale).astype(np.float32)
-    rows = np.arange(TINY.window - 1, 900)
-    windows, valid = hop_windows(series, rows, b.window)
+    windows = np.stack([series[r - b.window + 1:r + 1] for r in range(TINY.window - 1, 900)])
     (res,) = ReferenceEvaluator(str(b.onnx_path)).run(["residuals"], {"window": windows})
     np.testing.assert_allclose(result.series["onnxruntime"]["score"], res.mean(axis=1),
                                rtol=1e-4)
@@ -78,13 +78,14 @@ def test_parity_passes_and_reports(built, tmp_path):
     m = load_model(built["model"])
     with torch.no_grad():
         x = torch.from_numpy(windows)
-        ref = ((x - m.detector.reconstruct(x)) ** 2).mean(dim=(1, 2)).numpy()
+        ref = ((x - m.teacher.reconstruct(x)) ** 2).mean(dim=(1, 2)).numpy()
     np.testing.assert_allclose(result.series["teacher"]["score"], ref, rtol=1e-5)
 
 
 def test_cli_pass_json_html(built, tmp_path):
     out_json, out_html = tmp_path / "p.json", tmp_path / "p.html"
     r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--model", str(built["model"]),
                                    "--json", str(out_json), "--html", str(out_html)])
     assert r.exit_code == 0, r.output
     summary = json.loads(out_json.read_text())
@@ -95,7 +96,7 @@ def test_cli_pass_json_html(built, tmp_path):
 
 
 def test_tampered_device_capture_fails(built, tmp_path):
-    scores = run_gateway(built["bundle"], built["data"], tmp_path / "dev.csv")
+    scores = run_bundle(built["bundle"], built["data"], tmp_path / "dev").scores
     df = pd.read_csv(scores)
     k = len(df) // 2
     df.loc[k:k + 5, "score"] *= 1.01          # a device that drifted by 1 % for a few hops
@@ -114,15 +115,18 @@ def test_tampered_device_capture_fails(built, tmp_path):
     assert r.exit_code == 0, r.output
 
 
-def test_repeated_and_swapped_rows_are_left_out_of_score_figures(built, tmp_path):
+def test_repeated_and_swapped_rows_are_refused_alike_and_parity_holds(built, tmp_path):
     raw = pd.read_csv(built["data"])
     rows = pd.concat([raw.iloc[:300], raw.iloc[[299]], raw.iloc[300:]])   # a repeated row
     order = list(range(len(rows)))
     order[600], order[601] = order[601], order[600]                       # two rows swapped
     rows.iloc[order].to_csv(tmp_path / "messy.csv", index=False)
     result = verify(built["bundle"], tmp_path / "messy.csv")
-    assert result.excluded_hops > 0 and any("repaired" in n for n in result.notes)
+    # every series is the gateway's own detector on the same rows: the repeated and the
+    # out-of-order rows are refused for all of them, and the note says so
+    assert any("duplicate_time 1" in n and "out_of_order 1" in n for n in result.notes)
     assert result.pairs["numpy"]["checks"]["score_rel"], result.summary()
+    assert result.passed, result.summary()
 
 
 def test_unusable_input_exits_2(built, tmp_path):

@@ -1,0 +1,270 @@
+"""The detector: one validated row in, events out. No I/O of its own.
+
+Two layers, each usable alone:
+
+Judge.step(time, score, parts) -> events     one scored hop: threshold policy, alert machine,
+                                             the open alert's record (id, channel shares)
+Detector.feed(time, values) -> events        one input row: time order, gap filling, features,
+                                             scaling, the ring; every `hop` rows one window is
+                                             scored (network backend + score rule) and judged
+
+The gateway service (service.py) wraps a Detector with files, signals and checkpoints; the
+workstation's `ganlet verify` and `ganlet evaluate` replay rows or scores through the same
+classes, so what they judge is what the gateway does.
+
+Per row (Detector.feed):
+  - t == last time -> rejected "duplicate_time"; t < last time -> rejected "out_of_order";
+  - m missing periods with m <= max_gap_periods -> the m rows are filled by linear
+    interpolation in raw units; more -> the window is reset, a "gap" event is emitted and
+    scoring waits until the ring is full again;
+  - each channel's feature (its level, or its rate: features.py; a rate needs the row before,
+    so after a start or a gap the first row only primes it), scaled (f - center) / scale into
+    the ring; every `hop` new rows once the ring is full, exactly one window is scored.
+A rejected row raises RowError and changes nothing.
+
+Events are flat dicts {"event": NAME, ...} (events.py names them).
+"""
+
+import hashlib
+from collections import deque
+from typing import Dict, List, Optional, Sequence
+
+import numpy as np
+
+from . import features
+from .alerts import ALERTING_KEYS, CLOSED, OPENED, WARMED_UP, AlertMachine
+from .intake import RowError, format_time
+from .ring import Ring
+from .score import ScoreRule, shares
+from .thresholds import make_threshold, threshold_from_state
+
+# A scaled value this far out is a broken sensor or a unit error, not a measurement; the
+# limit also keeps the squared residual far from float32 overflow (~3.4e38).
+MAX_SCALED_ABS = 1e6
+TOP_CHANNELS = 3  # channels reported per alert
+COUNTERS = (
+    "lines",  # data lines read (after the header)
+    "blank_lines",
+    "samples",  # accepted input rows
+    "interpolated",  # samples filled in across short gaps
+    "gaps",  # long gaps that reset the window
+    "hops",  # windows scored
+    "alerts_opened",
+    "alerts_closed",
+)
+
+
+def finite_or_none(x) -> Optional[float]:
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+def alert_id(bundle_id: str, opened: str) -> str:
+    """Deterministic: the same bundle and the same start time give the same id on replay."""
+    return hashlib.sha256(f"{bundle_id}|{opened}".encode("ascii")).hexdigest()[:20]
+
+
+class Judge:
+    """One scored hop -> events: the threshold in force, the alert machine's step, and the
+    record of the open alert (its channels' shares accumulate over its hops)."""
+
+    def __init__(self, bundle_id: str, channels: Sequence[str], units: Sequence[str],
+                 policy: dict, alerting: dict):
+        self.bundle_id = bundle_id
+        self.channels = list(channels)
+        self.units = list(units)
+        self.threshold = make_threshold(dict(policy))
+        self.machine = AlertMachine(**{k: alerting[k] for k in ALERTING_KEYS})
+        # the last min_hops hops: an alert opens at the first of them (open_since_hop)
+        self.recent = deque(maxlen=self.machine.min_hops)  # (hop, time, parts)
+        self.alert = None  # type: Optional[dict]
+        self.level = float("nan")  # the threshold applied to the last hop
+
+    @property
+    def is_open(self) -> bool:
+        return self.machine.is_open
+
+    def step(self, t: float, score: float, parts: Optional[np.ndarray] = None) -> List[dict]:
+        parts = np.zeros(len(self.channels)) if parts is None else np.asarray(parts, np.float64)
+        self.level = float(self.threshold.update(score))
+        hop = self.machine.hop
+        transition = self.machine.step(score, self.level)
+        self.recent.append((hop, t, parts))
+        if self.alert is not None:  # an open alert (its closing hop included) collects parts
+            self._add(parts)
+        events = [{"event": "score", "time": format_time(t), "hop": hop,
+                   "score": finite_or_none(score), "threshold": finite_or_none(self.level),
+                   "alert_open": self.machine.is_open}]
+        if transition == WARMED_UP:
+            events.append({"event": "warmed_up", "time": format_time(t), "hop": hop})
+        elif transition == OPENED:
+            events.append(self._open())
+        elif transition == CLOSED:
+            events.append(self._alert_event("alert_closed", closed=format_time(t)))
+            self.alert = None
+        return events
+
+    def reset_run(self) -> None:
+        """After a long gap the hops before it no longer lead up to the hops after it."""
+        self.recent.clear()
+
+    def _add(self, parts: np.ndarray) -> None:
+        self.alert["parts_sum"] = [a + float(b) for a, b in zip(self.alert["parts_sum"], parts)]
+        self.alert["hops"] += 1
+
+    def _open(self) -> dict:
+        since = self.machine.open_since_hop
+        run = [(h, t, p) for h, t, p in self.recent if h >= since]
+        opened = format_time(run[0][1])
+        self.alert = {"alert_id": alert_id(self.bundle_id, opened), "opened": opened,
+                      "opened_hop": since, "threshold": self.level,
+                      "parts_sum": [0.0] * len(self.channels), "hops": 0}
+        for _, _, p in run:
+            self._add(p)
+        return self._alert_event("alert_opened", closed=None)
+
+    def _alert_event(self, name: str, closed: Optional[str]) -> dict:
+        a = self.alert
+        return {"event": name, "alert_id": a["alert_id"], "bundle_id": self.bundle_id,
+                "opened": a["opened"], "closed": closed,
+                "peak_score": finite_or_none(self.machine.peak_score),
+                "threshold": finite_or_none(a["threshold"]), "hops": a["hops"],
+                "channels": self._top_channels()}
+
+    def _top_channels(self) -> List[Dict]:
+        share = shares(self.alert["parts_sum"])
+        order = sorted(range(len(share)), key=lambda i: (-share[i], i))[:TOP_CHANNELS]
+        return [{"name": self.channels[i], "unit": self.units[i], "share": round(float(share[i]), 6)}
+                for i in order]
+
+    def state(self) -> dict:
+        return {"threshold": self.threshold.state(), "machine": self.machine.state(),
+                "recent": [[h, t, [float(v) for v in p]] for h, t, p in self.recent],
+                "alert": self.alert}
+
+    def restore(self, d: dict) -> None:
+        self.threshold = threshold_from_state(d["threshold"])
+        self.machine = AlertMachine.from_state(d["machine"])
+        self.recent = deque(
+            ((int(h), float(t), np.asarray(p, dtype=np.float64)) for h, t, p in d["recent"]),
+            maxlen=self.machine.min_hops,
+        )
+        self.alert = d["alert"]
+
+
+class Detector:
+    """Per-row state: time, last raw row, ring, counters, and the Judge of the scored hops."""
+
+    def __init__(self, bundle, scorer):
+        self.bundle = bundle
+        self.scorer = scorer
+        self.rule = ScoreRule(bundle.manifest["score"])
+        self.ring = Ring(bundle.window, len(bundle.channels))
+        self.judge = Judge(bundle.bundle_id, bundle.channels, bundle.units,
+                           bundle.threshold_policy, bundle.alerting)
+        self.counters = {k: 0 for k in COUNTERS}
+        self.errors = {}  # type: Dict[str, int]  # rejected rows by kind (the service counts)
+        self.last_time = None  # type: Optional[float]
+        self.last_raw = None  # type: Optional[np.ndarray]  # raw row at last_time
+
+    # ------------------------------------------------------------------ state
+    def state(self) -> dict:
+        return {
+            "ring": self.ring.state(),
+            "judge": self.judge.state(),
+            "counters": dict(self.counters),
+            "errors": dict(self.errors),
+            "last_time": self.last_time,
+            "last_raw": None if self.last_raw is None else [float(v) for v in self.last_raw],
+        }
+
+    def restore(self, d: dict) -> None:
+        self.ring = Ring.from_state(d["ring"])
+        self.judge.restore(d["judge"])
+        self.counters.update(d["counters"])
+        self.errors.update(d["errors"])
+        self.last_time = d["last_time"]
+        self.last_raw = None if d["last_raw"] is None else np.asarray(d["last_raw"], np.float64)
+
+    # ------------------------------------------------------------------ rows
+    def feed(self, t: float, values: Sequence[float]) -> List[dict]:
+        """One parsed row. Raises RowError for rows it refuses (nothing changes then)."""
+        self._check_order(t)
+        raw = np.asarray(values, dtype=np.float64)
+        grid, gap = self._grid_rows(t, raw)
+        rows = self._scaled_rows(grid, None if gap else self.last_raw)
+        # the row is accepted: from here on the state changes
+        events = []
+        self.counters["samples"] += 1
+        if gap:
+            self.counters["gaps"] += 1
+            events.append({
+                "event": "gap", "start": format_time(self.last_time), "end": format_time(t),
+                "missing_periods": gap, "max_gap_periods": self.bundle.max_gap_periods,
+                "action": "window_reset",
+                "samples_to_refill": self.bundle.window + int(self.bundle.rate.any()),
+            })
+            self.ring.reset()
+            self.judge.reset_run()
+        self.counters["interpolated"] += len(rows) - 1
+        for tk, x in rows:
+            if x is not None:
+                events += self._push(x, tk)
+        self.last_raw = raw
+        self.last_time = t
+        return events
+
+    def _check_order(self, t: float) -> None:
+        if self.last_time is None:
+            return
+        if t == self.last_time:
+            raise RowError("duplicate_time", f"time {format_time(t)} seen already")
+        if t < self.last_time:
+            raise RowError("out_of_order",
+                           f"time {format_time(t)} before {format_time(self.last_time)}")
+
+    def _grid_rows(self, t: float, raw: np.ndarray):
+        """(the grid rows this row stands for: filled-in ones, then itself; missing periods
+        when the gap is too long to fill, else 0)."""
+        if self.last_time is None:
+            return [(t, raw)], 0
+        steps = max(1, int(round((t - self.last_time) / self.bundle.period_s)))
+        missing = steps - 1
+        if missing > self.bundle.max_gap_periods:
+            return [(t, raw)], missing
+        previous = self.last_raw
+        # linear in raw units, as the workstation's intake fills short gaps
+        filled = [(self.last_time + (t - self.last_time) * k / steps,
+                   previous + (raw - previous) * (k / steps)) for k in range(1, steps)]
+        return filled + [(t, raw)], 0
+
+    def _scaled_rows(self, grid, previous):
+        """(time, scaled features or None while a rate channel has no previous row) per grid
+        row; RowError when a value is absurdly far out."""
+        rows = []
+        for tk, r in grid:
+            f = features.row(r, previous, self.bundle.rate)
+            previous = r
+            known = ~np.isnan(f)
+            x = self.bundle.scaled(f)
+            if not (np.abs(x[known]) <= MAX_SCALED_ABS).all():  # also float32 overflow (inf)
+                raise RowError(
+                    "out_of_range",
+                    f"a value is more than {MAX_SCALED_ABS:g} scale units from center",
+                )
+            rows.append((tk, x if known.all() else None))
+        return rows
+
+    def _push(self, row: np.ndarray, t: float) -> List[dict]:
+        self.ring.push(row)
+        extra = self.ring.filled - self.ring.size
+        if extra < 0 or extra % self.bundle.hop:
+            return []
+        residuals = self.scorer.residuals(self.ring.window()[None])
+        scores, parts = self.rule.apply(residuals)
+        self.counters["hops"] += 1
+        events = self.judge.step(t, float(scores[0]), parts[0])
+        for e in events:
+            if e["event"] in ("alert_opened", "alert_closed"):
+                self.counters["alerts_" + e["event"].split("_")[1]] += 1
+        return events
