@@ -86,9 +86,12 @@ class Judge:
 
     def step(self, t: float, score: float, parts: Optional[np.ndarray] = None) -> List[dict]:
         parts = np.zeros(len(self.channels)) if parts is None else np.asarray(parts, np.float64)
-        self.level = float(self.threshold.update(score))
+        self.level = float(self.threshold.level)
         hop = self.machine.hop
+        was_open = self.machine.is_open
         transition = self.machine.step(score, self.level)
+        if not was_open and not self.machine.is_open and score <= self.level:
+            self.threshold.absorb(score)  # only what it judged normal, never inside an alert
         self.recent.append((hop, t, parts))
         if self.alert is not None:  # an open alert (its closing hop included) collects parts
             self._add(parts)

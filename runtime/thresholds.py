@@ -2,9 +2,15 @@
 
 Three policies, one per-score contract (no batch assumption):
 
-    thr = policy.update(score)   # the threshold in force for THIS score, then the score is absorbed
     policy.level                 # the threshold in force for the next score
+    policy.absorb(score)         # learn from a score judged normal (a no-op for static)
+    thr = policy.update(score)   # the level in force for THIS score; the score is absorbed
+                                 # only if it does not exceed that level
     policy.state() / Cls.from_state(d)   # plain JSON (lists, floats, ints) for checkpoints
+
+A policy never learns from what it flags: a score above the level is not absorbed, and the
+gateway's Judge (detector.py) also withholds every score of a hop inside an open alert, so a
+long fault cannot raise the level it is judged against.
 
 - static:  a fixed level, calibrated as a quantile of calibration-span scores times a margin.
 - rolling: median + k * 1.4826 * MAD of the trailing `window` scores (the current score is not
@@ -66,10 +72,24 @@ def _finite_score(score: Any) -> Optional[float]:
     return s if math.isfinite(s) else None
 
 
+# ---------------------------------------------------------------- the shared update
+
+
+class _Policy:
+    """update = the level in force, then absorb the score unless it exceeds that level."""
+
+    def update(self, score: float) -> float:
+        thr = self.level
+        s = _finite_score(score)
+        if s is not None and s <= thr:
+            self.absorb(s)
+        return thr
+
+
 # ---------------------------------------------------------------- static
 
 
-class StaticThreshold:
+class StaticThreshold(_Policy):
     kind = "static"
     _required = ("level",)
     _optional: Tuple[str, ...] = ()
@@ -81,8 +101,8 @@ class StaticThreshold:
     def level(self) -> float:
         return self._level
 
-    def update(self, score: float) -> float:
-        return self._level
+    def absorb(self, score: float) -> None:
+        pass
 
     def state(self) -> Dict[str, Any]:
         return {"kind": self.kind, "level": self._level}
@@ -96,7 +116,7 @@ class StaticThreshold:
 # ---------------------------------------------------------------- rolling median / MAD
 
 
-class RollingRobustThreshold:
+class RollingRobustThreshold(_Policy):
     kind = "rolling"
     _required = ("level0", "window")
     _optional = ("k", "min_count", "floor")
@@ -127,13 +147,11 @@ class RollingRobustThreshold:
             self._level = max(value, self.floor)
         return self._level
 
-    def update(self, score: float) -> float:
-        thr = self.level
+    def absorb(self, score: float) -> None:
         s = _finite_score(score)
         if s is not None:
             self._buffer.append(s)
             self._level = None
-        return thr
 
     def state(self) -> Dict[str, Any]:
         return {
@@ -261,7 +279,7 @@ def pot_quantile(t: float, xi: float, sigma: float, q: float, n: int, n_peaks: i
     return float(t + sigma * math.expm1(-xi * log_r) / xi)
 
 
-class PotThreshold:
+class PotThreshold(_Policy):
     kind = "pot"
     _required = ("q", "t", "peaks", "n")
     _optional = ("max_peaks", "refit_every", "n_peaks")
@@ -315,11 +333,10 @@ class PotThreshold:
         z = pot_quantile(self.t, self.xi, self.sigma, self.q, self.n, self.n_peaks)
         return max(z, self.t)  # z_q below t would be outside the tail model
 
-    def update(self, score: float) -> float:
-        thr = self.level
+    def absorb(self, score: float) -> None:
         s = _finite_score(score)
-        if s is None or s > thr:  # flagged (or unusable): not absorbed
-            return thr
+        if s is None:
+            return
         self.n += 1
         if s > self.t:
             self._peaks.append(s - self.t)
@@ -328,7 +345,6 @@ class PotThreshold:
             if self._since_fit >= self.refit_every:
                 self.xi, self.sigma = fit_gpd(np.asarray(self._peaks))
                 self._since_fit = 0
-        return thr
 
     @property
     def peaks(self) -> List[float]:

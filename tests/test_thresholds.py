@@ -27,7 +27,11 @@ def test_rolling_matches_pandas_and_scipy():
     scores = rng.gamma(2.0, 1.0, size=400)
     window, k, min_count, level0 = 50, 3.0, 10, 7.5
     thr = RollingRobustThreshold(level0=level0, window=window, k=k, min_count=min_count)
-    got = np.array([thr.update(s) for s in scores])
+    got = []
+    for s in scores:  # the buffer's arithmetic: every score absorbed
+        got.append(thr.level)
+        thr.absorb(s)
+    got = np.array(got)
 
     s = pd.Series(scores)
     roll = s.rolling(window, min_periods=min_count)
@@ -237,3 +241,28 @@ def test_pot_state_restores_after_a_long_quiet_stream():
     restored = PotThreshold.from_state(json.loads(json.dumps(pot.state())))
     assert restored.level == pot.level
     assert restored.update(0.5) == pot.update(0.5)
+
+
+@pytest.mark.parametrize("kind", ["static", "rolling", "pot"])
+def test_a_long_run_above_the_level_keeps_alerting(kind):
+    """A fault that lasts far longer than the policy's memory must not become its new normal:
+    neither the policy (flagged scores are not absorbed) nor the Judge (nothing inside an open
+    alert is absorbed) lets the level climb after it. Before, `rolling` absorbed every score and
+    closed a long fault once its median caught up."""
+    from ganlet.runtime.detector import Judge
+
+    rng = np.random.default_rng(7)
+    normal = rng.gamma(2.0, 1.0, size=600)
+    policy = calibrate_policy(kind, normal, **({"window": 64, "min_count": 16}
+                                               if kind == "rolling" else {}))
+    judge = Judge("b", [], [], policy, {"warmup_hops": 0, "min_hops": 3, "close_ratio": 0.8,
+                                        "cooldown_hops": 4})
+    for s in rng.gamma(2.0, 1.0, size=200):   # normal running first
+        judge.step(0.0, float(s))
+    level_before = judge.threshold.level
+    opened = []
+    for k in range(2000):                     # then a fault 10x the level, 10 windows long
+        judge.step(0.0, 10.0 * level_before * (1 + 0.1 * rng.random()))
+        opened.append(judge.is_open)
+    assert all(opened[2:]), f"{kind}: the alert closed during the fault"
+    assert judge.threshold.level == pytest.approx(level_before)
