@@ -20,19 +20,34 @@ from ganlet.runtime.lstm import Network
 from ganlet.runtime.score import ScoreRule, score_section
 from ganlet.runtime.thresholds import KINDS, calibrate_policy
 
+SECONDS_PER_WEEK = 7 * 86400.0
+# The engineer's false-alarm budget on normal data when none is given: one alarm per week per
+# detector (common practice for an advisory monitor one person reviews; state your own with
+# --false-alarms-per-week).
+DEFAULT_ALARMS_PER_WEEK = 1.0
 
-def policy_for(kind: str, scores: np.ndarray) -> dict:
-    """A threshold policy of `kind` from calibration scores. POT needs enough tail to fit, so
-    a short calibration span falls back to the rolling policy (the result says which)."""
+
+def risk_per_hop(alarms_per_week: float, period_s: float, hop: int) -> float:
+    """The POT risk q for a budget: an alarm needs at least one hop over the level, so at most
+    q x hops-per-week alarms a week are expected on normal data (runs of hops only lower it)."""
+    if not alarms_per_week > 0:
+        raise ValueError(f"--false-alarms-per-week must be > 0, got {alarms_per_week}")
+    return float(alarms_per_week) * period_s * hop / SECONDS_PER_WEEK
+
+
+def policy_for(kind: str, scores: np.ndarray, risk: Optional[float] = None) -> dict:
+    """A threshold policy of `kind` from calibration scores; for `pot`, `risk` (per hop) is the
+    false-alarm budget's q. Too few scores for a tail fit give a static level at the largest
+    calibration score (the policy's kind says so)."""
     if kind not in KINDS:
         raise ValueError(f"threshold {kind!r}: choose one of {', '.join(KINDS)}")
     s = np.asarray(scores, np.float64)
     s = s[np.isfinite(s)]
     if kind == "pot":
         try:
-            return calibrate_policy("pot", s)
+            return calibrate_policy("pot", s, **({} if risk is None else {"q": risk}))
         except ValueError:
-            kind = "rolling"
+            return calibrate_policy("static", s, quantile=1.0 - 1e-12)
     if kind == "rolling":
         return calibrate_policy("rolling", s, min_count=min(32, len(s)))
     return calibrate_policy(kind, s)

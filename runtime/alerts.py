@@ -62,6 +62,11 @@ class AlertMachine:
         self._cooldown_left = 0
 
     @property
+    def run_len(self) -> int:
+        """Consecutive hops above the threshold so far towards min_hops (0 when none)."""
+        return self._run_len
+
+    @property
     def is_warm(self) -> bool:
         return self.hop >= self.warmup_hops
 

@@ -33,6 +33,7 @@ import numpy as np
 
 from . import features
 from .alerts import ALERTING_KEYS, CLOSED, OPENED, WARMED_UP, AlertMachine
+from .drift import DriftMonitor
 from .intake import RowError, format_time
 from .ring import Ring
 from .score import ScoreRule, shares
@@ -111,6 +112,15 @@ class Judge:
         """After a long gap the hops before it no longer lead up to the hops after it."""
         self.recent.clear()
 
+    def alert_channels(self) -> np.ndarray:
+        """Channels of an open or pending alert: those whose contribution to the last hop is
+        at least the average (all False when nothing is open or pending)."""
+        pending = self.machine.is_open or self.machine.run_len > 0
+        if not pending or not self.recent:
+            return np.zeros(len(self.channels), dtype=bool)
+        last = self.recent[-1][2]
+        return last >= last.sum() / max(1, len(last))
+
     def _add(self, parts: np.ndarray) -> None:
         self.alert["parts_sum"] = [a + float(b) for a, b in zip(self.alert["parts_sum"], parts)]
         self.alert["hops"] += 1
@@ -162,6 +172,9 @@ class Detector:
         self.bundle = bundle
         self.scorer = scorer
         self.rule = ScoreRule(bundle.manifest["score"])
+        section = bundle.manifest.get("drift")
+        self.drift = (DriftMonitor(section, bundle.channels, bundle.window, bundle.hop)
+                      if section is not None else None)
         self.ring = Ring(bundle.window, len(bundle.channels))
         self.judge = Judge(bundle.bundle_id, bundle.channels, bundle.units,
                            bundle.threshold_policy, bundle.alerting)
@@ -169,12 +182,14 @@ class Detector:
         self.errors = {}  # type: Dict[str, int]  # rejected rows by kind (the service counts)
         self.last_time = None  # type: Optional[float]
         self.last_raw = None  # type: Optional[np.ndarray]  # raw row at last_time
+        self.last_hop = None  # type: Optional[dict]  # what the last scored hop saw (inspection)
 
     # ------------------------------------------------------------------ state
     def state(self) -> dict:
         return {
             "ring": self.ring.state(),
             "judge": self.judge.state(),
+            "drift": self.drift.state() if self.drift is not None else None,
             "counters": dict(self.counters),
             "errors": dict(self.errors),
             "last_time": self.last_time,
@@ -184,6 +199,8 @@ class Detector:
     def restore(self, d: dict) -> None:
         self.ring = Ring.from_state(d["ring"])
         self.judge.restore(d["judge"])
+        if self.drift is not None:
+            self.drift.restore(d["drift"])
         self.counters.update(d["counters"])
         self.errors.update(d["errors"])
         self.last_time = d["last_time"]
@@ -209,6 +226,8 @@ class Detector:
             })
             self.ring.reset()
             self.judge.reset_run()
+            if self.drift is not None:
+                self.drift.reset()
         self.counters["interpolated"] += len(rows) - 1
         for tk, x in rows:
             if x is not None:
@@ -263,11 +282,25 @@ class Detector:
         extra = self.ring.filled - self.ring.size
         if extra < 0 or extra % self.bundle.hop:
             return []
-        residuals = self.scorer.residuals(self.ring.window()[None])
-        scores, parts = self.rule.apply(residuals)
+        return self._hop(t, self.ring.window())
+
+    def _hop(self, t: float, window: np.ndarray) -> List[dict]:
+        """Score one window: drift re-centring, network, score rule, then the Judge."""
+        means = window.mean(axis=0, dtype=np.float64)
+        drift_events = []
+        if self.drift is not None:
+            offset, drift_events = self.drift.step(format_time(t), means,
+                                                   self.judge.alert_channels())
+            if offset.any():
+                window = (window - offset).astype(np.float32)
+                means = means - offset
+        residuals = self.scorer.residuals(window[None])
+        scores, parts = self.rule.apply(residuals, means[None])
         self.counters["hops"] += 1
-        events = self.judge.step(t, float(scores[0]), parts[0])
+        self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],
+                         "score": float(scores[0]), "parts": parts[0]}
+        events = self.judge.step(t, float(scores[0]), self.rule.contributions(parts[0]))
         for e in events:
             if e["event"] in ("alert_opened", "alert_closed"):
                 self.counters["alerts_" + e["event"].split("_")[1]] += 1
-        return events
+        return events + drift_events

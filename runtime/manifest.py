@@ -24,6 +24,7 @@ from typing import Dict, List, Optional, Sequence, Tuple
 import numpy as np
 
 from .alerts import AlertMachine
+from .drift import DriftMonitor
 from .features import FEATURE_KINDS, rate_mask
 from .lstm import contract_shapes
 from .score import ScoreRule
@@ -237,12 +238,19 @@ def _check_network(net: dict) -> None:
 
 def _check_sections(manifest: dict) -> None:
     """score, threshold and alerting are checked by building them, as the gateway will."""
-    for section, build in (("score", ScoreRule), ("threshold", make_threshold),
-                           ("alerting", lambda d: AlertMachine(**d))):
+    builders = [("score", ScoreRule), ("threshold", make_threshold),
+                ("alerting", lambda d: AlertMachine(**d))]
+    if "drift" in manifest:
+        builders.append(("drift", lambda d: DriftMonitor(d, [c["name"] for c in
+                                                             manifest["channels"]], 1, 1)))
+    for section, build in builders:
         try:
             build(manifest[section])
-        except (TypeError, ValueError) as exc:
+        except (TypeError, ValueError, KeyError) as exc:
             raise BundleError(f"manifest: {section}: {exc}; re-pack the bundle") from None
+    regimes = manifest["score"].get("regimes")
+    if regimes is not None and len(regimes["centres"][0]) != len(manifest["channels"]):
+        raise BundleError("manifest: score.regimes must give one value per channel")
     board = manifest["board"]
     if not isinstance(board.get("name"), str):
         raise BundleError("manifest: board.name must be a string")
@@ -289,11 +297,17 @@ def build_manifest(
     tool_version: str,
     parity_tolerances: Optional[dict] = None,
     created: Optional[str] = None,
+    drift: Optional[dict] = None,
+    false_alarms: Optional[dict] = None,
 ) -> dict:
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
-    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit)."""
-    return {
+    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
+    drift: drift.drift_section(...) (optional); false_alarms: the budget the threshold was
+    calibrated to and the rate it implies (optional, informative)."""
+    optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms))
+                if v is not None}
+    return {**optional,
         "schema_version": SCHEMA_VERSION,
         "tool_version": tool_version,
         "created": created or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -376,6 +390,15 @@ class Bundle:
         self.weights_path = self.dir / manifest["network"]["weights"]
         self.onnx_path = self.dir / manifest["network"]["onnx"]
         self._weights = None  # type: Optional[Dict[str, np.ndarray]]
+
+    @classmethod
+    def in_memory(cls, manifest: dict, weights: Dict[str, np.ndarray]) -> "Bundle":
+        """A bundle that exists only as a manifest and weights (the workstation replays its
+        calibration span through the gateway's detector before the folder is written)."""
+        raw = json.dumps(manifest, sort_keys=True).encode("utf-8")
+        bundle = cls(Path("."), manifest, raw, signed=False)
+        bundle._weights = {k: np.asarray(v, dtype=np.float32) for k, v in weights.items()}
+        return bundle
 
     def scaled(self, feats: np.ndarray) -> np.ndarray:
         """Features (one row or [T, C]) -> the float32 values the ring holds."""

@@ -1,30 +1,44 @@
-"""The score rule: per-channel residuals of a window -> one score and each channel's part.
+"""The score rule: a window's per-channel residuals -> one score and each channel's part.
 
 The network (lstm.py, or model.onnx in onnxruntime, or the teacher on the workstation) gives
 each window's per-channel residual res[c] = mean over time of (x - G(E(x)))^2. This module is
 the one place that turns residuals into the score every backend reports, so teacher, student,
-ONNX and numpy can only differ by their network arithmetic:
+ONNX and numpy can only differ by their network arithmetic.
 
-    parts[c] = res[c]                   the channel's part (its share in an alert names it)
-    score    = mean over c of parts[c]  (manifest score.combine = "mean")
+Uncalibrated (manifest score = {"combine": "mean"}): parts[c] = res[c], score = mean of parts.
+
+Calibrated (the manifest's score section carries "regimes"): each channel's error is put in
+units of its own normal error in the window's operating regime, so a quiet channel's departure
+counts as much as a noisy one's and the score has one scale in every regime:
+
+    u[c]   = sqrt(res[c])                       RMS error of channel c, scaled units
+    g      = the regime whose centre is nearest to the window's per-channel means
+    parts[c] = u[c] / scale[g][c]               "times the channel's normal error in regime g"
+    score  = combine(parts): rms (default), mean or max over channels
+A channel's share in an alert is its share of the summed contributions over the alert's hops:
+the squared parts for rms (they add up to the squared score), the parts otherwise.
 """
 
 from typing import Tuple
 
 import numpy as np
 
-COMBINE_RULES = ("mean",)
+COMBINE_RULES = ("mean", "rms", "max")
 RESIDUAL_TEXT = ("mean over the window of the squared reconstruction error x - G(E(x)), per "
                  "channel, on robust-scaled inputs")
 
 
-def score_section() -> dict:
-    """The manifest's `score` section for this rule."""
-    return {"residual": RESIDUAL_TEXT, "combine": "mean"}
+def score_section(centres=None, scale=None, combine: str = "mean") -> dict:
+    """The manifest's `score` section: uncalibrated, or with regime centres and scales."""
+    section = {"residual": RESIDUAL_TEXT, "combine": combine}
+    if centres is not None:
+        section["regimes"] = {"centres": [[float(v) for v in row] for row in centres],
+                              "scale": [[float(v) for v in row] for row in scale]}
+    return section
 
 
 class ScoreRule:
-    """Residuals [N, C] -> (scores [N], parts [N, C]), as the manifest's score section says."""
+    """Residuals [N, C] (+ window means [N, C]) -> (scores [N], parts [N, C])."""
 
     def __init__(self, section: dict):
         combine = section.get("combine") if isinstance(section, dict) else None
@@ -32,16 +46,60 @@ class ScoreRule:
             raise ValueError(f"score.combine {combine!r} unknown; this runtime knows "
                              f"{', '.join(COMBINE_RULES)}")
         self.combine = combine
+        self.centres = self.scale = None  # type: Optional[np.ndarray]
+        regimes = section.get("regimes")
+        if regimes is not None:
+            self.centres = np.asarray(regimes["centres"], dtype=np.float64)
+            self.scale = np.asarray(regimes["scale"], dtype=np.float64)
+            if self.centres.ndim != 2 or self.scale.shape != self.centres.shape:
+                raise ValueError("score.regimes: centres and scale must both be "
+                                 "[regimes, channels]")
+            if not (np.isfinite(self.scale).all() and (self.scale > 0).all()):
+                raise ValueError("score.regimes.scale must be finite and > 0")
 
-    def apply(self, residuals) -> Tuple[np.ndarray, np.ndarray]:
-        parts = np.asarray(residuals, dtype=np.float32)
-        if parts.ndim != 2:
-            raise ValueError(f"residuals must have shape [N, C], got {parts.shape}")
-        return np.mean(parts, axis=1, dtype=np.float32), parts
+    @property
+    def calibrated(self) -> bool:
+        return self.scale is not None
+
+    def regime(self, means) -> np.ndarray:
+        """The nearest regime centre to each window's per-channel means [N, C] -> [N]."""
+        m = np.asarray(means, dtype=np.float64)
+        if self.centres is None or len(self.centres) == 1:
+            return np.zeros(len(m), dtype=np.int64)
+        d = ((m[:, None, :] - self.centres[None, :, :]) ** 2).sum(axis=2)
+        return np.argmin(d, axis=1)
+
+    def apply(self, residuals, means=None) -> Tuple[np.ndarray, np.ndarray]:
+        res = np.asarray(residuals, dtype=np.float32)
+        if res.ndim != 2:
+            raise ValueError(f"residuals must have shape [N, C], got {res.shape}")
+        if self.scale is None:
+            parts = res
+        else:
+            if means is None:
+                raise ValueError("a calibrated score needs the windows' per-channel means")
+            u = np.sqrt(np.maximum(res.astype(np.float64), 0.0))
+            parts = (u / self.scale[self.regime(means)]).astype(np.float32)
+        return combine(parts, self.combine), parts
+
+    def contributions(self, parts) -> np.ndarray:
+        """What each channel adds to the score, additively: parts^2 for rms, else parts."""
+        p = np.asarray(parts, dtype=np.float64)
+        return p * p if self.combine == "rms" else p
 
 
-def shares(parts) -> np.ndarray:
-    """Each channel's share of the summed parts (all zero when the parts are)."""
-    p = np.asarray(parts, dtype=np.float64)
+def combine(parts: np.ndarray, how: str) -> np.ndarray:
+    """[N, C] -> [N] by the manifest's combine rule, in float32."""
+    p = np.asarray(parts, dtype=np.float32)
+    if how == "rms":
+        return np.sqrt(np.mean(p * p, axis=1, dtype=np.float32))
+    if how == "max":
+        return np.max(p, axis=1)
+    return np.mean(p, axis=1, dtype=np.float32)
+
+
+def shares(contributions) -> np.ndarray:
+    """Each channel's share of the summed contributions (all zero when they are)."""
+    p = np.asarray(contributions, dtype=np.float64)
     total = float(p.sum())
     return p / total if total > 0 else np.zeros_like(p)

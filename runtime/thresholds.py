@@ -429,7 +429,8 @@ _CALIBRATION_DEFAULTS: Dict[str, Dict[str, Any]] = {
         "min_count": 32,
         "floor": 0.0,
     },
-    "pot": {"q": 1e-3, "init_quantile": 0.98, "max_peaks": 1000, "refit_every": 1},
+    "pot": {"q": 1e-3, "init_quantile": 0.98, "min_peaks": 10, "max_peaks": 1000,
+            "refit_every": 1},
 }
 
 
@@ -438,8 +439,12 @@ def calibrate_policy(kind: str, scores: np.ndarray, **options: Any) -> Dict[str,
 
     static:  level = quantile(scores, quantile=0.995) * margin (1.0)
     rolling: level0 as static; window (256), k (6), min_count (32), floor (0)
-    pot:     t = quantile(scores, init_quantile=0.98); peaks = scores above t minus t;
-             n = len(scores); q (1e-3), max_peaks (1000), refit_every (1)
+    pot:     t = quantile(scores, min(init_quantile, 1 - min_peaks / n)) with init_quantile
+             0.98 and min_peaks 10, so a short calibration span still leaves min_peaks excesses
+             for the tail fit (a GPD fit on fewer is not worth having: common practice, from
+             memory); peaks = scores above t minus t; n = len(scores); q (1e-3) is capped at
+             half the exceedance rate over t, so the level lies in the fitted tail;
+             max_peaks (1000), refit_every (1). Needs n >= 2 * min_peaks.
     """
     if kind not in _CALIBRATION_DEFAULTS:
         raise ValueError(f"unknown threshold kind {kind!r}; choose one of {sorted(_KINDS)}")
@@ -455,12 +460,18 @@ def calibrate_policy(kind: str, scores: np.ndarray, **options: Any) -> Dict[str,
         raise ValueError("calibration scores contain NaN or inf; drop them first")
 
     if kind == "pot":
-        init_q = _prob("init_quantile", opts["init_quantile"])
+        min_peaks = _int("min_peaks", opts["min_peaks"], 3)
+        if s.size < 2 * min_peaks:
+            raise ValueError(f"{s.size} calibration scores are too few for a tail fit (need "
+                             f"{2 * min_peaks}); train with a longer history or a larger "
+                             "calibration fraction")
+        init_q = min(_prob("init_quantile", opts["init_quantile"]), 1.0 - min_peaks / s.size)
         t = float(np.quantile(s, init_q))
+        n_peaks = int((s > t).sum())
         pot = make_threshold(
             {
                 "kind": "pot",
-                "q": opts["q"],
+                "q": min(_prob("q", opts["q"]), 0.5 * n_peaks / s.size),
                 "t": t,
                 "peaks": [float(v) for v in s[s > t] - t],
                 "n": int(s.size),

@@ -261,7 +261,7 @@ def test_a_long_run_above_the_level_keeps_alerting(kind):
         judge.step(0.0, float(s))
     level_before = judge.threshold.level
     opened = []
-    for k in range(2000):                     # then a fault 10x the level, 10 windows long
+    for _ in range(2000):                     # then a fault 10x the level, 10 windows long
         judge.step(0.0, 10.0 * level_before * (1 + 0.1 * rng.random()))
         opened.append(judge.is_open)
     assert all(opened[2:]), f"{kind}: the alert closed during the fault"

@@ -1,0 +1,97 @@
+"""Drift: a channel whose level slowly leaves its training envelope.
+
+A slow quantity (a loop temperature, a bearing's ambient) can wander beyond the range it had
+while the detector trained, with nothing wrong. Left alone, the network sees a level it never
+learned and the score follows it: a flood of alerts, and faults on other channels judged
+against a polluted score. Instead, such a channel is reported once as drift and, while the drift
+lasts, re-centred onto its envelope's edge before the window reaches the network; the operator
+is told to collect fresh normal data and retrain. A channel that leaves the envelope faster than
+training ever moved it is left to the score and the alert machine (a step, a burst, a sag).
+
+Per channel c, in scaled units (robust standard deviations of the fit span), each scored hop:
+    m_c      mean of the window (the ring holds it)
+    envelope [lo_c, hi_c]: the lowest / highest window mean of the training span
+    excess   e_c = max(m_c - hi_c, lo_c - m_c, 0)
+    speed    |m_c - m_c one window earlier|, against v_max_c: the largest such change of the
+             training span ("normal operation can move this fast")
+A channel enters drift when e_c > 0, its speed <= v_max_c, and it is not among the channels of
+an open or pending alert; it stays in drift while e_c > 0. While in drift the network sees
+x_c - sign(m_c) * e_c (the excess removed), so neither that channel nor the others score it.
+Events: `drift` when a channel enters drift (channel, how far in robust sigmas, since when, which
+side), `drift_ended` when it is back inside (with the largest excess seen).
+"""
+
+from collections import deque
+from typing import Sequence
+
+import numpy as np
+
+
+def drift_section(lo, hi, v_max) -> dict:
+    """The manifest's `drift` section."""
+    return {"lo": [float(v) for v in lo], "hi": [float(v) for v in hi],
+            "v_max": [float(v) for v in v_max]}
+
+
+class DriftMonitor:
+    def __init__(self, section: dict, channels: Sequence[str], window: int, hop: int):
+        self.lo = np.asarray(section["lo"], dtype=np.float64)
+        self.hi = np.asarray(section["hi"], dtype=np.float64)
+        self.v_max = np.asarray(section["v_max"], dtype=np.float64)
+        n = len(channels)
+        if not (self.lo.shape == self.hi.shape == self.v_max.shape == (n,)):
+            raise ValueError(f"drift: lo, hi and v_max must list {n} numbers (one per channel)")
+        if not (np.all(np.isfinite(self.lo)) and np.all(self.hi >= self.lo)
+                and np.all(self.v_max >= 0)):
+            raise ValueError("drift: need finite lo <= hi and v_max >= 0 per channel")
+        self.channels = list(channels)
+        self.in_drift = np.zeros(n, dtype=bool)
+        self.since = [None] * n  # type: List[Optional[str]]
+        self.peak = np.zeros(n)
+        # window means one window earlier: hops back = ceil(window / hop)
+        self.past = deque(maxlen=max(1, -(-window // hop)))
+
+    def excess(self, means: np.ndarray) -> np.ndarray:
+        return np.maximum(np.maximum(means - self.hi, self.lo - means), 0.0)
+
+    def step(self, time_text: str, means, blocked) -> tuple:
+        """One scored hop: (offset [C] to subtract from the window, events)."""
+        m = np.asarray(means, dtype=np.float64)
+        full = len(self.past) == self.past.maxlen
+        speed = np.abs(m - self.past[0]) if full else np.full(len(m), np.inf)
+        self.past.append(m)
+        e = self.excess(m)
+        events = []
+        for c in range(len(m)):
+            if self.in_drift[c] and e[c] <= 0:
+                events.append({"event": "drift_ended", "channel": self.channels[c],
+                               "time": time_text, "since": self.since[c],
+                               "peak_excess": round(float(self.peak[c]), 6)})
+                self.in_drift[c], self.since[c] = False, None
+            elif self.in_drift[c]:
+                self.peak[c] = max(self.peak[c], e[c])
+            elif e[c] > 0 and not blocked[c] and speed[c] <= self.v_max[c]:
+                self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
+                events.append({"event": "drift", "channel": self.channels[c],
+                               "time": time_text, "excess": round(float(e[c]), 6),
+                               "side": "above" if m[c] > self.hi[c] else "below",
+                               "action": "re-centred onto the training range; collect fresh "
+                                         "normal data and retrain"})
+        offset = np.where(self.in_drift, np.where(m > self.hi, e, -e), 0.0)
+        return offset, events
+
+    def reset(self) -> None:
+        """After a long gap the window one window earlier is gone."""
+        self.past.clear()
+
+    def state(self) -> dict:
+        return {"in_drift": [bool(v) for v in self.in_drift], "since": list(self.since),
+                "peak": [float(v) for v in self.peak],
+                "past": [[float(v) for v in m] for m in self.past]}
+
+    def restore(self, d: dict) -> None:
+        self.in_drift = np.asarray(d["in_drift"], dtype=bool)
+        self.since = list(d["since"])
+        self.peak = np.asarray(d["peak"], dtype=np.float64)
+        self.past.clear()
+        self.past.extend(np.asarray(m, dtype=np.float64) for m in d["past"])
