@@ -193,6 +193,7 @@ def compile_cmd(
     out: Path = typer.Option(..., "--out", "-o", help="Bundle directory to write (replaced if present)."),
     board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512)."),
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
+    alarms_per_week: float = typer.Option(1.0, "--false-alarms-per-week", min=1e-6, help="False-alarm budget on normal data the threshold is calibrated to (pot)."),
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
     sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac)."),
     name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest and used for file and service names on the gateway: letters, digits, '.', '_', '-' (default: the model folder's name)."),
@@ -211,6 +212,7 @@ def compile_cmd(
             raise UsageProblem(f"{model_dir} is not a model directory (no model.json); "
                                "create one with `ganlet train DATA --out DIR`")
         options = CompileOptions(board=board, threshold=threshold, archive=archive, sign_key=key,
+                                 alarms_per_week=alarms_per_week,
                                  name=name or safe_name(model_dir.resolve().name),
                                  distil=DistilConfig(epochs=distil_epochs, seed=seed))
         progress, stop = progress_printer(quiet)

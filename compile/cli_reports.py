@@ -71,6 +71,9 @@ def evaluate_cmd(
     model: Optional[Path] = typer.Option(
         None, "--model", help="With a bundle: its teacher's model directory (adds the teacher "
         "and the baselines)."),
+    alarms_per_week: float = typer.Option(
+        1.0, "--false-alarms-per-week", min=1e-6,
+        help="False-alarm budget on normal data for a model directory (a bundle uses its own)."),
     no_baselines: bool = typer.Option(False, "--no-baselines", help="Skip the baselines."),
     html_out: Optional[Path] = typer.Option(None, "--html", help="Write an HTML report."),
     json_out: Optional[Path] = typer.Option(None, "--json", help="Write a JSON summary."),
@@ -81,7 +84,7 @@ def evaluate_cmd(
     eval_from = int(start) if start is not None and start.isdigit() else start
     result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
                                      threshold=threshold, baselines=not no_baselines,
-                                     model_dir=model))
+                                     model_dir=model, alarms_per_week=alarms_per_week))
     typer.echo(result.summary())
     if json_out:
         e.write_json(result, json_out)

@@ -9,10 +9,13 @@ Scores per grid point:
               (mean over channels of z^2 against the trailing ROLLING_Z_WINDOW points). They
               see the data as delivered: levels, even for channels the detector watches by
               rate (an off-the-shelf method is run that way; DEVELOPERS.md has both figures)
-One threshold rule for every method: the policy kind the bundle was calibrated with (for a
-model directory, the kind asked for, with the same short-span fallback as compile), calibrated
-on the method's own calibration-span scores, then the same alert machine. The bundle's alerts
-are the gateway's own.
+One rule for every method, the one the gateway ships: the bundle's threshold policy kind and
+false-alarm budget (for a model directory, the kind and budget asked for), calibrated on the
+method's own calibration-span scores (compile/calibrate.py policy_for), then the gateway's own
+Judge (threshold + alert machine, runtime/detector.py) hop by hop. The bundle's alerts are the
+gateway's own (`run.py stream`); the teacher runs through the gateway's Detector on the same
+feed with its own calibration (drift envelope, regimes, score scale, threshold), as if it were
+the device's network.
 
 Metrics on the evaluated points: point-wise precision, recall, F1; false-alarm rate (FAR,
 share of normal points flagged) and missed-alarm rate (MAR, share of anomalous points missed);
@@ -33,7 +36,12 @@ import numpy as np
 import pandas as pd
 
 from ganlet.compile import report as rep
-from ganlet.compile.calibrate import policy_for
+from ganlet.compile.calibrate import (
+    DEFAULT_ALARMS_PER_WEEK,
+    calibrated_bundle,
+    policy_for,
+    risk_per_hop,
+)
 from ganlet.compile.data import (
     Frame,
     IntakeError,
@@ -42,10 +50,9 @@ from ganlet.compile.data import (
     grid_index,
     load_frame,
     parse_times,
-    segments_in,
 )
 from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
-from ganlet.compile.verify import alert_events, clean_json, replay_alerts
+from ganlet.compile.verify import alert_events, clean_json, replay_alerts, replay_feed
 from ganlet.runtime.alerts import default_alerting
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
@@ -125,16 +132,19 @@ def event_metrics(times: np.ndarray, y: np.ndarray, alert: np.ndarray, period_s:
 
 @dataclass
 class Rule:
-    """The one threshold rule: a policy kind calibrated per method, and the alert machine."""
+    """The one threshold rule: a policy kind and false-alarm budget calibrated per method, and
+    the alert machine; per-point methods (the baselines) count each point as a hop."""
 
     kind: str
     alerting: dict
+    alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK
 
-    def policy(self, calibration_scores: np.ndarray) -> dict:
-        return policy_for(self.kind, calibration_scores)
+    def policy(self, calibration_scores: np.ndarray, period_s: float) -> dict:
+        return policy_for(self.kind, calibration_scores,
+                          risk_per_hop(self.alarms_per_week, period_s, 1))
 
-    def apply(self, calibration_scores: np.ndarray, scores: np.ndarray):
-        policy = self.policy(calibration_scores)
+    def apply(self, calibration_scores: np.ndarray, scores: np.ndarray, period_s: float):
+        policy = self.policy(calibration_scores, period_s)
         levels, alert = replay_alerts(scores, policy, self.alerting)
         return policy, levels, alert
 
@@ -267,50 +277,79 @@ def source_kind(path: Path) -> str:
                       "(model.json)")
 
 
-def _span_segments(segments, span) -> list:
-    b0, e0 = span
-    return [(max(b, b0), min(e, e0)) for b, e in segments if min(e, e0) > max(b, b0)]
-
-
 def evaluate(source: Path, data: Path, incidents, eval_from=None,
              eval_mask: Optional[np.ndarray] = None, threshold: str = "pot",
              baselines: bool = True, teacher: bool = True,
-             model_dir: Optional[Path] = None) -> EvalResult:
+             model_dir: Optional[Path] = None,
+             alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK) -> EvalResult:
     """source: a model directory or a bundle (then model_dir, its teacher's folder, adds the
     teacher and the baselines). eval_from: first evaluated row (int) or time (str); eval_mask:
-    explicit grid points to evaluate (overrides eval_from)."""
-    from ganlet.compile.train import load_model, score_series
+    explicit grid points to evaluate (overrides eval_from). threshold and alarms_per_week are
+    for a model directory (a bundle uses its own)."""
+    bundle, model, rule, notes = _source(source, model_dir, threshold, alarms_per_week)
+    contract = bundle if bundle is not None else model
+    frame: Frame = load_frame(data, IntakeOptions(
+        time_col=contract.time_column if bundle is not None else model.time_col,
+        channels=list(contract.channels), period_s=contract.period_s,
+        max_fill_periods=(bundle.max_gap_periods if bundle is not None
+                          else model.max_fill_periods)))
+    inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
+    y = incident_labels(frame.times, inc)
+    evaluated = _evaluated(frame, eval_mask, eval_from)
+    methods = {}
+    with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
+        feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp))
+        if bundle is not None:
+            methods["bundle"] = _gateway_method(bundle, feed, frame, Path(tmp), rule.kind)
+        if model is not None and teacher:
+            hop = bundle.hop if bundle is not None else 1
+            methods["teacher"] = _teacher_method(model, feed, frame, rule, hop)
+    if model is not None and baselines:
+        methods.update(_baseline_methods(model, frame, rule))
+    if not methods:
+        raise UnusableInput("nothing to evaluate")
+    t = frame.times.values[evaluated]
+    for m in methods.values():
+        m.metrics = point_metrics(y[evaluated], m.alert[evaluated])
+        m.metrics.update(event_metrics(t, y[evaluated], m.alert[evaluated], frame.period_s))
+    return EvalResult(source=str(source), data=str(data), times=frame.times, labels=y,
+                      evaluated=evaluated, methods=methods, incidents=inc, rule=rule,
+                      features=f"each point's {len(frame.channels)} channel levels, "
+                               "robust-scaled on the fit span (the data as delivered, whatever "
+                               "the detector watches); rolling z-score over the trailing "
+                               f"{ROLLING_Z_WINDOW} points",
+                      notes=notes)
 
-    kind = source_kind(source)
+
+def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_week: float):
+    """(bundle or None, model or None, the rule, notes) for a bundle or a model directory."""
+    from ganlet.compile.train import load_model
+    from ganlet.runtime.manifest import BundleError, load_bundle
+
     notes = []
-    bundle = None
-    if kind == "bundle":
-        from ganlet.runtime.manifest import BundleError, load_bundle
-
-        try:
-            bundle = load_bundle(source)
-        except BundleError as exc:
-            raise UnusableInput(f"bundle refused: {exc}") from None
-        model = load_model(model_dir) if model_dir is not None else None
-        if model is None:
-            notes.append("no --model DIR given: the teacher and the baselines (which need its "
-                         "training split) are skipped")
-        rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting))
-        opts = IntakeOptions(time_col=bundle.time_column, channels=bundle.channels,
-                             period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods)
-    else:
+    if source_kind(source) == "model":
         model = load_model(source)
-        rule = Rule(threshold, default_alerting(model.teacher.config.window, 1))
-        opts = IntakeOptions(time_col=model.time_col, channels=model.channels,
-                             period_s=model.period_s, max_fill_periods=model.max_fill_periods)
-    frame: Frame = load_frame(data, opts)
-    watched = bundle.features if bundle is not None else model.scaler.features
-    by_rate = [c for c, f in zip(frame.channels, watched) if f == "rate"]
+        rule = Rule(threshold, default_alerting(model.teacher.config.window, 1), alarms_per_week)
+        return None, model, rule, notes
+    try:
+        bundle = load_bundle(source)
+    except BundleError as exc:
+        raise UnusableInput(f"bundle refused: {exc}") from None
+    model = load_model(model_dir) if model_dir is not None else None
+    if model is None:
+        notes.append("no --model DIR given: the teacher and the baselines (which need its "
+                     "training split) are skipped")
+    budget = bundle.manifest.get("false_alarms", {}).get("budget_per_week",
+                                                         DEFAULT_ALARMS_PER_WEEK)
+    rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting), budget)
+    by_rate = [c for c, f in zip(bundle.channels, bundle.features) if f == "rate"]
     if by_rate:
         notes.append(f"the detector watches {', '.join(by_rate)} by rate (change per period); "
                      "the baselines see every channel's level")
-    inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
-    y = incident_labels(frame.times, inc)
+    return bundle, model, rule, notes
+
+
+def _evaluated(frame: Frame, eval_mask, eval_from) -> np.ndarray:
     n = len(frame.times)
     if eval_mask is not None:
         evaluated = np.asarray(eval_mask, bool).copy()
@@ -323,57 +362,55 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
         if pd.isna(stamp):
             raise IntakeError(f"--from {eval_from!r}: give a row number or a time")
         evaluated = frame.times.values >= stamp.to_datetime64()
-    evaluated &= ~np.isnan(frame.values).any(axis=1)
+    return evaluated & ~np.isnan(frame.values).any(axis=1)
 
+
+def _on_grid(frame: Frame, times, score, threshold, alert, name: str, kind: str) -> Method:
+    """Per-hop series placed on the data's grid (the intake's rounding), each held until the
+    next hop."""
+    n = len(frame.times)
+    rows = grid_index(frame, times)
+    held_alert = hold(rows, np.asarray(alert, float), n)
+    return Method(name, hold(rows, score, n), hold(rows, threshold, n),
+                  np.nan_to_num(held_alert) > 0.5, kind)
+
+
+def _gateway_method(bundle, feed: Path, frame: Frame, workdir: Path, kind: str) -> Method:
+    """The bundle's own `run.py stream` on the feed: what the gateway does."""
+    dev = read_scores(run_bundle(bundle.dir, feed, workdir / "gateway").scores)
+    return _on_grid(frame, dev["time"].to_numpy(), dev["score"].to_numpy(),
+                    dev["threshold"].to_numpy(), dev["alert"].to_numpy(),
+                    "bundle (int8, gateway path)", kind)
+
+
+def _teacher_method(model, feed: Path, frame: Frame, rule: Rule, hop: int) -> Method:
+    """The teacher as the device's network: calibrated as compile calibrates the student, then
+    the same feed through the gateway's Detector."""
+    from ganlet.compile.train import TeacherScorer
+
+    scorer = TeacherScorer(model.teacher)
+    bundle = calibrated_bundle(model, scorer, model.teacher.config.window, hop, rule.kind,
+                               rule.alarms_per_week, rule.alerting)
+    r = replay_feed(bundle, scorer, feed)
+    return _on_grid(frame, r.times, r.score, r.threshold, r.alert, "teacher",
+                    bundle.threshold_policy["kind"])
+
+
+def _baseline_methods(model, frame: Frame, rule: Rule) -> dict:
+    train_levels, data_levels = level_views(model, frame)
+    (f0, f1), (c0, c1) = model.spans.fit, model.spans.calibration
+    fit = train_levels[f0:f1]
+    base = baseline_scores(fit[np.isfinite(fit).all(axis=1)],
+                           np.vstack([train_levels[c0:c1], data_levels]))
+    base_cal = {k: v[: c1 - c0] for k, v in base.items()}
+    base_all = {k: v[c1 - c0:] for k, v in base.items()}
+    base_cal["rolling z-score"] = rolling_z(train_levels[:c1])[c0:c1]
+    base_all["rolling z-score"] = rolling_z(data_levels)
     methods = {}
-    if bundle is not None:
-        with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
-            feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp))
-            dev = read_scores(run_bundle(bundle.dir, feed, Path(tmp) / "gateway").scores)
-        rows = grid_index(frame, dev["time"].to_numpy())
-        keep = np.ones(len(rows), bool)
-        alert = hold(rows, dev["alert"].to_numpy()[keep].astype(float), n)
-        methods["bundle"] = Method("bundle (int8, gateway path)",
-                                   hold(rows, dev["score"].to_numpy()[keep], n),
-                                   hold(rows, dev["threshold"].to_numpy()[keep], n),
-                                   np.nan_to_num(alert) > 0.5, rule.kind)
-
-    if model is not None:
-        cal_segments = _span_segments(model.segments, model.spans.calibration)
-        window = model.teacher.config.window
-        series = model.scaler.transform(frame.values)
-        if teacher:
-            cal_scores, _ = score_series(model.teacher, model.series, cal_segments, window)
-            scores, _ = score_series(model.teacher, series, segments_in(series), window)
-            pol, levels, alert = rule.apply(cal_scores[np.isfinite(cal_scores)], scores)
-            methods["teacher"] = Method("teacher", scores, levels, alert, pol["kind"])
-        if baselines:
-            train_levels, data_levels = level_views(model, frame)
-            (f0, f1), (c0, c1) = model.spans.fit, model.spans.calibration
-            fit = train_levels[f0:f1]
-            base = baseline_scores(fit[np.isfinite(fit).all(axis=1)],
-                                   np.vstack([train_levels[c0:c1], data_levels]))
-            base_cal = {k: v[: c1 - c0] for k, v in base.items()}
-            base_all = {k: v[c1 - c0:] for k, v in base.items()}
-            base_cal["rolling z-score"] = rolling_z(train_levels[:c1])[c0:c1]
-            base_all["rolling z-score"] = rolling_z(data_levels)
-            for name in BASELINES:
-                pol, levels, alert = rule.apply(base_cal[name], base_all[name])
-                methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
-    if not methods:
-        raise UnusableInput("nothing to evaluate")
-
-    t = frame.times.values[evaluated]
-    for m in methods.values():
-        m.metrics = point_metrics(y[evaluated], m.alert[evaluated])
-        m.metrics.update(event_metrics(t, y[evaluated], m.alert[evaluated], frame.period_s))
-    return EvalResult(source=str(source), data=str(data), times=frame.times, labels=y,
-                      evaluated=evaluated, methods=methods, incidents=inc, rule=rule,
-                      features=f"each point's {len(frame.channels)} channel levels, "
-                               "robust-scaled on the fit span (the data as delivered, whatever "
-                               "the detector watches); rolling z-score over the trailing "
-                               f"{ROLLING_Z_WINDOW} points",
-                      notes=notes)
+    for name in BASELINES:
+        pol, levels, alert = rule.apply(base_cal[name], base_all[name], frame.period_s)
+        methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
+    return methods
 
 
 # ---------------------------------------------------------------------------------------------

@@ -23,7 +23,12 @@ except ModuleNotFoundError:   # Python < 3.11
 
 from ganlet.compile import __version__
 from ganlet.compile.boards import DEFAULT_BOARD, Board, load_board
-from ganlet.compile.calibrate import Calibration, calibrate
+from ganlet.compile.calibrate import (
+    DEFAULT_ALARMS_PER_WEEK,
+    Calibration,
+    agreement_report,
+    calibrate,
+)
 from ganlet.compile.data import (
     IntakeError,
     IntakeOptions,
@@ -42,7 +47,7 @@ from ganlet.compile.quantise import dequantise_weights, quantisation_report, qua
 from ganlet.compile.sizing import StudentPlan, size_student
 from ganlet.compile.train import TrainedModel, load_model, plot_training, save_model, train
 from ganlet.runtime.manifest import MANIFEST_NAME, build_manifest
-from ganlet.runtime.score import score_section
+from ganlet.runtime.scorer import NetworkScorer
 
 STUDENTS_DIR = "students"   # in a model directory: the fp32 students of its bundles
 
@@ -163,6 +168,7 @@ class CompileOptions:
     sign_key: Optional[bytes] = None
     name: Optional[str] = None
     alerting: dict = field(default_factory=dict)   # overrides of the default alert settings
+    alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK   # false-alarm budget on normal data
 
 
 @dataclass
@@ -183,7 +189,9 @@ class CompileResult:
             f"int8 vs fp32 student: Spearman {qs['spearman']:.5f}, max rel error "
             f"{qs['max_rel_error']:.2e}; weights {r['quantisation']['bytes_before']} -> "
             f"{r['quantisation']['bytes_after']} bytes",
-            f"threshold: {r['threshold_kind']} (calibrated on {r['calibration_scores']} scores)",
+            f"score: {r['regimes']['regimes']} operating regime(s); threshold: "
+            f"{r['threshold_kind']} calibrated on {r['calibration_scores']} scores for at most "
+            f"{r['false_alarms']['budget_per_week']:g} false alarm(s) per week on normal data",
             f"bundle {self.bundle}: {r['bytes']['model_and_weights'] / 1024:.1f} KiB without "
             f"the runtime copy ({r['bytes']['total'] / 1024:.1f} KiB in all)"
             + (f"; archive {self.archive}" if self.archive else ""),
@@ -208,9 +216,14 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     started = time.perf_counter()
     fp32 = student.weights()
     qweights = quantise_weights(fp32)
-    cal = calibrate(model, fp32, dequantise_weights(qweights), options.threshold, plan.window,
-                    plan.hop, options.alerting)
     timings["quantise"] = time.perf_counter() - started
+    started = time.perf_counter()
+    device = dequantise_weights(qweights)
+    cal = calibrate(model, NetworkScorer(device, "device"), plan.window, plan.hop,
+                    options.threshold, options.alarms_per_week, options.alerting,
+                    options.distil.seed)
+    cal.report.update(agreement_report(model, cal.score, fp32, device))
+    timings["calibrate"] = time.perf_counter() - started
     started = time.perf_counter()
     manifest = bundle_manifest(model, plan, board, cal, name)
     packed = pack_bundle(out, manifest, qweights, build_onnx(qweights, len(model.channels)),
@@ -233,7 +246,8 @@ def bundle_manifest(model: TrainedModel, plan: StudentPlan, board: Board, cal: C
         scaler=model.scaler.to_json(), window=plan.window, hop=plan.hop,
         network={"encoder": plan.encoder_hidden, "latent": plan.latent,
                  "generator": plan.generator_hidden},
-        score=score_section(), threshold=cal.policy, alerting=cal.alerting,
+        score=cal.score, threshold=cal.policy, alerting=cal.alerting, drift=cal.drift,
+        false_alarms=cal.false_alarms,
         board={"name": board.name, "cpu_class": board.cpu_class,
                "budget": {"storage_kb": board.storage_budget_kb, "ram_mb": board.ram_budget_mb,
                           "hop_ms": plan.hop_seconds_budget * 1e3,

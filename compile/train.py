@@ -29,7 +29,7 @@ from ganlet.compile.data import (
     segments_in,
     windows_from,
 )
-from ganlet.compile.model import Teacher, TeacherConfig, residuals
+from ganlet.compile.model import Teacher, TeacherConfig
 from ganlet.runtime.score import ScoreRule, score_section
 
 Progress = Callable[[str, int, int, dict], None]   # (phase, epoch, epochs, losses)
@@ -179,33 +179,35 @@ def fit_teacher(det: Teacher, x: torch.Tensor, cfg: TeacherConfig,
 
 
 @torch.no_grad()
-def teacher_residuals(det: Teacher, windows: np.ndarray, batch: int = 2048) -> np.ndarray:
-    """Per-channel residuals [N, C] of scaled windows [N, L, C] through E then G."""
+def teacher_reconstruct(det: Teacher, windows: np.ndarray, batch: int = 2048) -> np.ndarray:
+    """G(E(x)) [N, L, C] of scaled windows [N, L, C]."""
     det.encoder.eval()
     det.generator.eval()
     out = []
     for k in range(0, len(windows), batch):
         x = torch.from_numpy(np.ascontiguousarray(windows[k:k + batch], dtype=np.float32))
-        out.append(residuals(x, det.reconstruct(x)).numpy())
-    return np.concatenate(out) if out else np.zeros((0, windows.shape[-1]), np.float32)
+        out.append(det.reconstruct(x).numpy())
+    return np.concatenate(out) if out else np.zeros((0,) + windows.shape[1:], np.float32)
 
 
-def score_windows(det: Teacher, windows: np.ndarray):
-    """(scores [N], residuals [N, C]): the teacher's residuals under the gateway's score rule."""
-    res = teacher_residuals(det, windows)
-    return ScoreRule(score_section()).apply(res)[0], res
+def score_windows(det: Teacher, windows: np.ndarray, score: Optional[dict] = None):
+    """(scores [N], residuals [N, C]): the teacher under the gateway's score rule (a manifest
+    score section; default the uncalibrated whole-window mean)."""
+    rule = ScoreRule(score or score_section())
+    scores, _, res = rule.score(windows, teacher_reconstruct(det, windows))
+    return scores, res
 
 
 class TeacherScorer:
-    """The teacher as a network backend (residuals of windows), for the gateway's detector."""
+    """The teacher as a network backend (reconstructions), for the gateway's detector."""
 
     name = "teacher"
 
     def __init__(self, det: Teacher):
         self.det = det
 
-    def residuals(self, windows) -> np.ndarray:
-        return teacher_residuals(self.det, np.asarray(windows, np.float32))
+    def reconstruct(self, windows) -> np.ndarray:
+        return teacher_reconstruct(self.det, np.asarray(windows, np.float32))
 
 
 def score_series(det: Teacher, series: np.ndarray, segments, window: int, hop: int = 1):

@@ -294,7 +294,8 @@ class Detector:
             if offset.any():
                 window = (window - offset).astype(np.float32)
                 means = means - offset
-        residuals = self.scorer.residuals(window[None])
+        recon = self.scorer.reconstruct(window[None])
+        residuals = self.rule.residuals(window[None], recon)
         scores, parts = self.rule.apply(residuals, means[None])
         self.counters["hops"] += 1
         self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],

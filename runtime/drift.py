@@ -14,17 +14,22 @@ Per channel c, in scaled units (robust standard deviations of the fit span), eac
     excess   e_c = max(m_c - hi_c, lo_c - m_c, 0)
     speed    |m_c - m_c one window earlier|, against v_max_c: the largest such change of the
              training span ("normal operation can move this fast")
-A channel enters drift when e_c > 0, its speed <= v_max_c, and it is not among the channels of
-an open or pending alert; it stays in drift while e_c > 0. While in drift the network sees
-x_c - sign(m_c) * e_c (the excess removed), so neither that channel nor the others score it.
+A channel enters drift when e_c > MARGIN (its window mean is a full robust standard deviation
+of the channel beyond every training window: smaller excursions are the envelope's own sampling
+error), its speed <= v_max_c, and it is not among the channels of an open or pending alert; while in drift the network sees x_c - sign(m_c) * e_c (the excess
+removed), so neither that channel nor the others score it. The drift ends once the channel has
+been back inside its envelope for one window's worth of hops (an excursion hovering at the edge
+is one drift, not a flicker of many).
 Events: `drift` when a channel enters drift (channel, how far in robust sigmas, since when, which
-side), `drift_ended` when it is back inside (with the largest excess seen).
+side), `drift_ended` when it is over (with the largest excess seen).
 """
 
 from collections import deque
 from typing import Sequence
 
 import numpy as np
+
+MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
 
 
 def drift_section(lo, hi, v_max) -> dict:
@@ -46,8 +51,10 @@ class DriftMonitor:
             raise ValueError("drift: need finite lo <= hi and v_max >= 0 per channel")
         self.channels = list(channels)
         self.in_drift = np.zeros(n, dtype=bool)
+        self.reported = np.zeros(n, dtype=bool)
         self.since = [None] * n  # type: List[Optional[str]]
         self.peak = np.zeros(n)
+        self.inside = np.zeros(n, dtype=np.int64)  # hops back inside, per channel in drift
         # window means one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -63,35 +70,49 @@ class DriftMonitor:
         e = self.excess(m)
         events = []
         for c in range(len(m)):
-            if self.in_drift[c] and e[c] <= 0:
-                events.append({"event": "drift_ended", "channel": self.channels[c],
-                               "time": time_text, "since": self.since[c],
-                               "peak_excess": round(float(self.peak[c]), 6)})
-                self.in_drift[c], self.since[c] = False, None
-            elif self.in_drift[c]:
+            if self.in_drift[c]:
+                self.inside[c] = self.inside[c] + 1 if e[c] <= 0 else 0
                 self.peak[c] = max(self.peak[c], e[c])
+                if self.inside[c] >= self.past.maxlen:
+                    events += self._end(c, time_text)
             elif e[c] > 0 and not blocked[c] and speed[c] <= self.v_max[c]:
                 self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
+            if self.in_drift[c] and not self.reported[c] and e[c] > MARGIN:
+                self.reported[c] = True
                 events.append({"event": "drift", "channel": self.channels[c],
-                               "time": time_text, "excess": round(float(e[c]), 6),
+                               "time": time_text, "since": self.since[c],
+                               "excess": round(float(e[c]), 6),
                                "side": "above" if m[c] > self.hi[c] else "below",
                                "action": "re-centred onto the training range; collect fresh "
                                          "normal data and retrain"})
         offset = np.where(self.in_drift, np.where(m > self.hi, e, -e), 0.0)
         return offset, events
 
+    def _end(self, c: int, time_text: str) -> list:
+        events = []
+        if self.reported[c]:
+            events.append({"event": "drift_ended", "channel": self.channels[c],
+                           "time": time_text, "since": self.since[c],
+                           "peak_excess": round(float(self.peak[c]), 6)})
+        self.in_drift[c], self.reported[c] = False, False
+        self.since[c], self.inside[c] = None, 0
+        return events
+
     def reset(self) -> None:
         """After a long gap the window one window earlier is gone."""
         self.past.clear()
 
     def state(self) -> dict:
-        return {"in_drift": [bool(v) for v in self.in_drift], "since": list(self.since),
-                "peak": [float(v) for v in self.peak],
+        return {"in_drift": [bool(v) for v in self.in_drift],
+                "reported": [bool(v) for v in self.reported], "since": list(self.since),
+                "peak": [float(v) for v in self.peak], "inside": [int(v) for v in self.inside],
                 "past": [[float(v) for v in m] for m in self.past]}
 
     def restore(self, d: dict) -> None:
         self.in_drift = np.asarray(d["in_drift"], dtype=bool)
+        self.reported = np.asarray(d["reported"], dtype=bool)
         self.since = list(d["since"])
         self.peak = np.asarray(d["peak"], dtype=np.float64)
+        self.inside = np.asarray(d["inside"], dtype=np.int64)
         self.past.clear()
         self.past.extend(np.asarray(m, dtype=np.float64) for m in d["past"])

@@ -1,9 +1,13 @@
-"""The score rule: a window's per-channel residuals -> one score and each channel's part.
+"""The score rule: a window and its reconstruction -> one score and each channel's part.
 
 The network (lstm.py, or model.onnx in onnxruntime, or the teacher on the workstation) gives
-each window's per-channel residual res[c] = mean over time of (x - G(E(x)))^2. This module is
-the one place that turns residuals into the score every backend reports, so teacher, student,
-ONNX and numpy can only differ by their network arithmetic.
+each window's reconstruction r = G(E(x)). This module is the one place that turns it into the
+score every backend reports, so teacher, student, ONNX and numpy can only differ by their
+network arithmetic:
+
+    res[c] = mean over the newest `steps` steps of (x - r)^2     (manifest score.steps; all
+             steps when absent). The LSTMs are causal: the newest steps are reconstructed with
+             the most context, and a fault that has left them no longer holds the score up.
 
 Uncalibrated (manifest score = {"combine": "mean"}): parts[c] = res[c], score = mean of parts.
 
@@ -19,7 +23,7 @@ A channel's share in an alert is its share of the summed contributions over the 
 the squared parts for rms (they add up to the squared score), the parts otherwise.
 """
 
-from typing import Tuple
+from typing import Optional, Tuple
 
 import numpy as np
 
@@ -28,9 +32,12 @@ RESIDUAL_TEXT = ("mean over the window of the squared reconstruction error x - G
                  "channel, on robust-scaled inputs")
 
 
-def score_section(centres=None, scale=None, combine: str = "mean") -> dict:
+def score_section(centres=None, scale=None, combine: str = "mean",
+                  steps: Optional[int] = None) -> dict:
     """The manifest's `score` section: uncalibrated, or with regime centres and scales."""
     section = {"residual": RESIDUAL_TEXT, "combine": combine}
+    if steps is not None:
+        section["steps"] = int(steps)
     if centres is not None:
         section["regimes"] = {"centres": [[float(v) for v in row] for row in centres],
                               "scale": [[float(v) for v in row] for row in scale]}
@@ -46,6 +53,9 @@ class ScoreRule:
             raise ValueError(f"score.combine {combine!r} unknown; this runtime knows "
                              f"{', '.join(COMBINE_RULES)}")
         self.combine = combine
+        self.steps = section.get("steps")
+        if self.steps is not None and not (isinstance(self.steps, int) and self.steps >= 1):
+            raise ValueError(f"score.steps must be an integer >= 1, got {self.steps!r}")
         self.centres = self.scale = None  # type: Optional[np.ndarray]
         regimes = section.get("regimes")
         if regimes is not None:
@@ -60,6 +70,23 @@ class ScoreRule:
     @property
     def calibrated(self) -> bool:
         return self.scale is not None
+
+    def residuals(self, windows, recon) -> np.ndarray:
+        """[N, L, C] windows and reconstructions -> [N, C] mean squared error of the newest
+        `steps` steps (float32, as the ONNX graph's ReduceMean)."""
+        x = np.asarray(windows, dtype=np.float32)
+        r = np.asarray(recon, dtype=np.float32)
+        if self.steps is not None:
+            x, r = x[:, -self.steps:], r[:, -self.steps:]
+        err = x - r
+        return np.mean(err * err, axis=1, dtype=np.float32)
+
+    def score(self, windows, recon) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(scores [N], parts [N, C], residuals [N, C]) of windows and their reconstructions;
+        the regime comes from the windows' per-channel means."""
+        res = self.residuals(windows, recon)
+        scores, parts = self.apply(res, np.asarray(windows, np.float64).mean(axis=1))
+        return scores, parts, res
 
     def regime(self, means) -> np.ndarray:
         """The nearest regime centre to each window's per-channel means [N, C] -> [N]."""

@@ -1,13 +1,14 @@
-"""Network backends: per-channel residuals from the numpy LSTM or from onnxruntime.
+"""Network backends: reconstructions from the numpy LSTM or from onnxruntime.
 
-Both take scaled float32 windows [N, L, C] and return residuals [N, C]; score.py turns them into
-the score for both, so the two backends can only differ by the network arithmetic itself.
+Both take scaled float32 windows [N, L, C] and return G(E(x)) [N, L, C]; score.py turns window
+and reconstruction into the score for both, so the two backends can only differ by the network
+arithmetic itself.
 """
 
 import numpy as np
 
 from .lstm import Network
-from .manifest import ONNX_INPUT, ONNX_RESIDUALS, BundleError
+from .manifest import ONNX_INPUT, ONNX_RECONSTRUCTION, BundleError
 
 BACKENDS = ("auto", "numpy", "onnxruntime")
 
@@ -28,8 +29,8 @@ class NetworkScorer:
         self.network = Network(weights)
         self.n_channels = self.network.n_channels
 
-    def residuals(self, windows) -> np.ndarray:
-        return self.network.forward(_as_windows(windows, self.n_channels))[1]
+    def reconstruct(self, windows) -> np.ndarray:
+        return self.network.reconstruct(_as_windows(windows, self.n_channels))
 
 
 class OnnxRuntimeScorer:
@@ -48,16 +49,17 @@ class OnnxRuntimeScorer:
         )
         inputs = [i.name for i in self.session.get_inputs()]
         outputs = [o.name for o in self.session.get_outputs()]
-        if ONNX_INPUT not in inputs or ONNX_RESIDUALS not in outputs:
+        if ONNX_INPUT not in inputs or ONNX_RECONSTRUCTION not in outputs:
             raise BundleError(
                 f"{bundle.onnx_path}: expected input {ONNX_INPUT!r} and output "
-                f"{ONNX_RESIDUALS!r}, found inputs {inputs} outputs {outputs}; re-pack the bundle"
+                f"{ONNX_RECONSTRUCTION!r}, found inputs {inputs} outputs {outputs}; re-pack "
+                "the bundle"
             )
 
-    def residuals(self, windows) -> np.ndarray:
+    def reconstruct(self, windows) -> np.ndarray:
         w = _as_windows(windows, self.n_channels)
-        (residuals,) = self.session.run([ONNX_RESIDUALS], {ONNX_INPUT: w})
-        return np.asarray(residuals, dtype=np.float32)
+        (recon,) = self.session.run([ONNX_RECONSTRUCTION], {ONNX_INPUT: w})
+        return np.asarray(recon, dtype=np.float32)
 
 
 def onnxruntime_available() -> bool:

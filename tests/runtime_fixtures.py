@@ -92,11 +92,12 @@ def windows_of(x: np.ndarray, window: int, hop: int) -> np.ndarray:
     return np.stack([x[s:s + window] for s in starts]).astype(np.float32)
 
 
-def direct_scores(bundle_dir, x_scaled: np.ndarray, window: int, hop: int) -> np.ndarray:
-    """Scores computed here, straight from Network.forward on the bundle's own weights."""
+def direct_scores(bundle_dir, x_scaled: np.ndarray, window: int, hop: int,
+                  score: Optional[dict] = None) -> np.ndarray:
+    """Scores computed here, straight from Network.reconstruct on the bundle's own weights."""
     net = Network(load_weights(Path(bundle_dir) / "weights.npz"))
-    _, res = net.forward(windows_of(x_scaled, window, hop))
-    return ScoreRule(score_section()).apply(res)[0]
+    w = windows_of(x_scaled, window, hop)
+    return ScoreRule(score or score_section()).score(w, net.reconstruct(w))[0]
 
 
 def build_bundle(
@@ -113,6 +114,8 @@ def build_bundle(
     calibrate_on: Optional[np.ndarray] = None,
     features: Optional[List[str]] = None,
     center: Sequence[float] = CENTER,
+    score: Optional[dict] = None,
+    drift: Optional[dict] = None,
 ) -> Path:
     """A complete bundle folder. threshold=None -> static level from calibrate_on's scores.
     features=None watches every channel's level."""
@@ -137,7 +140,7 @@ def build_bundle(
 
     if threshold is None:
         base = calibrate_on if calibrate_on is not None else raw_values(600, seed=99)
-        s = direct_scores(bundle_dir, scaled(base), window, hop)
+        s = direct_scores(bundle_dir, scaled(base), window, hop, score)
         threshold = {"kind": "static", "level": float(np.quantile(s, 0.99) * 1.5)}
     manifest = build_manifest(
         name="fixture-pump", time_column="time", channels=CHANNELS, period_s=period_s,
@@ -145,7 +148,7 @@ def build_bundle(
         scaler={"kind": "robust", "center": list(center), "scale": list(SCALE),
                 "features": list(features or ["level"] * len(CHANNELS))},
         window=window, hop=hop, network={"encoder": [8], "latent": 3, "generator": [8]},
-        score=score_section(), threshold=threshold,
+        score=score or score_section(), threshold=threshold, drift=drift,
         alerting=alerting or {"warmup_hops": 2, "min_hops": 2, "close_ratio": 0.8,
                               "cooldown_hops": 2},
         board={"name": "test-board",  # key names as compile/pack.py writes them

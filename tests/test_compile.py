@@ -200,8 +200,19 @@ def test_manifest_describes_the_detector(teacher, bundle):
     assert m["window"] == TINY.window and m["hop"] == plan.hop
     assert m["network"]["encoder"] == list(plan.encoder_hidden)
     assert m["network"]["generator"] == list(plan.generator_hidden)
-    assert m["score"]["combine"] == "mean" and "residual" in m["score"]
-    assert m["threshold"]["kind"] in ("pot", "rolling")
+    assert m["score"]["combine"] == "rms" and "residual" in m["score"]
+    regimes = m["score"]["regimes"]
+    assert np.shape(regimes["centres"]) == np.shape(regimes["scale"])
+    assert np.shape(regimes["centres"])[1] == 3 and (np.asarray(regimes["scale"]) > 0).all()
+    # a 300-row calibration span is plenty for the tail fit: no fallback
+    assert m["threshold"]["kind"] == "pot"
+    # the false-alarm budget the threshold was calibrated to: q = budget x hop period / week
+    fa = m["false_alarms"]
+    assert fa["budget_per_week"] == 1.0
+    assert fa["risk_per_hop"] == pytest.approx(60.0 * m["hop"] / (7 * 86400))
+    assert m["threshold"]["q"] <= fa["risk_per_hop"]
+    for key in ("lo", "hi", "v_max"):
+        assert len(m["drift"][key]) == 3
     # the default board when --board is omitted
     assert m["board"]["name"] == DEFAULT_BOARD
     budget, estimate = m["board"]["budget"], m["board"]["estimate"]

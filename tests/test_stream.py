@@ -185,9 +185,8 @@ def test_numpy_and_onnxruntime_agree(bundle_dir, tmp_path):
     b = load_bundle(bundle_dir)
     w = fx.windows_of(fx.scaled(values), WINDOW, HOP)
     rule = ScoreRule(b.manifest["score"])
-    r1 = make_scorer(b, "numpy").residuals(w)
-    r2 = make_scorer(b, "onnxruntime").residuals(w)
-    (s1, _), (s2, _) = rule.apply(r1), rule.apply(r2)
+    s1, _, r1 = rule.score(w, make_scorer(b, "numpy").reconstruct(w))
+    s2, _, r2 = rule.score(w, make_scorer(b, "onnxruntime").reconstruct(w))
     np.testing.assert_allclose(r2, r1, rtol=1e-5, atol=1e-7)
     np.testing.assert_allclose(s2, s1, rtol=1e-5)
 

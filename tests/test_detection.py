@@ -1,0 +1,186 @@
+"""What the detector decides, on data built so the right answer is known: a calibrated score with
+one scale across operating regimes, drift reported once instead of a flood of alerts, and a
+fault on another channel still alerted during a drift."""
+
+import io
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+import runtime_fixtures as fx
+
+from ganlet.compile.calibrate import envelope, risk_per_hop
+from ganlet.runtime.cli import main
+
+WINDOW, HOP = 16, 4
+
+
+def stream_events(bundle_dir, values, tmp_path, name):
+    path = tmp_path / f"{name}.csv"
+    fx.write_csv(path, values)
+    out = io.StringIO()
+    import contextlib
+
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(io.StringIO()):
+        code = main(["stream", "--input", str(path), "--backend", "numpy", "--heartbeat", "0",
+                     "--checkpoint-every", "0"], bundle_dir=bundle_dir)
+    assert code == 0
+    return [json.loads(line) for line in out.getvalue().splitlines()]
+
+
+def of(events, kind):
+    return [e for e in events if e["event"] == kind]
+
+
+@pytest.fixture(scope="module")
+def drift_bundles(tmp_path_factory):
+    """The same tiny bundle with and without a drift section fitted on normal rows."""
+    root = tmp_path_factory.mktemp("drift")
+    normal = fx.raw_values(600, seed=99)
+    section = envelope(fx.scaled(normal), WINDOW)
+    return {"with": fx.build_bundle(root / "with", window=WINDOW, hop=HOP, drift=section,
+                                    alerting={"warmup_hops": 0, "min_hops": 2,
+                                              "close_ratio": 0.8, "cooldown_hops": 4}),
+            "without": fx.build_bundle(root / "without", window=WINDOW, hop=HOP,
+                                       alerting={"warmup_hops": 0, "min_hops": 2,
+                                                 "close_ratio": 0.8, "cooldown_hops": 4}),
+            "section": section}
+
+
+def ramp_with_spike(n=480, spike_at=None):
+    """Normal rows, then `flow` ramps slowly (about 1/20 of a robust sigma per row) to ~12 sigma
+    beyond anything the normal rows held; optionally a +8 sigma burst on `pressure`."""
+    values = fx.raw_values(n, seed=5)
+    start = 120
+    values[start:, 0] += fx.SCALE[0] * np.linspace(0.0, 14.0, n - start)
+    if spike_at is not None:
+        values[spike_at:spike_at + 6, 1] += 8.0 * fx.SCALE[1]
+    return values
+
+
+def test_slow_ramp_is_one_drift_event_and_no_alert(drift_bundles, tmp_path):
+    events = stream_events(drift_bundles["with"], ramp_with_spike(), tmp_path, "ramp")
+    drifts = of(events, "drift")
+    assert [d["channel"] for d in drifts] == ["flow"]
+    assert drifts[0]["side"] == "above" and drifts[0]["excess"] > 0
+    assert of(events, "alert_opened") == []
+    # without drift handling the same ramp alerts: the test above can fail
+    plain = stream_events(drift_bundles["without"], ramp_with_spike(), tmp_path, "plain")
+    assert len(of(plain, "alert_opened")) >= 1
+    assert of(plain, "drift") == []
+
+
+def test_a_fault_on_another_channel_during_the_drift_is_alerted(drift_bundles, tmp_path):
+    events = stream_events(drift_bundles["with"], ramp_with_spike(spike_at=400), tmp_path, "sp")
+    opened = of(events, "alert_opened")
+    assert len(opened) == 1
+    assert opened[0]["channels"][0]["name"] == "pressure"
+    # the alert starts at the burst (hops are 1 s apart from fx.T0), not during the ramp
+    opened_at = pd.Timestamp(opened[0]["opened"]).timestamp()
+    assert fx.T0 + 400 - WINDOW <= opened_at <= fx.T0 + 400 + WINDOW
+    assert [d["channel"] for d in of(events, "drift")] == ["flow"]
+
+
+def test_drift_state_survives_a_restart(drift_bundles, tmp_path):
+    values = ramp_with_spike()
+    once = stream_events(drift_bundles["with"], values, tmp_path, "once")
+    path = tmp_path / "feed.csv"
+    lines = fx.write_csv(path, values)
+    state = tmp_path / "state.json"
+    drifts = []
+    for part in (lines[:300], lines[:1] + lines[300:]):
+        path.write_text("\n".join(part) + "\n")
+        out = io.StringIO()
+        import contextlib
+
+        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(io.StringIO()):
+            main(["stream", "--input", str(path), "--state", str(state), "--heartbeat", "0",
+                  "--checkpoint-every", "0", "--backend", "numpy"],
+                 bundle_dir=drift_bundles["with"])
+        drifts += [json.loads(x) for x in out.getvalue().splitlines()
+                   if '"event":"drift"' in x]
+    # one drift in all: the second run resumed inside it instead of announcing it again
+    assert [d["channel"] for d in drifts] == [d["channel"] for d in of(once, "drift")] == ["flow"]
+
+
+def test_envelope_matches_pandas_rolling():
+    x = fx.scaled(fx.raw_values(300, seed=3)).astype(np.float64)
+    section = envelope(x, WINDOW)
+    # reference: pandas rolling mean (window means), min / max, and their change over a window
+    m = pd.DataFrame(x).rolling(WINDOW).mean()
+    np.testing.assert_allclose(section["lo"], m.min().to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(section["hi"], m.max().to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(section["v_max"], m.diff(WINDOW).abs().max().to_numpy(),
+                               rtol=1e-9)
+
+
+def test_false_alarm_budget_to_risk_per_hop():
+    # worked by hand: 1 alarm a week, one hop every 60 s -> 1 / 10080 per hop
+    assert risk_per_hop(1.0, 60.0, 1) == pytest.approx(1 / 10080)
+    # a hop of 4 periods of 1 s: 151,200 hops a week; a budget of 2 -> 2 / 151200
+    assert risk_per_hop(2.0, 1.0, 4) == pytest.approx(2 / 151200)
+    with pytest.raises(ValueError, match="must be > 0"):
+        risk_per_hop(0.0, 1.0, 1)
+
+
+def two_regimes(n: int, seed: int, block: int = 240) -> tuple:
+    """Three channels following one slow signal; alternate blocks of a quiet regime (noise sd
+    0.05) and a busy one (level +6, noise sd 0.5: ten times the quiet noise). Returns
+    (frame, regime per row)."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n)
+    busy = (t // block) % 2 == 1
+    signal = np.sin(2 * np.pi * t / 60.0)
+    sd = np.where(busy, 0.5, 0.05)[:, None]
+    level = np.where(busy, 6.0, 0.0)[:, None]
+    x = level + np.stack([signal, 0.5 * signal, -signal], axis=1) + sd * rng.standard_normal(
+        (n, 3))
+    times = pd.date_range("2026-02-02", periods=n, freq="60s")
+    df = pd.DataFrame({"time": times, "a": x[:, 0], "b": x[:, 1], "c": x[:, 2]})
+    return df, busy
+
+
+def test_calibrated_score_has_one_scale_across_regimes(tmp_path):
+    """Issue 11: on a series whose noise differs 10x between two regimes, the 99th percentile
+    of normal scores differs by less than 1.5x between regimes under the calibrated score, while
+    the uncalibrated mean residual differs by far more (so the test can fail)."""
+    import torch
+
+    from ganlet.compile.calibrate import calibrated_bundle, detector_bundle
+    from ganlet.compile.data import load_frame, split_spans
+    from ganlet.compile.model import TeacherConfig
+    from ganlet.compile.train import TeacherScorer, train
+    from ganlet.compile.verify import replay_feed
+    from ganlet.runtime.score import score_section
+
+    torch.set_num_threads(1)
+    df, busy = two_regimes(3840, seed=1)
+    train_csv, test_csv = tmp_path / "train.csv", tmp_path / "test.csv"
+    df.iloc[:2880].to_csv(train_csv, index=False)
+    df.iloc[2880:].to_csv(test_csv, index=False)
+    frame = load_frame(train_csv)
+    cfg = TeacherConfig(window=16, adversarial_epochs=2, inversion_epochs=15,
+                        encoder_hidden=(16,), generator_hidden=(8, 16), max_train_windows=1200)
+    model = train(frame, split_spans(frame, None, 0.3), cfg)
+    scorer = TeacherScorer(model.teacher)
+    bundle = calibrated_bundle(model, scorer, 16, 1)
+    assert len(bundle.manifest["score"]["regimes"]["centres"]) >= 2
+    plain = detector_bundle(model, 16, 1, score_section(), {"kind": "static", "level": 1e300},
+                            bundle.alerting, bundle.manifest["drift"])
+
+    def p99_ratio(b):
+        r = replay_feed(b, scorer, test_csv)
+        rows = 2880 + np.searchsorted(df["time"].to_numpy()[2880:], r.times)
+        # windows lying wholly inside one regime
+        whole = np.array([busy[k - 15:k + 1].all() or not busy[k - 15:k + 1].any()
+                          for k in rows])
+        quiet = np.percentile(r.score[whole & ~busy[rows]], 99)
+        loud = np.percentile(r.score[whole & busy[rows]], 99)
+        return max(quiet, loud) / min(quiet, loud)
+
+    calibrated, uncalibrated = p99_ratio(bundle), p99_ratio(plain)
+    print(f"\np99 of normal scores, busy vs quiet regime: calibrated {calibrated:.2f}x, "
+          f"uncalibrated mean residual {uncalibrated:.2f}x")
+    assert calibrated < 1.5
+    assert uncalibrated > 3.0
