@@ -288,7 +288,7 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
         from ganlet.runtime.manifest import BundleError, load_bundle
 
         try:
-            bundle = load_bundle(source)
+            bundle = load_bundle(source, skip_signature=True)  # detection, not trust
         except BundleError as exc:
             raise UnusableInput(f"bundle refused: {exc}") from None
         model = load_model(model_dir) if model_dir is not None else None

@@ -169,6 +169,19 @@ class ScoresCsvSink:
     def recovery_state(self) -> dict:
         return {"offset": self.good, "repair": True}
 
+    def abandon(self) -> None:
+        """After a store failure: close without the flush that would fail again, and cut a
+        torn last row off at once (truncating needs no free space)."""
+        try:
+            self.fh.close()
+        except OSError:
+            pass  # the unwritten buffer is dropped; its rows are counted as missed
+        try:
+            if self.path.stat().st_size > self.good:
+                os.truncate(str(self.path), self.good)
+        except OSError:
+            pass
+
     def close(self) -> None:
         if not self.fh.closed:
             try:

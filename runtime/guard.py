@@ -102,8 +102,9 @@ class GuardedSink:
             self._fail(exc)
             return False
         now = self.clock()
+        since = now if self.down_since is None else self.down_since
         self.report({"event": "sink_recovered", "sink": self.name,
-                     "down_s": round(now - (self.down_since or now), 3), "missed": self.missed,
+                     "down_s": round(now - since, 3), "missed": self.missed,
                      "replayed": len(self.pending)})
         self.failures, self.missed, self.down_since = 0, 0, None
         self.pending.clear()
@@ -123,7 +124,12 @@ class GuardedSink:
         if self.sink is not None:
             recovery = getattr(self.sink, "recovery_state", None)
             self.recovery = recovery() if recovery is not None else self.recovery
-            self.close()
+            abandon = getattr(self.sink, "abandon", None)
+            if abandon is not None:
+                abandon()
+                self.sink = None
+            else:
+                self.close()
         elif isinstance(self.recovery, dict):
             # a store that could not even be opened: a retry takes the file as it finds it
             self.recovery = dict(self.recovery, repair=True)
