@@ -291,3 +291,21 @@ def test_an_unlisted_data_file_is_not_used(copy_of):
     (bundle / "manifest.json").write_text(json.dumps(m, sort_keys=True, indent=2) + "\n")
     with pytest.raises(BundleError, match="network.weights 'other.npz' is not a listed file"):
         load_bundle(bundle)
+
+
+def test_run_py_is_python39_and_standard_library_only():
+    import ast
+
+    from ganlet.runtime.entry import RUN_PY
+
+    # reference: CPython's own parser with the 3.9 grammar (ast.parse feature_version)
+    tree = ast.parse(RUN_PY, feature_version=(3, 9))
+    imported = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            imported |= {a.name.split(".")[0] for a in node.names}
+        elif isinstance(node, ast.ImportFrom) and node.level == 0:
+            imported.add(node.module.split(".")[0])
+    # ganlet: only after the checks (_import_runtime); cryptography: optional, lazily
+    assert imported <= set(sys.stdlib_module_names) | {"ganlet", "cryptography"}
+    assert "numpy" not in imported
