@@ -7,6 +7,7 @@ would need to reach.
 from __future__ import annotations
 
 import json
+import os
 import sys
 import warnings
 from contextlib import contextmanager
@@ -195,7 +196,8 @@ def compile_cmd(
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
     alarms_per_week: float = typer.Option(1.0, "--false-alarms-per-week", min=1e-6, help="False-alarm budget on normal data the threshold is calibrated to (pot)."),
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
-    sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac)."),
+    sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac); the gateway then needs the same secret."),
+    sign_ed25519: Optional[Path] = typer.Option(None, "--sign-ed25519", help="PEM Ed25519 private key (`ganlet keypair`): sign the manifest (manifest.ed25519); the gateway checks it with the public key alone."),
     name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest and used for file and service names on the gateway: letters, digits, '.', '_', '-' (default: the model folder's name)."),
     distil_epochs: int = typer.Option(80, "--distil-epochs", min=1, help="Distillation epochs."),
     seed: int = typer.Option(0, help="Random seed of the distillation."),
@@ -208,11 +210,13 @@ def compile_cmd(
 
     with user_errors():
         key = read_key(sign_key) if sign_key else None
+        private_key = read_private_key(sign_ed25519) if sign_ed25519 else None
         if not (model_dir / "model.json").exists():
             raise UsageProblem(f"{model_dir} is not a model directory (no model.json); "
                                "create one with `ganlet train DATA --out DIR`")
         options = CompileOptions(board=board, threshold=threshold, archive=archive, sign_key=key,
                                  alarms_per_week=alarms_per_week,
+                                 ed25519_key=private_key,
                                  name=name or safe_name(model_dir.resolve().name),
                                  distil=DistilConfig(epochs=distil_epochs, seed=seed))
         progress, stop = progress_printer(quiet)
@@ -236,6 +240,62 @@ def read_key(path: Path) -> bytes:
         return read_key_file(path)
     except BundleError as exc:
         raise UsageProblem(str(exc)) from None
+
+
+def read_private_key(path: Path) -> bytes:
+    """A PEM Ed25519 private key, tried on a signature now rather than after distillation."""
+    from ganlet.runtime.trust import BundleError, ed25519_sign
+
+    if not path.exists():
+        raise UsageProblem(f"key file {path} not found")
+    data = path.read_bytes()
+    try:
+        ed25519_sign(data, b"")
+    except BundleError as exc:
+        raise UsageProblem(f"{path}: {exc}") from None
+    return data
+
+
+@app.command()
+def keypair(
+    prefix: Path = typer.Argument(..., help="Path prefix of the two files to write, e.g. keys/site-7."),
+):
+    """Make an Ed25519 key pair for signing bundles: PREFIX.ed25519-private.pem (stays on the
+    workstation, mode 0600) and PREFIX.ed25519-public.pem (goes to the gateways). The same as
+    `openssl genpkey -algorithm ed25519 -out P.pem && openssl pkey -in P.pem -pubout`."""
+    from ganlet.runtime.trust import BundleError, ed25519_public_pem
+
+    with user_errors():
+        private = prefix.with_name(prefix.name + ".ed25519-private.pem")
+        public = prefix.with_name(prefix.name + ".ed25519-public.pem")
+        for path in (private, public):
+            if path.exists():
+                raise UsageProblem(f"{path} exists; keys are never overwritten")
+        try:
+            pem = new_private_pem()
+            public_pem = ed25519_public_pem(pem)
+        except BundleError as exc:
+            raise UsageProblem(str(exc)) from None
+        prefix.parent.mkdir(parents=True, exist_ok=True)
+        fd = os.open(private, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(pem)
+        public.write_bytes(public_pem)
+        typer.echo(f"private key: {private} (keep it on the workstation; compile --sign-ed25519)")
+        typer.echo(f"public key:  {public} (copy it to the gateways; run.py --public-key)")
+
+
+def new_private_pem() -> bytes:
+    from ganlet.runtime.trust import CRYPTO_HINT
+
+    try:
+        from cryptography.hazmat.primitives import serialization
+        from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+    except ImportError:
+        raise UsageProblem(f"making keys needs the cryptography package; {CRYPTO_HINT}") from None
+    return Ed25519PrivateKey.generate().private_bytes(
+        serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
+        serialization.NoEncryption())
 
 
 @app.command()

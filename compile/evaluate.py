@@ -332,7 +332,7 @@ def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_
         rule = Rule(threshold, default_alerting(model.teacher.config.window, 1), alarms_per_week)
         return None, model, rule, notes
     try:
-        bundle = load_bundle(source)
+        bundle = load_bundle(source, skip_signature=True)  # detection, not trust
     except BundleError as exc:
         raise UnusableInput(f"bundle refused: {exc}") from None
     model = load_model(model_dir) if model_dir is not None else None

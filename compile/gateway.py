@@ -69,7 +69,7 @@ def run_bundle(bundle_dir: Path, feed: Path, out_dir: Path, backend: str = "nump
         stale.unlink(missing_ok=True)
     cmd = [sys.executable, str(Path(bundle_dir) / "run.py"), "stream", "--input", str(feed),
            "--scores-out", str(scores), "--backend", backend, "--score-every", "0",
-           "--heartbeat", "0", "--checkpoint-every", "0", *extra]
+           "--heartbeat", "0", "--checkpoint-every", "0", "--skip-signature", *extra]
     proc = subprocess.run(cmd, capture_output=True, text=True)
     (out_dir / "events.jsonl").write_text(proc.stdout)
     if proc.returncode != 0:

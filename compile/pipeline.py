@@ -42,7 +42,8 @@ from ganlet.compile.data import (
 from ganlet.compile.distil import DistilConfig, distil
 from ganlet.compile.export import build_onnx
 from ganlet.compile.model import TeacherConfig
-from ganlet.compile.pack import INSTALL_TXT, check_name, check_out, pack_bundle
+from ganlet.compile.pack import check_name, check_out, pack_bundle, service_unit
+from ganlet.compile.pack import install_text as install_notes
 from ganlet.compile.quantise import dequantise_weights, quantisation_report, quantise_weights
 from ganlet.compile.sizing import StudentPlan, size_student
 from ganlet.compile.train import TrainedModel, load_model, plot_training, save_model, train
@@ -165,7 +166,8 @@ class CompileOptions:
     threshold: str = "pot"
     distil: DistilConfig = field(default_factory=DistilConfig)
     archive: bool = False
-    sign_key: Optional[bytes] = None
+    sign_key: Optional[bytes] = None       # HMAC secret -> manifest.hmac
+    ed25519_key: Optional[bytes] = None    # PEM private key -> manifest.ed25519
     name: Optional[str] = None
     alerting: dict = field(default_factory=dict)   # overrides of the default alert settings
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK   # false-alarm budget on normal data
@@ -227,8 +229,10 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     started = time.perf_counter()
     manifest = bundle_manifest(model, plan, board, cal, name)
     packed = pack_bundle(out, manifest, qweights, build_onnx(qweights, len(model.channels)),
-                         install_text(model, board, name, out), board.storage_budget_kb,
-                         options.sign_key, options.archive)
+                         install_text(model, board, name, out, signing_kinds(options)),
+                         board.storage_budget_kb, options.sign_key, options.archive,
+                         ed25519_key=options.ed25519_key,
+                         unit=service_unit(name, signing_kinds(options)))
     timings["pack"] = time.perf_counter() - started
     report = {**cal.report, "seconds": timings, "bytes": packed.bytes,
               "quantisation": {k: v for k, v in quantisation_report(fp32, qweights).items()
@@ -261,11 +265,18 @@ def bundle_manifest(model: TrainedModel, plan: StudentPlan, board: Board, cal: C
         tool_version=__version__)
 
 
-def install_text(model: TrainedModel, board: Board, name: str, out: Path) -> str:
+def signing_kinds(options: CompileOptions) -> list:
+    """The signatures this compile writes (the manifest's "signing" list, in its order)."""
+    return [kind for kind, key in (("hmac-sha256", options.sign_key),
+                                   ("ed25519", options.ed25519_key)) if key is not None]
+
+
+def install_text(model: TrainedModel, board: Board, name: str, out: Path,
+                 signing=()) -> str:
     channels = ", ".join(c + (" (rate)" if f == "rate" else "")
                          for c, f in zip(model.channels, model.scaler.features))
-    return INSTALL_TXT.format(name=name, board=board.name, folder=shlex.quote(Path(out).name),
-                              time_col=model.time_col, channels=channels, period=model.period_s)
+    return install_notes(name, board.name, shlex.quote(Path(out).name), model.time_col,
+                         channels, model.period_s, signing)
 
 
 def record_student(model_dir: Path, bundle: Path, fp32: dict, report: dict) -> Path:

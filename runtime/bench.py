@@ -36,7 +36,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
-from typing import Dict, List, Optional, Tuple
+from typing import Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -87,7 +87,8 @@ def _run_command(bundle) -> List[str]:
     return [sys.executable, "-c", code, str(bundle.dir)]
 
 
-def cold_start(bundle, backend: str, timeout_s: float = 120.0) -> Tuple[Optional[float], float]:
+def cold_start(bundle, backend: str, timeout_s: float = 120.0,
+               run_args: Sequence[str] = ()) -> Tuple[Optional[float], float]:
     """(seconds from spawning the stream command to its first score event on stdout,
     peak RSS in MB of that process)."""
     with tempfile.TemporaryDirectory() as tmp:
@@ -99,7 +100,7 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0) -> Tuple[Optional
         csv_path.write_text("\n".join(lines) + "\n")
         cmd = _run_command(bundle) + [
             "stream", "--input", str(csv_path), "--backend", backend, "--score-every", "1",
-            "--heartbeat", "0", "--checkpoint-every", "0",
+            "--heartbeat", "0", "--checkpoint-every", "0", *run_args,
         ]
         t0 = time.perf_counter()
         proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
@@ -129,14 +130,16 @@ def bundle_kb(bundle, runtime_copy: bool = True) -> float:
 
 
 def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
-              cold_start_run: bool = True) -> Dict:
+              cold_start_run: bool = True, run_args: Sequence[str] = ()) -> Dict:
+    """run_args: the signature options the child stream needs (cli.trust_argv)."""
     backends = backends or available_backends(bundle)
     results = {}
     for name in backends:
         scorer = make_scorer(bundle, name)
         rule = ScoreRule(bundle.manifest["score"])
         ms = np.asarray(time_hops(scorer, rule, bundle.window, len(bundle.channels), hops))
-        start_s, rss = cold_start(bundle, scorer.name) if cold_start_run else (None, None)
+        start_s, rss = (cold_start(bundle, scorer.name, run_args=run_args) if cold_start_run
+                        else (None, None))
         flops = Network(bundle.weights).flops_per_window(bundle.window)
         m = {
             "latency_ms_p50": float(np.percentile(ms, 50)),

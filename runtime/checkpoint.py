@@ -1,7 +1,9 @@
 """The service's checkpoint file: one JSON document, replaced atomically.
 
 Write path: temp file in the same directory -> write -> flush -> fsync -> os.replace over the
-old file -> fsync the directory. A power cut at any point leaves either the old checkpoint or
+old file -> fsync the directory. The temp file is created exclusively under an unpredictable
+name (tempfile.mkstemp: O_CREAT | O_EXCL | O_NOFOLLOW, mode 0600), so a link planted in the
+state directory is never followed, and it is removed when the write fails (a full disk). A power cut at any point leaves either the old checkpoint or
 the new one, never a torn file (os.replace is atomic on POSIX within one file system; the
 directory fsync makes the rename itself durable).
 
@@ -11,6 +13,7 @@ ring contents, threshold and alert state mean nothing to this one.
 
 import json
 import os
+import tempfile
 from pathlib import Path
 from typing import Optional
 
@@ -36,13 +39,21 @@ def _fsync_dir(directory: Path) -> None:
 
 def write_atomic(path, data: bytes) -> None:
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    with open(tmp, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-    _fsync_dir(path.parent if str(path.parent) else Path("."))
+    directory = path.parent if str(path.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=str(directory))
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, str(path))
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    _fsync_dir(directory)
 
 
 def save_checkpoint(path, bundle_id: str, state: dict) -> None:

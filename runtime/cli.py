@@ -1,26 +1,44 @@
-"""The gateway command line: `python3 run.py stream | bench | check`.
+"""The gateway command line: `python3 -I -B run.py stream | bench | check`.
 
-A thin argparse layer over load_bundle, make_scorer, run_stream and run_bench. Exit codes:
-0 done, 1 the bundle (or its signature) was refused, 2 bad usage or input header,
-3 a state / output file could not be used.
+A thin argparse layer over load_bundle, make_scorer, run_stream and run_bench.
+
+Exit codes (the only ones; README lists them too):
+  0  done: end of input, or stopped by SIGTERM / SIGINT
+  1  the bundle was refused: checksums, signature, layout, an older bundle than the state
+     directory has run, or a gateway too old for it
+  2  bad usage or an unusable input header
+  3  the state file (checkpoint or the newest-bundle record) or the input could not be used
+     at start; a store that fails while running (scores CSV, alert database, checkpoint
+     writes) is reported as a sink_error event and retried: it never ends the service
+  4  internal error (a bug: the traceback is on stderr)
 """
 
 import argparse
 import json
 import sys
+import traceback
 from typing import List, Optional
 
 from .checkpoint import CheckpointError
-from .manifest import BundleError, load_bundle, read_key
+from .manifest import BundleError, load_bundle
 from .scorer import BACKENDS, make_scorer
+from .trust import read_keys
+
+EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_STATE, EXIT_INTERNAL = 0, 1, 2, 3, 4
 
 
 def _parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--bundle", help="bundle folder (default: the folder of run.py)")
-    common.add_argument("--key", help="file holding the HMAC key the bundle was signed with")
+    common.add_argument("--key", help="file holding the HMAC key the bundle was signed with "
+                        "(manifest.hmac); keep it outside the bundle, readable by the service only")
+    common.add_argument("--public-key", help="PEM file of the Ed25519 public key the bundle was "
+                        "signed for (manifest.ed25519); needs the cryptography package")
     common.add_argument("--require-signature", action="store_true",
-                        help="refuse a bundle without a valid manifest.hmac")
+                        help="refuse a bundle without a signature verified by --key/--public-key")
+    common.add_argument("--skip-signature", action="store_true",
+                        help="run a signed bundle without checking its signature (workstation "
+                        "tests; the checksums are still checked)")
 
     p = argparse.ArgumentParser(
         prog="run.py", description="ganlet gateway runtime (advisory condition monitoring)"
@@ -33,6 +51,8 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--follow", action="store_true", help="at end of file, wait for more lines")
     s.add_argument("--state", help="checkpoint file; reused on restart to resume")
     s.add_argument("--scores-out", help="CSV of time,score,threshold,alert per scored hop")
+    s.add_argument("--scores-max-mb", type=float, metavar="MIB",
+                   help="cap --scores-out at MIB MiB: rotate it to SCORES.1 (one old file kept)")
     s.add_argument("--alert-db", help="SQLite file of alerts (one row per alert)")
     s.add_argument("--backend", choices=BACKENDS, default="auto")
     s.add_argument("--score-every", type=int, default=1,
@@ -41,6 +61,8 @@ def _parser() -> argparse.ArgumentParser:
                    help="also checkpoint at every alert change and on SIGTERM/SIGINT (0 = only then)")
     s.add_argument("--heartbeat", type=float, default=60.0, metavar="SECONDS",
                    help="heartbeat event interval (0 = none)")
+    s.add_argument("--allow-older", action="store_true",
+                   help="run a bundle older than the newest one run with this --state folder")
 
     b = sub.add_parser("bench", parents=[common], help="latency, throughput, memory, cold start")
     b.add_argument("--backend", choices=BACKENDS + ("all",), default="all")
@@ -50,77 +72,140 @@ def _parser() -> argparse.ArgumentParser:
 
     c = sub.add_parser("check", parents=[common], help="verify the bundle and print a summary")
     c.add_argument("--json", action="store_true")
+    c.add_argument("--state", help="also check (and record) it against the newest bundle run "
+                   "with this state file's folder")
+    c.add_argument("--allow-older", action="store_true",
+                   help="with --state: accept an older bundle and make it the record")
     return p
 
 
 def main(argv: Optional[List[str]] = None, bundle_dir=None) -> int:
     args = _parser().parse_args(argv)
+    try:
+        return _command(args, bundle_dir)
+    except Exception:  # noqa: BLE001 - one documented code for a bug, with its traceback
+        sys.stderr.write("internal error (please report):\n" + traceback.format_exc())
+        return EXIT_INTERNAL
+
+
+def _command(args, bundle_dir) -> int:
     folder = args.bundle or bundle_dir
     if folder is None:
         sys.stderr.write("error: no bundle folder; pass --bundle DIR\n")
-        return 2
+        return EXIT_USAGE
     try:
-        key = read_key(args.key) if args.key else None
-        bundle = load_bundle(folder, key=key, require_signature=args.require_signature)
+        keys = read_keys(args.key, args.public_key)
+        bundle = load_bundle(folder, key=keys["hmac-sha256"], public_key=keys["ed25519"],
+                             require_signature=args.require_signature,
+                             skip_signature=args.skip_signature)
     except (BundleError, OSError) as exc:
         sys.stderr.write(f"bundle refused: {exc}\n")
-        return 1
-
+        return EXIT_REFUSED
+    if getattr(args, "state", None):
+        code = _check_rollback(bundle, args)
+        if code:
+            return code
     if args.command == "check":
-        summary = bundle.summary()
-        summary["verified"] = True
-        if args.json:
-            print(json.dumps(summary, indent=2, sort_keys=True))
-        else:
-            print(f"bundle OK: {summary['name']} ({summary['bundle_id'][:12]}), "
-                  f"{summary['files']} files verified, "
-                  f"{'signed' if summary['signed'] else 'unsigned'}")
-            chans = ", ".join(f"{c['name']} [{c['unit']}]"
-                              + (" by rate" if c["feature"] == "rate" else "")
-                              for c in summary["channels"])
-            print(f"  channels: {chans}")
-            print(f"  window {summary['window']} x {summary['period_s']} s, hop {summary['hop']}, "
-                  f"threshold {summary['threshold']}, board {summary['board']}")
-        return 0
-
+        return _check(bundle, args)
     if args.command == "bench":
-        from .bench import format_report, run_bench, to_json
+        return _bench(bundle, args)
+    return _stream(bundle, args)
 
-        backends = None if args.backend == "all" else [args.backend]
-        if args.hops < 1:
-            sys.stderr.write("error: --hops must be >= 1\n")
-            return 2
-        try:
-            report = run_bench(bundle, backends, args.hops, cold_start_run=not args.no_cold_start)
-        except BundleError as exc:
-            sys.stderr.write(f"error: {exc}\n")
-            return 1
-        print(to_json(report) if args.json else format_report(report))
-        return 0
 
+def _check_rollback(bundle, args) -> int:
+    from .rollback import check_not_older
+
+    try:
+        note = check_not_older(args.state, bundle.manifest, bundle.bundle_id, args.allow_older)
+    except BundleError as exc:
+        sys.stderr.write(f"bundle refused: {exc}\n")
+        return EXIT_REFUSED
+    except CheckpointError as exc:
+        sys.stderr.write(f"error: {exc}\n")
+        return EXIT_STATE
+    if note:
+        sys.stderr.write(f"warning: {note}\n")
+    return EXIT_OK
+
+
+def signature_line(summary: dict) -> str:
+    """'signed (ed25519 verified)' only after verifying; otherwise says what was not checked."""
+    sigs = summary["signatures"]
+    verified = sorted(k for k, v in sigs.items() if v == "verified")
+    if verified:
+        return f"signed ({', '.join(verified)} verified)"
+    if sigs:
+        return f"signature NOT verified ({', '.join(sorted(sigs))} present, --skip-signature)"
+    return "unsigned (checksums catch corruption, not deliberate edits)"
+
+
+def _check(bundle, args) -> int:
+    summary = bundle.summary()
+    summary["verified"] = True
+    if args.json:
+        print(json.dumps(summary, indent=2, sort_keys=True))
+        return EXIT_OK
+    print(f"bundle OK: {summary['name']} ({summary['bundle_id'][:12]}), "
+          f"{summary['files']} files verified, {signature_line(summary)}")
+    chans = ", ".join(f"{c['name']} [{c['unit']}]" + (" by rate" if c["feature"] == "rate" else "")
+                      for c in summary["channels"])
+    print(f"  channels: {chans}")
+    print(f"  window {summary['window']} x {summary['period_s']} s, hop {summary['hop']}, "
+          f"threshold {summary['threshold']}, board {summary['board']}")
+    return EXIT_OK
+
+
+def trust_argv(args) -> List[str]:
+    """The signature options of this run, for a child run.py (bench's cold start)."""
+    out = []
+    for flag, value in (("--key", args.key), ("--public-key", args.public_key)):
+        if value:
+            out += [flag, value]
+    return out + (["--skip-signature"] if args.skip_signature else [])
+
+
+def _bench(bundle, args) -> int:
+    from .bench import format_report, run_bench, to_json
+
+    backends = None if args.backend == "all" else [args.backend]
+    if args.hops < 1:
+        sys.stderr.write("error: --hops must be >= 1\n")
+        return EXIT_USAGE
+    try:
+        report = run_bench(bundle, backends, args.hops, cold_start_run=not args.no_cold_start,
+                           run_args=trust_argv(args))
+    except BundleError as exc:
+        sys.stderr.write(f"error: {exc}\n")
+        return EXIT_REFUSED
+    print(to_json(report) if args.json else format_report(report))
+    return EXIT_OK
+
+
+def _stream(bundle, args) -> int:
     from .service import StreamOptions, run_stream
 
     if args.score_every < 0 or args.checkpoint_every < 0 or args.heartbeat < 0:
         sys.stderr.write("error: --score-every, --checkpoint-every, --heartbeat must be >= 0\n")
-        return 2
+        return EXIT_USAGE
+    if args.scores_max_mb is not None and not args.scores_max_mb > 0:
+        sys.stderr.write("error: --scores-max-mb must be > 0\n")
+        return EXIT_USAGE
     try:
         scorer = make_scorer(bundle, args.backend)
     except BundleError as exc:
         sys.stderr.write(f"error: {exc}\n")
-        return 1
+        return EXIT_REFUSED
     opts = StreamOptions(
         input=args.input, follow=args.follow, state=args.state, scores_out=args.scores_out,
         alert_db=args.alert_db, score_every=args.score_every,
         checkpoint_every=args.checkpoint_every, heartbeat=args.heartbeat,
+        scores_max_bytes=(int(args.scores_max_mb * 2 ** 20) if args.scores_max_mb else None),
     )
     try:
         return run_stream(bundle, scorer, opts)
-    except CheckpointError as exc:
+    except (CheckpointError, OSError) as exc:
         sys.stderr.write(f"error: {exc}\n")
-        return 3
-    except OSError as exc:
-        sys.stderr.write(f"error: {exc}\n")
-        return 3
+        return EXIT_STATE
 
 
 if __name__ == "__main__":

@@ -10,11 +10,19 @@ cares about. A sink is any object with this protocol (a new one is one class in 
                                     checkpoint under the sink's `name`); None if nothing
     close() -> None
 
+    accepts(event: dict) -> bool    (optional) whether handle would store it; default: all
+    recovery_state() -> dict | None (optional) what a reopen after a store failure needs
+    wants_checkpoint() -> bool      (optional) ask the service for a checkpoint now
+
 Built in here: JsonLinesSink (stdout), ScoresCsvSink (--scores-out), AlertDbSink (--alert-db).
+EventWriter wraps each in a guard.GuardedSink: a store that fails (disk full, read-only, file
+removed) becomes a sink_error event, is retried with back-off, and the other sinks go on.
 
 Durability: the CSV sink reports its byte size after an fsync, which the checkpoint records; on
 resume the file is cut back to that size and the replayed hops append the same rows again, so a
-restart neither loses nor duplicates a row. The SQLite sink commits one transaction per alert
+restart neither loses nor duplicates a row. With a size cap (--scores-max-mb) the CSV is
+rotated to NAME.1 only inside a checkpoint (it asks for one when full), so at most one rotation
+can lie after the last checkpoint, and a restart undoes it when the recorded size says so. The SQLite sink commits one transaction per alert
 change (WAL, synchronous=FULL) and upserts by a deterministic id, so replaying a change
 rewrites the same row.
 """
@@ -23,7 +31,9 @@ import json
 import os
 import sqlite3
 from pathlib import Path
-from typing import List, Optional
+from typing import Callable, List, Optional, TextIO, Tuple
+
+from .guard import GuardedSink
 
 EVENTS = (
     "start",  # the service started (with the advisory notice)
@@ -32,8 +42,12 @@ EVENTS = (
     "alert_opened",
     "alert_closed",
     "gap",  # a long gap reset the window
+    "drift",  # a channel slowly left its training range and is re-centred (drift.py)
+    "drift_ended",  # a reported drift is back inside the range
     "input_error",  # rejected rows, counted by kind (rate-limited)
     "heartbeat",
+    "sink_error",  # a store failed (sink name, error, retry_in_s); the other sinks go on
+    "sink_recovered",  # a failed store works again (down_s, missed events, replayed alerts)
     "stop",  # the service stopped (with every counter)
 )
 ALERT_EVENTS = ("alert_opened", "alert_closed")
@@ -70,22 +84,56 @@ class JsonLinesSink:
 
 
 class ScoresCsvSink:
+    """time,score,threshold,alert per hop. resume: {"offset": n} from the checkpoint (cut the
+    file back to n bytes), or {"offset": n, "repair": True} after a failure in this process
+    (cut back a torn last row; a file someone shortened meanwhile is appended to).
+    max_bytes: rotate to NAME.1 (one old file kept) at the next checkpoint once reached."""
+
     name = "scores_csv"
 
-    def __init__(self, path, resume: Optional[dict] = None):
-        resume_offset = resume.get("offset") if resume else None
+    def __init__(self, path, resume: Optional[dict] = None, max_bytes: Optional[int] = None):
         self.path = Path(path)
+        self.rotated = self.path.with_name(self.path.name + ".1")
+        self.max_bytes = max_bytes
         self.fh = open(self.path, "ab")
-        if resume_offset is not None:
+        try:
+            self._resume(resume or {})
+            if self.fh.seek(0, os.SEEK_END) == 0:
+                self.fh.write(SCORES_HEADER.encode("ascii"))
+                self.fh.flush()
+        except BaseException:
+            self.fh.close()
+            raise
+        self.good = self.fh.tell()  # end of the last complete row
+
+    def _resume(self, resume: dict) -> None:
+        offset = resume.get("offset")
+        if offset is None:
+            return
+        size = self.fh.seek(0, os.SEEK_END)
+        if size < offset and self._undo_rotation(offset):
             size = self.fh.seek(0, os.SEEK_END)
-            if size < resume_offset:
-                raise OSError(
-                    f"{self.path}: file is {size} bytes but the checkpoint recorded "
-                    f"{resume_offset}; it was edited or truncated - move it aside to start fresh"
-                )
-            self.fh.truncate(resume_offset)  # rows written after the checkpoint are replayed
-        if self.fh.seek(0, os.SEEK_END) == 0:
-            self.fh.write(SCORES_HEADER.encode("ascii"))
+        if size >= offset:
+            self.fh.truncate(offset)  # rows written after the checkpoint are replayed
+        elif not resume.get("repair"):
+            raise OSError(
+                f"{self.path}: file is {size} bytes but the checkpoint recorded "
+                f"{offset}; it was edited or truncated - move it aside to start fresh"
+            )
+
+    def _undo_rotation(self, offset: int) -> bool:
+        """A rotation after the last checkpoint: the recorded rows are in NAME.1; put it back."""
+        if not (self.max_bytes and self.rotated.is_file()
+                and self.rotated.stat().st_size >= offset):
+            return False
+        self.fh.close()
+        os.replace(str(self.rotated), str(self.path))
+        self.fh = open(self.path, "ab")
+        return True
+
+    @staticmethod
+    def accepts(event: dict) -> bool:
+        return event["event"] == "score"
 
     def handle(self, event: dict) -> None:
         if event["event"] != "score":
@@ -96,18 +144,53 @@ class ScoresCsvSink:
         )
         self.fh.write(row.encode("ascii"))
         self.fh.flush()  # visible to readers at once; fsync'd (durable) at each checkpoint
+        self.good = self.fh.tell()
+
+    def wants_checkpoint(self) -> bool:
+        return bool(self.max_bytes) and self.good >= self.max_bytes
 
     def durable_state(self) -> dict:
-        """Flush + fsync, then the file size: everything before it survives a power cut."""
+        """Flush + fsync (rotating first when full), then the file size: everything before it
+        survives a power cut."""
+        if self.wants_checkpoint():
+            self._rotate()
         self.fh.flush()
         os.fsync(self.fh.fileno())
         return {"offset": self.fh.tell()}
 
+    def _rotate(self) -> None:
+        self.fh.flush()
+        os.fsync(self.fh.fileno())
+        self.fh.close()
+        os.replace(str(self.path), str(self.rotated))
+        self.fh = open(self.path, "ab")
+        self.fh.write(SCORES_HEADER.encode("ascii"))
+        self.fh.flush()
+        self.good = self.fh.tell()
+
+    def recovery_state(self) -> dict:
+        return {"offset": self.good, "repair": True}
+
+    def abandon(self) -> None:
+        """After a store failure: close without the flush that would fail again, and cut a
+        torn last row off at once (truncating needs no free space)."""
+        try:
+            self.fh.close()
+        except OSError:
+            pass  # the unwritten buffer is dropped; its rows are counted as missed
+        try:
+            if self.path.stat().st_size > self.good:
+                os.truncate(str(self.path), self.good)
+        except OSError:
+            pass
+
     def close(self) -> None:
         if not self.fh.closed:
-            self.fh.flush()
-            os.fsync(self.fh.fileno())
-            self.fh.close()
+            try:
+                self.fh.flush()
+                os.fsync(self.fh.fileno())
+            finally:
+                self.fh.close()
 
 
 class AlertDbSink:
@@ -126,12 +209,22 @@ class AlertDbSink:
         ")"
     )
 
+    replays_missed = True  # alert changes missed while the store failed are written on recovery
+
     def __init__(self, path):
         self.path = Path(path)
         self.db = sqlite3.connect(str(self.path), isolation_level=None)  # explicit transactions
-        self.db.execute("PRAGMA journal_mode=WAL")
-        self.db.execute("PRAGMA synchronous=FULL")  # an alert change survives a power cut
-        self.db.execute(self.SCHEMA)
+        try:
+            self.db.execute("PRAGMA journal_mode=WAL")
+            self.db.execute("PRAGMA synchronous=FULL")  # an alert change survives a power cut
+            self.db.execute(self.SCHEMA)
+        except BaseException:
+            self.db.close()
+            raise
+
+    @staticmethod
+    def accepts(event: dict) -> bool:
+        return event["event"] in ALERT_EVENTS
 
     def handle(self, event: dict) -> None:
         if event["event"] not in ALERT_EVENTS:
@@ -150,10 +243,11 @@ class AlertDbSink:
                 "peak_score, threshold, channels, hops) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 row,
             )
+            self.db.execute("COMMIT")
         except Exception:
-            self.db.execute("ROLLBACK")
+            if self.db.in_transaction:
+                self.db.execute("ROLLBACK")
             raise
-        self.db.execute("COMMIT")
 
     def durable_state(self) -> Optional[dict]:
         return None  # each alert change is committed as it is handled
@@ -167,11 +261,42 @@ class EventWriter:
 
     def __init__(self, sinks: List):
         self.sinks = list(sinks)
+        self.queue = []  # type: List[dict]
+
+    @classmethod
+    def guarded(cls, openers: List[Tuple[type, Callable]], resume: dict,
+                notice: Optional[TextIO] = None) -> "EventWriter":
+        """Sinks from (sink class, open(resume) -> sink) pairs, each behind a GuardedSink whose
+        sink_error / sink_recovered events go to every sink after the current event (and a
+        line to `notice`, the service's stderr)."""
+        writer = cls([])
+
+        def report(event: dict) -> None:
+            writer.queue.append(event)
+            if notice is not None:
+                fields = {k: v for k, v in event.items() if k != "event"}
+                notice.write(f"{event['event']}: {json.dumps(fields, sort_keys=True)}\n")
+                notice.flush()
+
+        writer.sinks = [GuardedSink(kind.name, opener, report, resume.get(kind.name), kind)
+                        for kind, opener in openers]
+        return writer
 
     def emit(self, event: dict) -> dict:
+        self._fan_out(event)
+        self._drain()
+        return event
+
+    def _fan_out(self, event: dict) -> None:
         for sink in self.sinks:
             sink.handle(event)
-        return event
+
+    def _drain(self) -> None:
+        while self.queue:
+            self._fan_out(self.queue.pop(0))
+
+    def wants_checkpoint(self) -> bool:
+        return any(getattr(s, "wants_checkpoint", lambda: False)() for s in self.sinks)
 
     def durable_state(self) -> dict:
         """Every sink made durable; what each needs to resume, by sink name."""
@@ -180,8 +305,10 @@ class EventWriter:
             state = sink.durable_state()
             if state is not None:
                 out[sink.name] = state
+        self._drain()
         return out
 
     def close(self) -> None:
+        self._drain()
         for sink in self.sinks:
             sink.close()

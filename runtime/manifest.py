@@ -2,23 +2,36 @@
 
 A bundle is a folder:
 
-    manifest.json  manifest.hmac (optional)  model.onnx  weights.npz  run.py  INSTALL.txt
-    ganlet/runtime/*.py   (a copy of this package, so the gateway needs no pip install)
+    manifest.json  [manifest.hmac]  [manifest.ed25519]  model.onnx  weights.npz  run.py
+    INSTALL.txt  ganlet-NAME.service  ganlet/runtime/*.py  (a copy of this package, so the
+    gateway needs no pip install)
 
-manifest.json lists every other file with its SHA-256, so a gateway can prove the folder is the
-one the workstation packed. manifest.hmac, when present, holds the hex HMAC-SHA256 of the exact
-manifest.json bytes under a shared key. The reader (load_bundle) is the authority: compile/ and
-the tests build manifests through build_manifest and write them through write_manifest, so both
-halves agree by construction. The manifest carries nothing of the workstation (no paths, no
-teacher); the workstation keeps its own record beside the teacher (compile/pack.py).
+manifest.json lists every other file with its SHA-256. The reader (load_bundle) is the
+authority: compile/ and the tests build manifests through build_manifest and write them through
+write_manifest, so both halves agree by construction. The manifest carries nothing of the
+workstation (no paths, no teacher); the workstation keeps its own record beside the teacher.
+
+What the checks prove (the security model; README "Gateway safety" says the same):
+  - Unsigned: the SHA-256 list catches corruption (a bad copy, a flipped bit, a truncated
+    file). It does NOT catch a deliberate edit: whoever changes a file can re-hash it.
+  - Signed (manifest.hmac: HMAC-SHA256 under a shared secret; manifest.ed25519: Ed25519, checked
+    with the public key alone): an edit of any listed file or of the manifest is refused, as is
+    a bundle whose declared signature ("signing") was removed, when the gateway is told to check
+    (--key / --public-key, --require-signature: the shipped unit does). The signatures sit
+    beside the manifest because a manifest cannot hold its own signature.
+  - Before any bundle code runs (trust.py, copied into run.py): paths confined to the folder,
+    no links, no bytecode, no unlisted code, every code file's SHA-256 checked.
+  - run.py is the checker: it vouches for everything else but not for itself. Keep bundles
+    where only root can write (the unit's ProtectSystem=strict), or check them with a run.py
+    installed once outside the bundle (--bundle DIR).
+  - A bundle older than the newest one a state directory has seen is refused (rollback.py).
 """
 
 import hashlib
-import hmac
 import json
 import sys
 from datetime import datetime, timezone
-from pathlib import Path, PurePosixPath
+from pathlib import Path
 from typing import Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
@@ -29,10 +42,27 @@ from .features import FEATURE_KINDS, rate_mask
 from .lstm import contract_shapes
 from .score import ScoreRule
 from .thresholds import make_threshold
+from .trust import (  # noqa: F401  (re-exported: the bundle contract's names live here)
+    ED25519_NAME,
+    HMAC_NAME,
+    MANIFEST_NAME,
+    MIN_KEY_BYTES,
+    SIGNATURE_FILES,
+    BundleError,
+    check_hashes,
+    declared_signatures,
+    ed25519_sign,
+    file_sha256,
+    read_key,
+    read_manifest,
+    safe_relative,
+    sign_bytes,
+    verify_trust,
+)
 
-SCHEMA_VERSION = "2.0"  # 2: manifest.hmac, no workstation section, requires
-MANIFEST_NAME = "manifest.json"
-HMAC_NAME = "manifest.hmac"
+# 2: manifest.hmac, no workstation section, requires; 2.1: optional "signing" (the signatures
+# the packer wrote), manifest.ed25519
+SCHEMA_VERSION = "2.1"
 WEIGHTS_NAME = "weights.npz"
 ONNX_NAME = "model.onnx"
 QUANTISATION = "int8-symmetric-per-row"
@@ -48,7 +78,6 @@ REQUIRES = {"python": "3.9", "numpy": "1.19"}
 # and the fp32 student are other networks, judged by rank agreement.
 PARITY_TOLERANCES = {"score_rel": 1e-4, "spearman_min": 0.999, "sample_agreement_min": 0.995,
                      "event_match_hops": 3, "teacher_spearman_min": 0.95}
-_SKIP_DIRS = ("__pycache__",)
 
 # key -> accepted python types (bool is excluded from numbers explicitly below)
 _REQUIRED = {
@@ -83,27 +112,16 @@ _NETWORK_KEYS = {
 }
 
 
-class BundleError(Exception):
-    """The bundle cannot be used. The message says what is wrong and what to do."""
-
-
-def file_sha256(path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 16), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 def _bundle_files(bundle_dir: Path) -> List[str]:
-    """Every file under bundle_dir as a posix relative path, minus the manifest and caches."""
+    """Every file under bundle_dir as a posix relative path, minus the manifest, its
+    signatures and bytecode caches."""
     out = []
     for p in sorted(bundle_dir.rglob("*")):
         rel = p.relative_to(bundle_dir)
-        if not p.is_file() or any(part in _SKIP_DIRS for part in rel.parts):
+        if not p.is_file() or "__pycache__" in rel.parts:
             continue
         relposix = rel.as_posix()
-        if relposix in (MANIFEST_NAME, HMAC_NAME):
+        if relposix in (MANIFEST_NAME,) + tuple(SIGNATURE_FILES.values()):
             continue
         out.append(relposix)
     return out
@@ -160,9 +178,9 @@ def validate_manifest(manifest: dict) -> None:
     _check_network(manifest["network"])
     _check_sections(manifest)
     for rel, digest in manifest["files"].items():
-        p = PurePosixPath(rel)
-        if p.is_absolute() or ".." in p.parts or not isinstance(digest, str) or len(digest) != 64:
+        if not safe_relative(rel) or not isinstance(digest, str) or len(digest) != 64:
             raise BundleError(f"manifest: files entry {rel!r} is not a safe relative path + sha256")
+    declared_signatures(manifest)
 
 
 def _check_schema(version: str) -> None:
@@ -234,6 +252,10 @@ def _check_network(net: dict) -> None:
     for part in ("encoder", "generator"):
         if not net[part] or not all(isinstance(h, int) and h > 0 for h in net[part]):
             raise BundleError(f"manifest: network.{part} must be a non-empty list of sizes")
+    for part in ("weights", "onnx"):
+        if not safe_relative(net[part]):
+            raise BundleError(f"manifest: network.{part} {net[part]!r} leaves the bundle folder "
+                              "(absolute, '..' or malformed); do not run this bundle")
 
 
 def _check_sections(manifest: dict) -> None:
@@ -333,47 +355,44 @@ def build_manifest(
     }
 
 
-def sign_bytes(key: bytes, data: bytes) -> str:
-    return hmac.new(key, data, hashlib.sha256).hexdigest()
-
-
-def read_key(path) -> bytes:
-    """A signing key file: its bytes without surrounding whitespace (a trailing newline).
-    Shared by the workstation (signing) and the gateway (checking): one rule for both."""
-    key = Path(path).read_bytes().strip()
-    if len(key) < MIN_KEY_BYTES:
-        raise BundleError(f"{path}: the key holds {len(key)} bytes; use at least "
-                          f"{MIN_KEY_BYTES} random bytes (head -c 32 /dev/urandom | base64 > KEY)")
-    return key
-
-
-MIN_KEY_BYTES = 16
-
-
-def write_manifest(bundle_dir, manifest: dict, sign_key: Optional[bytes] = None) -> Path:
-    """Fill manifest['files'] from the folder, validate, write manifest.json (+ manifest.hmac)."""
+def write_manifest(bundle_dir, manifest: dict, sign_key: Optional[bytes] = None,
+                   ed25519_key: Optional[bytes] = None) -> Path:
+    """Fill manifest['files'] from the folder, validate, write manifest.json and the signatures
+    asked for: sign_key (HMAC secret) -> manifest.hmac, ed25519_key (PEM private key) ->
+    manifest.ed25519. The manifest's "signing" lists them, so their loss is noticed."""
     bundle_dir = Path(bundle_dir)
     manifest["files"] = {rel: file_sha256(bundle_dir / rel) for rel in _bundle_files(bundle_dir)}
+    keys = {"hmac-sha256": sign_key, "ed25519": ed25519_key}
+    signing = [kind for kind in SIGNATURE_FILES if keys[kind] is not None]
+    manifest.pop("signing", None)
+    if signing:
+        manifest["signing"] = signing
     validate_manifest(manifest)
     path = bundle_dir / MANIFEST_NAME
     data = (json.dumps(manifest, sort_keys=True, indent=2) + "\n").encode("utf-8")
     path.write_bytes(data)
-    sig_path = bundle_dir / HMAC_NAME
-    if sign_key is not None:
-        sig_path.write_text(sign_bytes(sign_key, data) + "\n")
-    elif sig_path.exists():
-        sig_path.unlink()  # a stale signature would no longer match
+    for kind, name in SIGNATURE_FILES.items():
+        sig_path = bundle_dir / name
+        if keys[kind] is None:
+            if sig_path.exists():
+                sig_path.unlink()  # a stale signature would no longer match
+            continue
+        signature = sign_bytes(keys[kind], data) if kind == "hmac-sha256" else ed25519_sign(
+            keys[kind], data)
+        sig_path.write_text(signature + "\n")
     return path
 
 
 class Bundle:
     """A verified bundle: manifest fields as attributes, weights as float32 arrays."""
 
-    def __init__(self, bundle_dir: Path, manifest: dict, manifest_bytes: bytes, signed: bool):
+    def __init__(self, bundle_dir: Path, manifest: dict, manifest_bytes: bytes,
+                 signatures: Dict[str, str]):
         self.dir = Path(bundle_dir)
         self.manifest = manifest
         self.bundle_id = hashlib.sha256(manifest_bytes).hexdigest()
-        self.signed = signed
+        self.signatures = dict(signatures)  # kind -> "verified" | "not checked"
+        self.signed = "verified" in self.signatures.values()  # only ever after verifying
         self.channels = [c["name"] for c in manifest["channels"]]
         self.units = [c["unit"] for c in manifest["channels"]]
         self.time_column = manifest["time_column"]
@@ -396,7 +415,7 @@ class Bundle:
         """A bundle that exists only as a manifest and weights (the workstation replays its
         calibration span through the gateway's detector before the folder is written)."""
         raw = json.dumps(manifest, sort_keys=True).encode("utf-8")
-        bundle = cls(Path("."), manifest, raw, signed=False)
+        bundle = cls(Path("."), manifest, raw, signatures={})
         bundle._weights = {k: np.asarray(v, dtype=np.float32) for k, v in weights.items()}
         return bundle
 
@@ -423,6 +442,7 @@ class Bundle:
             "tool_version": m["tool_version"],
             "created": m["created"],
             "signed": self.signed,
+            "signatures": dict(self.signatures),
             "channels": [{"name": n, "unit": u, "feature": f}
                          for n, u, f in zip(self.channels, self.units, self.features)],
             "time_column": self.time_column,
@@ -463,20 +483,16 @@ def load_bundle(
     key: Optional[bytes] = None,
     require_signature: bool = False,
     check_files: bool = True,
+    public_key: Optional[bytes] = None,
+    skip_signature: bool = False,
 ) -> Bundle:
-    """Read, verify and return a bundle. Raises BundleError saying what is wrong."""
+    """Read, verify and return a bundle. Raises BundleError saying what is wrong.
+    key: HMAC secret; public_key: PEM Ed25519 public key; skip_signature: run a signed bundle
+    without checking its signature (workstation tools; the SHA-256 list is still checked)."""
     bundle_dir = Path(bundle_dir)
-    mpath = bundle_dir / MANIFEST_NAME
-    if not mpath.is_file():
-        raise BundleError(f"{mpath}: no manifest.json here; point at the bundle folder")
-    raw = mpath.read_bytes()
-    try:
-        manifest = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise BundleError(f"{mpath}: not valid JSON ({exc}); copy the bundle again") from None
-
+    raw, manifest = read_manifest(bundle_dir)
     # Refuse a newer major schema before anything else: its keys may mean other things.
-    if isinstance(manifest, dict) and "schema_version" in manifest:
+    if "schema_version" in manifest:
         major = _schema_major(manifest["schema_version"])
         if major > _schema_major(SCHEMA_VERSION):
             raise BundleError(
@@ -484,54 +500,30 @@ def load_bundle(
                 f"runtime understands ({SCHEMA_VERSION}); run the bundle's own run.py or update "
                 "the gateway runtime"
             )
-
-    sig_path = bundle_dir / HMAC_NAME
-    signed = sig_path.is_file()
-    if require_signature and key is None:
-        raise BundleError("a signature is required but no key was given; pass --key FILE")
-    if key is not None:
-        if not signed:
-            raise BundleError(
-                f"{bundle_dir}: a key was given but the bundle has no manifest.hmac; "
-                "re-pack it with the signing key"
-            )
-        expected = sign_bytes(key, raw)
-        given = sig_path.read_text().strip()
-        if not hmac.compare_digest(expected, given):
-            raise BundleError(
-                f"{sig_path}: signature does not match manifest.json under the given key; "
-                "the manifest was changed or the key is wrong - do not run this bundle"
-            )
-
+    keys = {"hmac-sha256": key, "ed25519": public_key}
+    signatures = verify_trust(bundle_dir, raw, manifest, keys, require_signature, skip_signature,
+                              check_code=check_files)
     validate_manifest(manifest)
-
     if check_files:
-        for rel, digest in sorted(manifest["files"].items()):
-            fpath = bundle_dir / rel
-            if not fpath.is_file():
-                raise BundleError(
-                    f"{rel}: listed in the manifest but missing from {bundle_dir}; "
-                    "copy the whole bundle folder again"
-                )
-            if file_sha256(fpath) != digest:
-                raise BundleError(
-                    f"{rel}: SHA-256 does not match the manifest (file changed or corrupted); "
-                    "copy the bundle again and do not edit files inside it"
-                )
-        listed = set(manifest["files"])
-        stray = [r for r in _bundle_files(bundle_dir) if r.endswith(".py") and r not in listed]
-        if stray:
-            raise BundleError(
-                f"{stray[0]}: Python file not listed in the manifest; remove it "
-                "(only packed code may run from a bundle)"
-            )
-
+        check_hashes(bundle_dir, manifest["files"])
     unmet = unmet_requirements(manifest)
     if unmet:
         raise BundleError(f"this gateway cannot run the bundle: {'; '.join(unmet)}; upgrade it "
                           "or compile for a board profile that matches it")
-    bundle = Bundle(bundle_dir, manifest, raw, signed)
-    if not bundle.weights_path.is_file():
-        raise BundleError(f"{bundle.weights_path}: weights file missing; copy the bundle again")
+    bundle = Bundle(bundle_dir, manifest, raw, signatures)
+    _check_data_files(bundle)
     check_weight_shapes(manifest, bundle.weights)
     return bundle
+
+
+def _check_data_files(bundle: Bundle) -> None:
+    """The network files the scorers open must be files the manifest lists (and so hashed)."""
+    net, listed = bundle.manifest["network"], bundle.manifest["files"]
+    if not bundle.weights_path.is_file():
+        raise BundleError(f"{bundle.weights_path}: weights file missing; copy the bundle again")
+    if net["weights"] not in listed:
+        raise BundleError(f"manifest: network.weights {net['weights']!r} is not a listed file; "
+                          "re-pack the bundle")
+    if bundle.onnx_path.exists() and net["onnx"] not in listed:
+        raise BundleError(f"manifest: network.onnx {net['onnx']!r} is not a listed file; "
+                          "re-pack the bundle")

@@ -29,6 +29,7 @@ from typing import Optional
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .detector import Detector
 from .events import ALERT_EVENTS, AlertDbSink, EventWriter, JsonLinesSink, ScoresCsvSink
+from .guard import STORE_ERRORS
 from .intake import REJECT_KINDS, HeaderError, RowError, format_time
 from .sources import Control, CsvSource, Stop
 
@@ -52,6 +53,7 @@ class StreamOptions:
         score_every: int = 1,
         checkpoint_every: float = 30.0,
         heartbeat: float = 60.0,
+        scores_max_bytes: Optional[int] = None,
     ):
         self.input = input
         self.follow = follow
@@ -61,6 +63,7 @@ class StreamOptions:
         self.score_every = score_every
         self.checkpoint_every = checkpoint_every
         self.heartbeat = heartbeat
+        self.scores_max_bytes = scores_max_bytes
 
 
 class _Timers:
@@ -81,7 +84,9 @@ class Service:
         self.opts = opts
         self.stderr = stderr
         saved = load_checkpoint(opts.state, bundle.bundle_id) if opts.state else None
-        self.writer = EventWriter(self._sinks(stdout, (saved or {}).get("sinks", {})))
+        self.writer = EventWriter.guarded(self._sinks(stdout), (saved or {}).get("sinks", {}),
+                                          notice=stderr)
+        self.checkpoint_failed = False
         self.det = Detector(bundle, scorer)
         self.det.errors.update({k: 0 for k in REJECT_KINDS})
         if saved:
@@ -101,22 +106,41 @@ class Service:
         if opts.state and not saved:
             self.checkpoint()  # so a crash before the first timed checkpoint resumes cleanly
 
-    def _sinks(self, stdout, resume: dict) -> list:
-        sinks = []
-        if self.opts.alert_db:
-            sinks.append(AlertDbSink(self.opts.alert_db))
-        if self.opts.scores_out:
-            sinks.append(ScoresCsvSink(self.opts.scores_out, resume=resume.get("scores_csv")))
-        sinks.append(JsonLinesSink(stdout, self.opts.score_every))
+    def _sinks(self, stdout) -> list:
+        """(sink class, open(resume) -> sink), durable sinks first; each is guarded."""
+        opts, sinks = self.opts, []
+        if opts.alert_db:
+            sinks.append((AlertDbSink, lambda _resume: AlertDbSink(opts.alert_db)))
+        if opts.scores_out:
+            sinks.append((ScoresCsvSink, lambda resume: ScoresCsvSink(
+                opts.scores_out, resume=resume, max_bytes=opts.scores_max_bytes)))
+        stdout_sink = JsonLinesSink(stdout, opts.score_every)
+        sinks.append((JsonLinesSink, lambda _resume: stdout_sink))
         return sinks
 
     def emit(self, event_name: str, /, **fields) -> None:
         self.writer.emit(dict(event=event_name, **fields))
 
     def checkpoint(self) -> None:
-        if self.opts.state:
+        """Make the sinks durable (a full scores file rotates here), then save the state. A
+        state file that cannot be written is reported once per streak and retried at the next
+        checkpoint: detection goes on, a restart resumes from the last saved one."""
+        sinks = self.writer.durable_state()
+        if not self.opts.state:
+            return
+        try:
             save_checkpoint(self.opts.state, self.bundle.bundle_id,
-                            {"detector": self.det.state(), "sinks": self.writer.durable_state()})
+                            {"detector": self.det.state(), "sinks": sinks})
+        except STORE_ERRORS as exc:
+            if not self.checkpoint_failed:
+                self.stderr.write(f"sink_error: checkpoint {self.opts.state}: {exc}\n")
+                self.emit("sink_error", sink="checkpoint", error=f"{type(exc).__name__}: {exc}",
+                          retry_in_s=self.opts.checkpoint_every or None, failures=1)
+            self.checkpoint_failed = True
+            return
+        if self.checkpoint_failed:
+            self.checkpoint_failed = False
+            self.emit("sink_recovered", sink="checkpoint", down_s=None, missed=0, replayed=0)
 
     # ------------------------------------------------------------------ per record
     def handle(self, rec) -> None:
@@ -143,7 +167,7 @@ class Service:
             return
         for event in events:
             self.writer.emit(event)
-        if any(e["event"] in ALERT_EVENTS for e in events):
+        if any(e["event"] in ALERT_EVENTS for e in events) or self.writer.wants_checkpoint():
             self.checkpoint()
 
     def reject(self, exc: RowError, lineno: int) -> None:

@@ -33,6 +33,7 @@ from ganlet.compile.cli import app
 from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.distil import DistilConfig, distil
 from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pack import service_unit
 from ganlet.compile.pipeline import STUDENTS_DIR, student_file
 from ganlet.compile.sizing import size_student
 from ganlet.compile.train import save_model, score_windows, train
@@ -330,6 +331,53 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
     manifest.write_bytes(manifest.read_bytes().replace(b'"hop": ', b'"hop":  ', 1))
     bad = run_check(copy, "--key", key, "--require-signature")
     assert bad.returncode != 0 and "signature" in bad.stderr
+
+
+def test_the_bundle_ships_its_unit_with_the_signature_options(bundle, tmp_path):
+    name = bundle["manifest"]["name"]
+    assert bundle["manifest"]["signing"] == ["hmac-sha256"]
+    unit_file = bundle["dir"] / f"ganlet-{name}.service"
+    unit = unit_file.read_text()
+    assert unit == service_unit(name, ["hmac-sha256"])
+    assert "--require-signature" in unit and unit in (bundle["dir"] / "INSTALL.txt").read_text()
+    assert f"ganlet-{name}.service" in bundle["manifest"]["files"]  # hashed like the rest
+    if shutil.which("systemd-analyze"):
+        # reference: systemd's own unit parser
+        p = subprocess.run(["systemd-analyze", "verify", str(unit_file)], capture_output=True,
+                           text=True)
+        assert p.returncode == 0 and unit_file.name not in p.stderr, p.stderr
+
+
+def test_keypair_and_compile_with_an_ed25519_signature(teacher, tmp_path):
+    pytest.importorskip("cryptography")
+    made = CliRunner().invoke(app, ["keypair", str(tmp_path / "keys" / "site-7")])
+    assert made.exit_code == 0, made.output
+    private = tmp_path / "keys" / "site-7.ed25519-private.pem"
+    public = tmp_path / "keys" / "site-7.ed25519-public.pem"
+    assert private.stat().st_mode & 0o777 == 0o600
+    again = CliRunner().invoke(app, ["keypair", str(tmp_path / "keys" / "site-7")])
+    assert again.exit_code == 2 and "never overwritten" in again.stderr
+    wrong = CliRunner().invoke(app, ["compile", str(teacher["model_dir"]), "--out",
+                                     str(tmp_path / "W"), "--sign-ed25519", str(public)])
+    assert wrong.exit_code == 2 and "not a PEM private key" in wrong.stderr
+    out = tmp_path / "E"
+    result = CliRunner().invoke(app, ["compile", str(teacher["model_dir"]), "--out", str(out),
+                                      "--sign-ed25519", str(private), "--name", "pump-7",
+                                      "--distil-epochs", "1", "--quiet"])
+    assert result.exit_code == 0, result.output
+    assert json.loads((out / "manifest.json").read_text())["signing"] == ["ed25519"]
+    assert not (out / "manifest.hmac").exists()
+    if shutil.which("openssl"):
+        sig = tmp_path / "sig.bin"
+        sig.write_bytes(bytes.fromhex((out / "manifest.ed25519").read_text().strip()))
+        # reference: OpenSSL's Ed25519 (RFC 8032) verification of the manifest bytes
+        p = subprocess.run(["openssl", "pkeyutl", "-verify", "-pubin", "-inkey", str(public),
+                            "-rawin", "-in", str(out / "manifest.json"), "-sigfile", str(sig)],
+                           capture_output=True, text=True)
+        assert p.returncode == 0, p.stderr
+    ok = run_check(out, "--public-key", str(public), "--require-signature")
+    assert ok.returncode == 0 and "signed (ed25519 verified)" in ok.stdout, ok.stderr
+    assert "--public-key" in (out / "ganlet-pump-7.service").read_text()
 
 
 @pytest.mark.parametrize("kind", ["file", "folder"])
