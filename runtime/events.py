@@ -12,6 +12,11 @@ cares about. A sink is any object with this protocol (a new one is one class in 
 
 Built in here: JsonLinesSink (stdout), ScoresCsvSink (--scores-out), AlertDbSink (--alert-db).
 
+Scores CSV provenance: a new scores file starts with `# key: value` comment lines (PROVENANCE_KEYS:
+the bundle, the runtime's Python / numpy, the machine, the start time), then the column header;
+pandas.read_csv(comment="#") and compile/gateway.py read_scores skip them. Rows of another bundle
+are never appended to a file that says it holds this one's.
+
 Durability: the CSV sink reports its byte size after an fsync, which the checkpoint records; on
 resume the file is cut back to that size and the replayed hops append the same rows again, so a
 restart neither loses nor duplicates a row. The SQLite sink commits one transaction per alert
@@ -21,9 +26,15 @@ rewrites the same row.
 
 import json
 import os
+import platform
 import sqlite3
+import time
 from pathlib import Path
-from typing import List, Optional
+from typing import Dict, List, Optional
+
+import numpy as np
+
+from .intake import format_time
 
 EVENTS = (
     "start",  # the service started (with the advisory notice)
@@ -38,6 +49,8 @@ EVENTS = (
 )
 ALERT_EVENTS = ("alert_opened", "alert_closed")
 SCORES_HEADER = "time,score,threshold,alert\n"
+PROVENANCE_KEYS = ("bundle_id", "bundle_name", "tool_version", "backend", "python", "numpy",
+                   "machine", "platform", "host", "started")
 
 
 def _num(x) -> str:
@@ -69,12 +82,47 @@ class JsonLinesSink:
             pass
 
 
+def scores_provenance(bundle, backend: str) -> Dict[str, str]:
+    """Where a scores file comes from: the bundle, this runtime's interpreter, the machine."""
+    return {
+        "bundle_id": bundle.bundle_id, "bundle_name": bundle.manifest["name"],
+        "tool_version": bundle.manifest["tool_version"], "backend": backend,
+        "python": platform.python_version(), "numpy": np.__version__,
+        "machine": platform.machine(), "platform": platform.platform(),
+        "host": platform.node(), "started": format_time(time.time()),
+    }
+
+
+def provenance_lines(provenance: Dict[str, str]) -> bytes:
+    """`# key: value` lines, one per known key (line breaks in a value become spaces)."""
+    lines = ["# ganlet scores: one row per scored hop, times in UTC\n"]
+    for key in PROVENANCE_KEYS:
+        if key in provenance:
+            value = " ".join(str(provenance[key]).split())
+            lines.append(f"# {key}: {value}\n")
+    return "".join(lines).encode("utf-8", "replace")
+
+
+def read_provenance(fh) -> Dict[str, str]:
+    """The `# key: value` lines at the top of a scores file opened in binary mode."""
+    out = {}
+    for raw in fh:
+        if not raw.startswith(b"#"):
+            break
+        key, sep, value = raw[1:].decode("utf-8", "replace").strip().partition(": ")
+        if sep and key in PROVENANCE_KEYS:
+            out[key] = value.strip()
+    return out
+
+
 class ScoresCsvSink:
     name = "scores_csv"
 
-    def __init__(self, path, resume: Optional[dict] = None):
+    def __init__(self, path, resume: Optional[dict] = None,
+                 provenance: Optional[Dict[str, str]] = None):
         resume_offset = resume.get("offset") if resume else None
         self.path = Path(path)
+        self._refuse_other_bundle(provenance or {})
         self.fh = open(self.path, "ab")
         if resume_offset is not None:
             size = self.fh.seek(0, os.SEEK_END)
@@ -85,7 +133,17 @@ class ScoresCsvSink:
                 )
             self.fh.truncate(resume_offset)  # rows written after the checkpoint are replayed
         if self.fh.seek(0, os.SEEK_END) == 0:
-            self.fh.write(SCORES_HEADER.encode("ascii"))
+            self.fh.write(provenance_lines(provenance or {}) + SCORES_HEADER.encode("ascii"))
+
+    def _refuse_other_bundle(self, provenance: Dict[str, str]) -> None:
+        if not self.path.is_file() or "bundle_id" not in provenance:
+            return
+        with open(self.path, "rb") as fh:
+            theirs = read_provenance(fh).get("bundle_id")
+        if theirs and theirs != provenance["bundle_id"]:
+            raise OSError(f"{self.path} holds scores of bundle {theirs[:12]}, not of this "
+                          f"bundle {provenance['bundle_id'][:12]}; move it aside or choose "
+                          "another --scores-out")
 
     def handle(self, event: dict) -> None:
         if event["event"] != "score":

@@ -28,7 +28,14 @@ from typing import Optional
 
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .detector import Detector
-from .events import ALERT_EVENTS, AlertDbSink, EventWriter, JsonLinesSink, ScoresCsvSink
+from .events import (
+    ALERT_EVENTS,
+    AlertDbSink,
+    EventWriter,
+    JsonLinesSink,
+    ScoresCsvSink,
+    scores_provenance,
+)
 from .intake import REJECT_KINDS, HeaderError, RowError, format_time
 from .sources import Control, CsvSource, Stop
 
@@ -81,7 +88,8 @@ class Service:
         self.opts = opts
         self.stderr = stderr
         saved = load_checkpoint(opts.state, bundle.bundle_id) if opts.state else None
-        self.writer = EventWriter(self._sinks(stdout, (saved or {}).get("sinks", {})))
+        self.writer = EventWriter(self._sinks(stdout, (saved or {}).get("sinks", {}),
+                                              scorer.name))
         self.det = Detector(bundle, scorer)
         self.det.errors.update({k: 0 for k in REJECT_KINDS})
         if saved:
@@ -101,12 +109,13 @@ class Service:
         if opts.state and not saved:
             self.checkpoint()  # so a crash before the first timed checkpoint resumes cleanly
 
-    def _sinks(self, stdout, resume: dict) -> list:
+    def _sinks(self, stdout, resume: dict, backend: str) -> list:
         sinks = []
         if self.opts.alert_db:
             sinks.append(AlertDbSink(self.opts.alert_db))
         if self.opts.scores_out:
-            sinks.append(ScoresCsvSink(self.opts.scores_out, resume=resume.get("scores_csv")))
+            sinks.append(ScoresCsvSink(self.opts.scores_out, resume=resume.get("scores_csv"),
+                                       provenance=scores_provenance(self.bundle, backend)))
         sinks.append(JsonLinesSink(stdout, self.opts.score_every))
         return sinks
 
