@@ -266,7 +266,7 @@ class EvalResult:
         s = self.span()
         if not s["points"]:
             return "no point was evaluated"
-        text = (f"evaluation from {s['first']} (grid point {s['first_row']}) to {s['last']}: "
+        text = (f"Evaluation from {s['first']} (grid point {s['first_row']}) to {s['last']}: "
                 f"{s['points']} points")
         if s["before"]:
             text += f"; the {s['before']} points before are not counted"
@@ -491,7 +491,7 @@ def plot_traces(result: EvalResult) -> bytes:
         ax.plot(t, m.scores, lw=0.6, color=rep.colour(key, k), label="score")
         ax.plot(t, m.thresholds, lw=0.8, color="tab:red", ls="--", label="threshold")
         if start is not None:
-            ax.axvline(t[start], color="black", lw=1.0, ls=":",
+            ax.axvline(t[start], color="black", lw=1.4, ls="-.",
                        label="evaluation starts" if k == 0 else None)
         rep.positive_log_axis(ax, [m.scores])
         ax.set_ylabel(f"{m.name.split(' (')[0]}\n{score_label(result, key)}", fontsize=8)
@@ -510,7 +510,7 @@ def rule_html(result: EvalResult) -> str:
     step_s = steps.get("bundle hop", steps["point"])
     table = rep.html_table(["setting", "value", "meaning", "as time"],
                            [["threshold policy", result.rule.kind,
-                             dict(GLOSSARY)["threshold"], "-"]]
+                             rep.POLICY_TEXT.get(result.rule.kind, ""), "-"]]
                            + rep.alert_settings_rows(result.rule.alerting, step_s))
     note = (f"One step is one score: for the bundle one hop = {rep.duration(step_s)}; "
             if "bundle hop" in steps else "One step is one score: ")

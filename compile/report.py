@@ -105,9 +105,32 @@ def html_table(headers: Sequence[str], rows: Sequence[Sequence], classes: Option
     body = []
     for k, row in enumerate(rows):
         cls = f' class="{classes[k]}"' if classes and classes[k] else ""
-        body.append(f"<tr{cls}>" + "".join(f"<td>{html.escape(fmt(v))}</td>" for v in row)
-                    + "</tr>")
+        body.append(f"<tr{cls}>" + "".join(html_cell(v) for v in row) + "</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+class Html(str):
+    """Cell content that is already HTML (built from escaped parts): placed as it is."""
+
+
+def lines_html(lines: Sequence[str]) -> Html:
+    """Several items of text in one cell, as a bulleted list ('-' when there are none)."""
+    if not lines:
+        return Html("-")
+    return Html('<ul class="cell">' + "".join(f"<li>{html.escape(x)}</li>" for x in lines)
+                + "</ul>")
+
+
+def html_cell(value) -> str:
+    """A table cell; numbers right-aligned (class num) so their digits line up, text left."""
+    if isinstance(value, Html):
+        return f"<td>{value}</td>"
+    number = (isinstance(value, (int, float, np.integer, np.floating))
+              and not isinstance(value, (bool, np.bool_)))
+    text = fmt(value)
+    classes = " ".join(c for c, on in (("num", number), ("short", len(text) <= 24)) if on)
+    return f'<td class="{classes}">{html.escape(text)}</td>' if classes else \
+        f"<td>{html.escape(text)}</td>"
 
 
 def html_image(png: bytes, alt: str) -> str:
@@ -123,11 +146,12 @@ def html_page(title: str, sections: Sequence[tuple]) -> str:
 <style>
 body {{ font-family: sans-serif; margin: 2em; max-width: 1200px; color: #222; }}
 table {{ border-collapse: collapse; margin: 0.5em 0 1em; font-size: 0.9em; }}
-th, td {{ border: 1px solid #bbb; padding: 0.25em 0.6em; text-align: right; }}
-th:first-child, td:first-child {{ text-align: left; }}
+th, td {{ border: 1px solid #bbb; padding: 0.25em 0.6em; text-align: left; vertical-align: top; }}
+th {{ background: #f2f2f2; }} td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
+td:first-child, td.short {{ white-space: nowrap; }} ul.cell {{ margin: 0; padding-left: 1.1em; }} tr.group td {{ border-top: 2px solid #777; }}
 tr.fail td {{ background: #fbe3e3; }} tr.pass td {{ background: #e6f4e6; }}
 img {{ max-width: 100%; }} .note {{ color: #555; }}
-td {{ overflow-wrap: anywhere; }} table.facts td:last-child {{ text-align: left; font-family: monospace; }}
+table.facts td:last-child {{ font-family: monospace; overflow-wrap: anywhere; }}
 dl.glossary {{ display: grid; grid-template-columns: max-content auto; gap: 0.15em 1em; font-size: 0.9em; }}
 dl.glossary dt {{ font-weight: bold; }} dl.glossary dd {{ margin: 0; }}
 .verdict-pass {{ color: #1a6b1a; font-weight: bold; }} .verdict-fail {{ color: #a31515; font-weight: bold; }}
@@ -269,7 +293,13 @@ def facts_rows(provenance: dict) -> list:
 
 
 def facts_table(provenance: dict) -> str:
-    return html_table(["part", "what", "value"], facts_rows(provenance)).replace(
+    """The facts grouped by part: the part named once, a rule above each group."""
+    rows, classes, last = [], [], None
+    for part, label, value in facts_rows(provenance):
+        rows.append([part if part != last else "", label, fmt(value)])
+        classes.append("group" if part != last else "")
+        last = part
+    return html_table(["part", "what", "value"], rows, classes).replace(
         "<table>", '<table class="facts">', 1)
 
 
@@ -285,10 +315,19 @@ ALERT_SETTING_TEXT = {
 }
 
 
+POLICY_TEXT = {
+    "pot": "peaks-over-threshold: a generalised Pareto tail fitted to the calibration scores "
+           "sets the level",
+    "rolling": "rolling median of recent scores + k times their median absolute deviation (MAD)",
+    "static": "a fixed quantile of the calibration scores",
+}
+
+
 def alert_settings_rows(alerting: dict, step_s: Optional[float] = None) -> list:
     """[setting, value, meaning, as time] rows; `as time` when one step's length is known."""
     rows = []
-    for key, value in alerting.items():
+    order = [k for k in ALERT_SETTING_TEXT if k in alerting]
+    for key, value in ((k, alerting[k]) for k in order + sorted(set(alerting) - set(order))):
         as_time = "-"
         if step_s and key.endswith("_hops"):
             as_time = duration(float(value) * step_s)

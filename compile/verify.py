@@ -243,14 +243,20 @@ def _event_figures(times: np.ndarray, ref_alert, other_alert, match_hops: int) -
     step = np.timedelta64(1, "s")
     return {
         "device": len(ev_a), "other": len(ev_b), "matched": len(pairs),
-        "only_device": [str(times[ev_a[i][0]]) for i in miss_a],
-        "only_other": [str(times[ev_b[j][0]]) for j in miss_b],
+        "only_device": [_utc(times[ev_a[i][0]]) for i in miss_a],
+        "only_other": [_utc(times[ev_b[j][0]]) for j in miss_b],
         "agreement": 1.0 if not ev_a and not ev_b else 2 * len(pairs) / (len(ev_a) + len(ev_b)),
         "first_alert_delta_s": [
-            {"device": str(times[ev_a[i][0]]),
+            {"device": _utc(times[ev_a[i][0]]),
              "delta_s": float((times[ev_b[j][0]] - times[ev_a[i][0]]) / step)}
             for i, j in pairs],
     }
+
+
+def _utc(t) -> str:
+    """A hop time as ISO 8601 UTC ('Z'), milliseconds only when it has them."""
+    text = np.datetime_as_string(np.datetime64(t, "ms"))
+    return (text[:-4] if text.endswith(".000") else text) + "Z"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -494,7 +500,7 @@ def pair_table(result: VerifyResult) -> str:
     headers = ["pair", "hops", "max abs err", "max rel err", "Spearman", "alert agreement",
                "events matched (of device / other)", "judged", "result",
                "failed tolerance: by how much"]
-    rows = [row + ["; ".join(f["text"] for f in result.failures(name)) or "-"]
+    rows = [row + [rep.lines_html([f["text"] for f in result.failures(name)])]
             for row, name in zip(result.pair_rows(), result.pairs)]
     classes = ["pass" if p["passed"] else "fail" for p in result.pairs.values()]
     return rep.html_table(headers, rows, classes)
