@@ -102,10 +102,15 @@ def network_scores(weights: dict, windows: np.ndarray, rule: Optional[ScoreRule]
 
 def window_means(series: np.ndarray, window: int) -> np.ndarray:
     """Per-channel mean of the window ending at each row [T, C] (NaN before a full window and
-    where a window holds a NaN row)."""
-    out = np.full(series.shape, np.nan)
-    c = np.cumsum(np.vstack([np.zeros((1, series.shape[1])), series]), axis=0)
-    out[window - 1:] = (c[window:] - c[:-window]) / window
+    where a window holds a NaN row: a gap, or a rate channel's first row)."""
+    x = np.asarray(series, np.float64)
+    bad = ~np.isfinite(x)
+    zero = np.zeros((1, x.shape[1]))
+    total = np.cumsum(np.vstack([zero, np.where(bad, 0.0, x)]), axis=0)
+    holes = np.cumsum(np.vstack([zero, bad.astype(np.float64)]), axis=0)
+    out = np.full(x.shape, np.nan)
+    sums = total[window:] - total[:-window]
+    out[window - 1:] = np.where(holes[window:] - holes[:-window] > 0, np.nan, sums / window)
     return out
 
 

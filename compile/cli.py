@@ -35,9 +35,13 @@ def fail(message: str, code: int = 2):
     raise typer.Exit(code)
 
 
+INTERRUPTED_EXIT = 130     # 128 + SIGINT, as shells report a Ctrl-C (common practice)
+
+
 @contextmanager
-def user_errors():
-    """Turn boundary errors into one-line messages with exit code 2; show warnings tidily."""
+def user_errors(interrupted: str = "stopped before it finished"):
+    """Turn boundary errors into one-line messages with exit code 2, Ctrl-C into one line
+    saying what was interrupted (exit code 130); show warnings tidily."""
     from ganlet.compile.data import IntakeError
 
     with warnings.catch_warnings(record=True) as caught:
@@ -47,6 +51,10 @@ def user_errors():
         except (IntakeError, UsageProblem, FileNotFoundError, ValueError) as exc:
             flush_warnings(caught)
             fail(str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+        except KeyboardInterrupt:
+            flush_warnings(caught)
+            typer.echo(f"interrupted (Ctrl-C): {interrupted}", err=True)
+            raise typer.Exit(INTERRUPTED_EXIT) from None
         flush_warnings(caught)
 
 
@@ -158,7 +166,8 @@ def train(
     """Learn one machine's normal behaviour from a sensor history."""
     from ganlet.compile import pipeline
 
-    with user_errors():
+    with user_errors(interrupted=f"training stopped; {out} holds no complete new model "
+                                 "(run `ganlet train` again)"):
         options = pipeline.TrainOptions(
             sep=sep, time_col=time_col, channels=split_list(channels),
             exclude=split_list(exclude) or [], units=parse_units(units), period=period,
@@ -208,7 +217,8 @@ def compile_cmd(
     from ganlet.compile.pack import safe_name
     from ganlet.compile.pipeline import CompileOptions, compile_dir
 
-    with user_errors():
+    with user_errors(interrupted=f"compile stopped; {out} was left as it was (a bundle is "
+                                 "renamed into place only when complete)"):
         key = read_key(sign_key) if sign_key else None
         private_key = read_private_key(sign_ed25519) if sign_ed25519 else None
         if not (model_dir / "model.json").exists():
@@ -322,6 +332,8 @@ def fleet(
 
         def done(result, k, n):
             bar.update(task, completed=k, last=f"{result.asset}: {result.status}")
+            for line in fleet_mod.warning_lines(result):   # above the bar, one line each
+                bar.console.print(line, markup=False, highlight=False, soft_wrap=True)
 
         with bar:
             results = fleet_mod.run_fleet(spec, scheduler=scheduler, workers=workers,
@@ -358,11 +370,19 @@ register_reports()
 
 
 def main() -> None:
+    from ganlet.command import missing_extra
+
     try:
         app()
-    except KeyboardInterrupt:
-        typer.echo("interrupted", err=True)
-        sys.exit(130)
+    except KeyboardInterrupt:      # outside a command (typer turns most into "Aborted!")
+        typer.echo("interrupted (Ctrl-C)", err=True)
+        sys.exit(INTERRUPTED_EXIT)
+    except ImportError as exc:     # a command's own import of the compile extra
+        message = missing_extra(exc)
+        if message is None:
+            raise
+        typer.echo(message, err=True)
+        sys.exit(2)
 
 
 if __name__ == "__main__":

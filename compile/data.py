@@ -193,6 +193,24 @@ def read_table(path: Path, sep: Optional[str]) -> pd.DataFrame:
     return df
 
 
+# A number written with a decimal comma: 1,5  -0,25  1.234,5 (thousands dots allowed)
+DECIMAL_COMMA = r"^[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+$"
+
+
+def refuse_decimal_commas(df: pd.DataFrame, columns, path) -> None:
+    """Text columns whose cells are numbers with a decimal comma: say so (the delimiter is
+    right; the decimal mark is not the one pandas reads by default)."""
+    found = []
+    for col in columns:
+        cells = df[col].dropna().astype(str).str.strip().head(200)
+        if len(cells) and cells.str.match(DECIMAL_COMMA).mean() > 0.5:
+            found.append((str(col), cells.iloc[0]))
+    if found:
+        names = ", ".join(c for c, _ in found)
+        raise IntakeError(f"{path}: column(s) {names} hold numbers with a decimal comma (e.g. "
+                          f"{found[0][1]!r}); read them with --decimal ','")
+
+
 def find_time_column(df: pd.DataFrame, requested: Optional[str]) -> str:
     if requested is not None:
         if requested not in df.columns:
@@ -244,12 +262,14 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
                               f"columns are {', '.join(map(str, df.columns))}")
         channels = list(opts.channels)
         not_numeric = [c for c in channels if not pd.api.types.is_numeric_dtype(df[c])]
+        refuse_decimal_commas(df, not_numeric, path)
         if not_numeric:
             raise IntakeError(f"channel(s) {', '.join(not_numeric)} are not numeric")
     else:
         channels = [c for c in df.columns if c != time_col and c not in excluded
                     and pd.api.types.is_numeric_dtype(df[c]) and not pd.api.types.is_bool_dtype(df[c])]
     if not channels:
+        refuse_decimal_commas(df, [c for c in df.columns if c != time_col], path)
         raise IntakeError(f"{path}: no numeric channel found besides the time column "
                           f"{time_col!r}; check --sep, or name channels with --channels")
 
@@ -516,7 +536,9 @@ def parse_times(raw: pd.Series) -> pd.Series:
         if pd.api.types.is_numeric_dtype(raw):
             times = pd.to_datetime(raw, unit="s", errors="coerce")
         else:
-            times = pd.to_datetime(raw, errors="coerce", format="mixed")
+            # utc=True: offsets that change mid-file (summer time: +01:00 then +02:00) are
+            # each converted to UTC; naive times stay what they were (UTC)
+            times = pd.to_datetime(raw, errors="coerce", format="mixed", utc=True)
     if times.dt.tz is not None:
         times = times.dt.tz_convert("UTC").dt.tz_localize(None)
     return times

@@ -202,6 +202,25 @@ class Method:
     metrics: dict = field(default_factory=dict)
 
 
+GLOSSARY = (
+    ("precision", "share of the points flagged (alert open) that lie inside an incident"),
+    ("recall", "share of the points inside incidents that are flagged"),
+    ("F1", "F1 score: the harmonic mean of precision and recall, 2PR / (P + R)"),
+    ("FAR", "false-alarm rate: share of normal points flagged, FP / (FP + TN)"),
+    ("MAR", "missed-alarm rate: share of incident points not flagged, FN / (FN + TP)"),
+    ("event recall", "share of incidents with at least one flagged point"),
+    ("mean delay", "mean time from an incident's start to its first flagged point, over the "
+                   "incidents detected ('-' when none was)"),
+    ("false alarms/day", "alert events that touch no incident, per day of evaluated time"),
+    ("threshold", "the policy that sets each method's threshold: pot = peaks-over-threshold "
+                  "(a generalised Pareto tail fitted to the calibration scores), rolling = "
+                  "rolling median + k times the median absolute deviation (MAD), static = a "
+                  "fixed quantile of the calibration scores"),
+    ("TP, FP, FN, TN", "true positives, false positives, false negatives, true negatives "
+                       "(points)"),
+)
+
+
 @dataclass
 class EvalResult:
     source: str
@@ -214,39 +233,90 @@ class EvalResult:
     rule: Rule
     features: str
     notes: list = field(default_factory=list)
+    provenance: dict = field(default_factory=dict)   # what was tested (report.py parts)
 
     def table_rows(self):
         rows = []
         for m in self.methods.values():
             k = m.metrics
             rows.append([m.name, k["precision"], k["recall"], k["f1"], k["far"], k["mar"],
-                         k["event_recall"], k["mean_delay_s"], k["false_alarms_per_day"],
-                         m.policy_kind])
+                         k["event_recall"], rep.duration(k["mean_delay_s"]),
+                         k["false_alarms_per_day"], m.policy_kind])
         return rows
 
     HEADERS = ["method", "precision", "recall", "F1", "FAR", "MAR", "event recall",
-               "mean delay (s)", "false alarms/day", "threshold"]
+               "mean delay", "false alarms/day", "threshold"]
+    HTML_HEADERS = ["method", "precision", "recall", "F1 score", "false-alarm rate (FAR)",
+                    "missed-alarm rate (MAR)", "event recall", "mean detection delay",
+                    "false alarms per day", "threshold policy"]
+
+    @property
+    def step_s(self) -> dict:
+        """One step of the alert machine in seconds: a grid point, or the bundle's hop."""
+        period = (float((self.times[1] - self.times[0]).total_seconds())
+                  if len(self.times) > 1 else float("nan"))
+        out = {"point": period}
+        hop = self.provenance.get("bundle", {}).get("hop")
+        if hop:
+            out["bundle hop"] = hop * period
+        return out
+
+    def span(self) -> dict:
+        """Where evaluation starts and ends, and what was left out."""
+        idx = np.flatnonzero(self.evaluated)
+        if not len(idx):
+            return {"points": 0}
+        t = self.times
+        return {"first": f"{t[idx[0]]:%Y-%m-%d %H:%M:%S} UTC", "first_row": int(idx[0]),
+                "last": f"{t[idx[-1]]:%Y-%m-%d %H:%M:%S} UTC", "points": int(len(idx)),
+                "before": int(idx[0]),
+                "gaps": int(idx[-1] - idx[0] + 1 - len(idx))}
+
+    def span_text(self) -> str:
+        s = self.span()
+        if not s["points"]:
+            return "no point was evaluated"
+        text = (f"Evaluation from {s['first']} (grid point {s['first_row']}) to {s['last']}: "
+                f"{s['points']} points")
+        if s["before"]:
+            text += f"; the {s['before']} points before are not counted"
+        if s["gaps"]:
+            text += f"; {s['gaps']} points inside it with missing values are not counted"
+        return text
+
+    def rule_text(self) -> str:
+        steps = ", ".join(f"{k} {v}" for k, v in self.rule.alerting.items())
+        return (f"one threshold rule for all: the {self.rule.kind} policy calibrated on each "
+                f"method's own calibration-span scores, then the alert machine ({steps})")
 
     def summary(self) -> str:
         lines = [f"detection on {self.data} ({int(self.evaluated.sum())} points evaluated, "
                  f"{int(self.labels[self.evaluated].sum())} inside {len(self.incidents)} "
                  f"incidents); source {self.source}",
+                 self.span_text(),
                  rep.text_table(self.HEADERS, self.table_rows()),
+                 "F1 = harmonic mean of precision and recall; FAR = false-alarm rate (share of "
+                 "normal points flagged); MAR = missed-alarm rate (share of incident points "
+                 "missed)",
                  f"baseline features: {self.features}",
-                 f"one threshold rule for all: {self.rule.kind} policy calibrated on each "
-                 f"method's calibration-span scores, alert machine {self.rule.alerting}"]
+                 self.rule_text()]
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 
     def to_json(self) -> dict:
         return clean_json({
-            "source": self.source, "data": self.data,
+            "source": self.source, "data": self.data, "provenance": self.provenance,
+            "evaluation": self.span(),
             "evaluated_points": int(self.evaluated.sum()),
             "anomalous_points": int(self.labels[self.evaluated].sum()),
             "incidents": len(self.incidents), "features": self.features,
-            "rule": {"kind": self.rule.kind, "alerting": self.rule.alerting},
+            "rule": {"kind": self.rule.kind, "alerting": self.rule.alerting,
+                     "alerting_meaning": {k: rep.ALERT_SETTING_TEXT.get(k, "")
+                                          for k in self.rule.alerting},
+                     "step_s": self.step_s},
             "methods": {m.name: dict(m.metrics, threshold=m.policy_kind)
                         for m in self.methods.values()},
+            "glossary": dict(GLOSSARY),
             "notes": self.notes})
 
 
@@ -296,11 +366,12 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
     y = incident_labels(frame.times, inc)
     evaluated = _evaluated(frame, eval_mask, eval_from)
-    methods = {}
+    methods, capture = {}, None
     with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
         feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp))
         if bundle is not None:
-            methods["bundle"] = _gateway_method(bundle, feed, frame, Path(tmp), rule.kind)
+            methods["bundle"], capture = _gateway_method(bundle, feed, frame, Path(tmp),
+                                                         rule.kind)
         if model is not None and teacher:
             hop = bundle.hop if bundle is not None else 1
             methods["teacher"] = _teacher_method(model, feed, frame, rule, hop)
@@ -318,7 +389,9 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
                                "robust-scaled on the fit span (the data as delivered, whatever "
                                "the detector watches); rolling z-score over the trailing "
                                f"{ROLLING_Z_WINDOW} points",
-                      notes=notes)
+                      notes=notes,
+                      provenance=tested(bundle, model_dir if bundle is not None else source,
+                                        data, frame.report.time_col, capture))
 
 
 def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_week: float):
@@ -375,12 +448,13 @@ def _on_grid(frame: Frame, times, score, threshold, alert, name: str, kind: str)
                   np.nan_to_num(held_alert) > 0.5, kind)
 
 
-def _gateway_method(bundle, feed: Path, frame: Frame, workdir: Path, kind: str) -> Method:
-    """The bundle's own `run.py stream` on the feed: what the gateway does."""
+def _gateway_method(bundle, feed: Path, frame: Frame, workdir: Path, kind: str):
+    """The bundle's own `run.py stream` on the feed: what the gateway does; and the
+    provenance lines of its scores file."""
     dev = read_scores(run_bundle(bundle.dir, feed, workdir / "gateway").scores)
     return _on_grid(frame, dev["time"].to_numpy(), dev["score"].to_numpy(),
                     dev["threshold"].to_numpy(), dev["alert"].to_numpy(),
-                    "bundle (int8, gateway path)", kind)
+                    "bundle (int8, gateway path)", kind), dev.attrs.get("provenance", {})
 
 
 def _teacher_method(model, feed: Path, frame: Frame, rule: Rule, hop: int) -> Method:
@@ -417,29 +491,71 @@ def _baseline_methods(model, frame: Frame, rule: Rule) -> dict:
 # report
 
 
+def tested(bundle, model_dir, data, time_col: str, capture: Optional[dict]) -> dict:
+    """What an evaluation tested: report.py's parts (bundle or model directory, data, the
+    gateway run that scored the bundle, this workstation)."""
+    from ganlet.runtime.manifest import file_sha256
+
+    out = {"report": rep.workstation(), "data": rep.data_facts(data, time_col)}
+    if bundle is not None:
+        out["bundle"] = rep.bundle_facts(bundle)
+        out["device"] = rep.device_facts(capture or {}, "workstation run of the bundle's "
+                                                        "run.py stream (numpy backend)")
+    if model_dir is not None:
+        out["model"] = {"path": str(model_dir),
+                        "model_json_sha256": file_sha256(Path(model_dir) / "model.json")}
+    return out
+
+
+def score_label(result: EvalResult, key: str) -> str:
+    unit = "dimensionless"
+    if key == "bundle":
+        unit = result.provenance.get("bundle", {}).get("score_unit_short", unit)
+    return f"score [{unit}]"
+
+
 def plot_traces(result: EvalResult) -> bytes:
     plt = rep.pyplot()
     names = list(result.methods)
-    fig, axes = plt.subplots(len(names), 1, figsize=(12, 1.7 * len(names) + 0.8), sharex=True,
+    fig, axes = plt.subplots(len(names), 1, figsize=(12, 1.8 * len(names) + 1.0), sharex=True,
                              constrained_layout=True, squeeze=False)
     t = result.times
+    start = result.span().get("first_row")
     for k, key in enumerate(names):
-        m = result.methods[key]
-        ax = axes[k, 0]
+        m, ax = result.methods[key], axes[k, 0]
+        rep.shade_runs(ax, t, ~result.evaluated, "0.85", 0.5, "not evaluated")
         rep.shade_runs(ax, t, result.labels, "tab:orange", 0.25, "incident")
         rep.shade_runs(ax, t, m.alert & result.evaluated, "tab:red", 0.25, "alert open")
-        ax.plot(t, m.scores, lw=0.6, color=rep.colour(key if key != "bundle" else "bundle", k),
-                label="score")
+        ax.plot(t, m.scores, lw=0.6, color=rep.colour(key, k), label="score")
         ax.plot(t, m.thresholds, lw=0.8, color="tab:red", ls="--", label="threshold")
+        if start is not None:
+            ax.axvline(t[start], color="black", lw=1.4, ls="-.",
+                       label="evaluation starts" if k == 0 else None)
         rep.positive_log_axis(ax, [m.scores])
-        ax.set_ylabel(m.name.split(" (")[0], fontsize=9)
-        f1 = m.metrics.get("f1", float("nan"))
-        ax.set_title(f"{m.name}: F1 {f1:.3f}, FAR {m.metrics.get('far', 0):.3f}",
-                     fontsize=9, loc="left")
+        ax.set_ylabel(f"{m.name.split(' (')[0]}\n{score_label(result, key)}", fontsize=8)
+        ax.set_title(f"{m.name}: F1 {m.metrics.get('f1', float('nan')):.3f}, false-alarm rate "
+                     f"{m.metrics.get('far', 0):.3f}", fontsize=9, loc="left")
         if k == 0:
-            ax.legend(loc="upper right", fontsize=8, ncol=4)
-    fig.suptitle("scores with incidents shaded (orange) and open alerts (red)")
+            ax.legend(loc="upper left", fontsize=8, ncol=6)
+    rep.time_axis(axes[-1, 0])
+    fig.suptitle("scores and thresholds; incidents shaded orange, open alerts red, points "
+                 "not evaluated grey")
     return rep.figure_png(fig)
+
+
+def rule_html(result: EvalResult) -> str:
+    steps = result.step_s
+    step_s = steps.get("bundle hop", steps["point"])
+    table = rep.html_table(["setting", "value", "meaning", "as time"],
+                           [["threshold policy", result.rule.kind,
+                             rep.POLICY_TEXT.get(result.rule.kind, ""), "-"]]
+                           + rep.alert_settings_rows(result.rule.alerting, step_s))
+    note = (f"One step is one score: for the bundle one hop = {rep.duration(step_s)}; "
+            if "bundle hop" in steps else "One step is one score: ")
+    note += (f"the teacher and the baselines score every grid point "
+             f"({rep.duration(steps['point'])}). The same settings apply to every method; each "
+             "method's threshold is calibrated on its own calibration-span scores.")
+    return table + rep.paragraph(note, "note")
 
 
 def write_html(result: EvalResult, path: Path) -> Path:
@@ -447,13 +563,13 @@ def write_html(result: EvalResult, path: Path) -> Path:
         ("Summary", rep.paragraph(
             f"{int(result.evaluated.sum())} points evaluated, "
             f"{int(result.labels[result.evaluated].sum())} inside {len(result.incidents)} "
-            f"incidents. Source: {result.source}.")),
-        ("Methods side by side", rep.html_table(result.HEADERS, result.table_rows())
-         + rep.paragraph(f"Baseline features: {result.features}. One threshold rule for all "
-                         f"methods: the {result.rule.kind} policy calibrated on each method's "
-                         f"own calibration-span scores, then the alert machine "
-                         f"{result.rule.alerting}.", "note")),
-        ("Incidents", rep.html_table(["start", "end", "kind"],
+            f"incidents. Source: {result.source}.") + rep.paragraph(result.span_text() + ".")),
+        ("What was tested", rep.facts_table(result.provenance)),
+        ("Methods side by side", rep.html_table(result.HTML_HEADERS, result.table_rows())
+         + rep.definitions(GLOSSARY)
+         + rep.paragraph(f"Baseline features: {result.features}.", "note")),
+        ("Threshold rule and alert settings", rule_html(result)),
+        ("Incidents", rep.html_table(["start (UTC)", "end (UTC)", "kind"],
                                      result.incidents.astype(str).values.tolist())),
     ]
     if result.notes:

@@ -36,6 +36,7 @@ import json
 import re
 import time
 import traceback
+import warnings
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Callable, Optional
@@ -90,6 +91,7 @@ class AssetResult:
     f1: Optional[float] = None
     input_hash: str = ""
     paths: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)   # one clean line each (run_asset)
 
     def row(self) -> dict:
         return {"asset": self.asset, "status": self.status,
@@ -198,7 +200,35 @@ def input_hash(spec: AssetSpec, fleet: FleetSpec) -> str:
 
 
 def run_asset(spec: AssetSpec, fleet: FleetSpec) -> AssetResult:
-    """One asset, start to end, in whichever process calls it. Never raises."""
+    """One asset, start to end, in whichever process calls it. Never raises. Warnings raised
+    on the way come back in result.warnings (one line each) instead of going to the worker's
+    stderr as raw `UserWarning` lines with source paths that name no asset."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        return _run_asset(spec, fleet, caught)
+
+
+def clean_warnings(caught) -> list:
+    """Recorded warnings -> distinct one-line texts, the category named unless it is the plain
+    UserWarning; library deprecation notices left out (as the CLI does)."""
+    out = []
+    for w in caught:
+        if issubclass(w.category, (DeprecationWarning, FutureWarning)):
+            continue
+        text = " ".join(str(w.message).split())
+        if w.category is not UserWarning:
+            text = f"{text} ({w.category.__name__})"
+        if text not in out:
+            out.append(text)
+    return out
+
+
+def warning_lines(result: AssetResult) -> list:
+    """What the CLI prints for an asset's warnings: one line each, naming the asset."""
+    return [f"warning: {result.asset}: {w}" for w in result.warnings]
+
+
+def _run_asset(spec: AssetSpec, fleet: FleetSpec, caught: list) -> AssetResult:
     started = time.perf_counter()
     out = Path(fleet.out) / spec.id
     try:
@@ -213,7 +243,7 @@ def run_asset(spec: AssetSpec, fleet: FleetSpec) -> AssetResult:
         if previous.exists():
             last = json.loads(previous.read_text())
             if last.get("status") == "ok" and last.get("input_hash") == digest:
-                return AssetResult(**{**last, "status": "skipped",
+                return AssetResult(**{**last, "status": "skipped", "warnings": [],
                                       "reason": "inputs unchanged since the last run",
                                       "seconds": time.perf_counter() - started})
         result = build_asset(spec, fleet, out)
@@ -223,6 +253,7 @@ def run_asset(spec: AssetSpec, fleet: FleetSpec) -> AssetResult:
         out.mkdir(parents=True, exist_ok=True)
         (out / "error.txt").write_text(traceback.format_exc())
     result.seconds = time.perf_counter() - started
+    result.warnings = clean_warnings(caught)
     out.mkdir(parents=True, exist_ok=True)
     (out / "result.json").write_text(json.dumps(asdict(result), indent=2, default=str))
     return result

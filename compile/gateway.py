@@ -17,7 +17,7 @@ from typing import Sequence
 import pandas as pd
 
 from ganlet.compile.data import IntakeError, parse_times, read_table
-from ganlet.runtime.events import ALERT_EVENTS
+from ganlet.runtime.events import ALERT_EVENTS, read_provenance
 
 
 class UnusableInput(ValueError):
@@ -81,12 +81,16 @@ def run_bundle(bundle_dir: Path, feed: Path, out_dir: Path, backend: str = "nump
 
 
 def read_scores(path: Path) -> pd.DataFrame:
-    """A scores CSV (time,score,threshold,alert) with times as naive UTC datetimes."""
+    """A scores CSV (time,score,threshold,alert) with times as naive UTC datetimes; the `# key:
+    value` lines at its top (runtime/events.py) in .attrs["provenance"] ({} for a file
+    without them)."""
     path = Path(path)
     if not path.is_file():
         raise UnusableInput(f"{path}: no such scores file")
+    with open(path, "rb") as fh:
+        provenance = read_provenance(fh)
     try:
-        df = pd.read_csv(path)
+        df = pd.read_csv(path, comment="#")
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise UnusableInput(f"{path}: not a scores CSV ({exc})") from None
     need = ["time", "score", "threshold", "alert"]
@@ -98,8 +102,20 @@ def read_scores(path: Path) -> pd.DataFrame:
     times = parse_times(df["time"].astype(str))
     if times.isna().any():
         raise UnusableInput(f"{path}: {int(times.isna().sum())} times cannot be parsed")
-    return pd.DataFrame({"time": times.to_numpy(),
-                         "score": pd.to_numeric(df["score"], errors="coerce").to_numpy(float),
-                         "threshold": pd.to_numeric(df["threshold"],
-                                                    errors="coerce").to_numpy(float),
-                         "alert": df["alert"].fillna(0).astype(int).to_numpy() > 0})
+    out = pd.DataFrame({"time": times.to_numpy(),
+                        "score": pd.to_numeric(df["score"], errors="coerce").to_numpy(float),
+                        "threshold": pd.to_numeric(df["threshold"],
+                                                   errors="coerce").to_numpy(float),
+                        "alert": df["alert"].fillna(0).astype(int).to_numpy() > 0})
+    out.attrs["provenance"] = provenance
+    return out
+
+
+def check_scores_bundle(scores: pd.DataFrame, bundle_id: str, bundle_name: str = "") -> None:
+    """Refuse a scores file that says it comes from another bundle (UnusableInput)."""
+    theirs = scores.attrs.get("provenance", {})
+    if theirs.get("bundle_id") and theirs["bundle_id"] != bundle_id:
+        their_name = f" ({theirs['bundle_name']})" if theirs.get("bundle_name") else ""
+        our_name = f" ({bundle_name})" if bundle_name else ""
+        raise UnusableInput(f"scores are from bundle {theirs['bundle_id'][:12]}{their_name}, "
+                            f"not {bundle_id[:12]}{our_name}")

@@ -33,7 +33,13 @@ from scipy.stats import spearmanr
 
 from ganlet.compile import report as rep
 from ganlet.compile.data import parse_times, runs
-from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
+from ganlet.compile.gateway import (
+    UnusableInput,
+    check_scores_bundle,
+    gateway_csv,
+    read_scores,
+    run_bundle,
+)
 from ganlet.runtime.detector import Detector, Judge
 from ganlet.runtime.intake import RowError
 from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
@@ -69,6 +75,61 @@ class Tolerances:
                 raise UnusableInput(f"--tolerance {key}={value!r} is not a number") from None
             setattr(tol, key, number)
         return tol
+
+
+TOLERANCE_TEXT = {
+    "score_rel": "largest relative score difference |other - device| / |device| on any hop "
+                 "(pairs sharing the int8 weights)",
+    "spearman_min": "lowest Spearman rank correlation of the scores (pairs sharing the int8 "
+                    "weights)",
+    "sample_agreement_min": "lowest share of hops on which both series agree whether an alert "
+                            "is open (pairs sharing the int8 weights)",
+    "event_match_hops": "an alert opening matches one in the other series when the two starts "
+                        "are at most this many hops apart; every alert must match (pairs "
+                        "sharing the int8 weights)",
+    "teacher_spearman_min": "lowest Spearman rank correlation against the fp32 student and the "
+                            "teacher (other networks: judged by rank only)",
+}
+
+
+def failed_checks(pair: dict, tol: Tolerances) -> list:
+    """Each failed check of one pair: the tolerance it broke, the value, and by how much."""
+    out = []
+    for check, ok in pair.get("checks", {}).items():
+        if not ok:
+            out.append(_failure(check, pair, tol))
+    return out
+
+
+def _failure(check: str, pair: dict, tol: Tolerances) -> dict:
+    if check == "score_rel":
+        value, limit = pair["max_rel_error"], tol.score_rel
+        text = (f"score_rel: max relative error {value:.3g} exceeds {limit:g} by "
+                f"{value - limit:.3g} ({value / limit:.3g} times the tolerance)")
+        return {"tolerance": "score_rel", "limit": limit, "value": value,
+                "by": value - limit, "text": text}
+    if check == "spearman":
+        name = "spearman_min" if pair["strict"] else "teacher_spearman_min"
+        value, limit = pair["spearman"], getattr(tol, name)
+        if not np.isfinite(value):
+            return {"tolerance": name, "limit": limit, "value": None, "by": None,
+                    "text": f"{name}: Spearman undefined (fewer than 3 hops scored by both, "
+                            "or a constant series)"}
+        return {"tolerance": name, "limit": limit, "value": value, "by": limit - value,
+                "text": f"{name}: Spearman {value:.6g} is {limit - value:.3g} below {limit:g}"}
+    if check == "sample_agreement":
+        value, limit = pair["sample_agreement"], tol.sample_agreement_min
+        return {"tolerance": "sample_agreement_min", "limit": limit, "value": value,
+                "by": limit - value,
+                "text": f"sample_agreement_min: alert state agrees on {value:.2%} of hops, "
+                        f"{(limit - value) * 100:.2f} points below {limit:.2%}"}
+    ev = pair["events"]
+    unmatched = len(ev["only_device"]) + len(ev["only_other"])
+    return {"tolerance": "event_match_hops", "limit": tol.event_match_hops, "value": unmatched,
+            "by": unmatched,
+            "text": f"event_match_hops: {len(ev['only_device'])} device alert(s) and "
+                    f"{len(ev['only_other'])} other alert(s) have no partner within "
+                    f"{tol.event_match_hops} hops"}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -182,14 +243,20 @@ def _event_figures(times: np.ndarray, ref_alert, other_alert, match_hops: int) -
     step = np.timedelta64(1, "s")
     return {
         "device": len(ev_a), "other": len(ev_b), "matched": len(pairs),
-        "only_device": [str(times[ev_a[i][0]]) for i in miss_a],
-        "only_other": [str(times[ev_b[j][0]]) for j in miss_b],
+        "only_device": [_utc(times[ev_a[i][0]]) for i in miss_a],
+        "only_other": [_utc(times[ev_b[j][0]]) for j in miss_b],
         "agreement": 1.0 if not ev_a and not ev_b else 2 * len(pairs) / (len(ev_a) + len(ev_b)),
         "first_alert_delta_s": [
-            {"device": str(times[ev_a[i][0]]),
+            {"device": _utc(times[ev_a[i][0]]),
              "delta_s": float((times[ev_b[j][0]] - times[ev_a[i][0]]) / step)}
             for i, j in pairs],
     }
+
+
+def _utc(t) -> str:
+    """A hop time as ISO 8601 UTC ('Z'), milliseconds only when it has them."""
+    text = np.datetime_as_string(np.datetime64(t, "ms"))
+    return (text[:-4] if text.endswith(".000") else text) + "Z"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -236,17 +303,24 @@ class VerifyResult:
     notes: list = field(default_factory=list)
     hops: int = 0
     device_replay_agreement: float = float("nan")
+    provenance: dict = field(default_factory=dict)   # report.provenance parts: what was tested
 
     @property
     def passed(self) -> bool:
         judged = [p for p in self.pairs.values() if p.get("checks")]
         return bool(judged) and all(p["passed"] for p in judged)
 
+    def failures(self, name: str) -> list:
+        return failed_checks(self.pairs[name], self.tolerances)
+
     def to_json(self) -> dict:
+        pairs = {name: dict(p, failed=self.failures(name)) for name, p in self.pairs.items()}
         return {"passed": self.passed, "bundle": self.bundle, "data": self.data,
                 "device_source": self.device_source, "hops": self.hops,
+                "provenance": self.provenance,
                 "device_alert_replay_agreement": self.device_replay_agreement,
-                "tolerances": asdict(self.tolerances), "pairs": self.pairs, "notes": self.notes,
+                "tolerances": asdict(self.tolerances), "tolerance_meaning": TOLERANCE_TEXT,
+                "pairs": pairs, "notes": self.notes,
                 "judging": "pairs sharing the int8 weights (device vs onnxruntime, device vs "
                            "numpy) are held to the strict tolerances; pairs against the fp32 "
                            "student and the teacher are different networks and are judged by "
@@ -271,6 +345,8 @@ class VerifyResult:
                  rep.text_table(["pair", "hops", "max abs err", "max rel err", "spearman",
                                  "alert agree", "events matched (of device / other)",
                                  "judged", "result"], rows)]
+        for name in self.pairs:
+            lines += [f"FAIL device vs {name}: {f['text']}" for f in self.failures(name)]
         lines += [f"note: {n}" for n in self.notes]
         lines.append("PASS" if self.passed else "FAIL")
         return "\n".join(lines)
@@ -291,6 +367,7 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
             source = "workstation run of the bundle's run.py stream (numpy backend)"
         else:
             device = read_scores(device_scores)
+            check_scores_bundle(device, bundle.bundle_id, bundle.manifest["name"])
             source = f"device capture {device_scores}"
         replays = {name: replay_feed(bundle, scorer, feed)
                    for name, scorer in workstation_scorers(bundle, model_dir, notes).items()}
@@ -309,9 +386,13 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
                      f"machine reproduces its alert column on {replay_agreement:.2%} of hops "
                      "(a restart from a checkpoint mid-stream, or a different runtime, would "
                      "explain a difference)")
+    provenance = {"report": rep.workstation(), "bundle": rep.bundle_facts(bundle),
+                  "data": rep.data_facts(data, bundle.time_column),
+                  "device": rep.device_facts(device.attrs.get("provenance", {}), source)}
     return VerifyResult(bundle=str(bundle.dir), data=str(data), device_source=source,
                         times=times, series=series, pairs=pairs, tolerances=tol, notes=notes,
-                        hops=len(times), device_replay_agreement=replay_agreement)
+                        hops=len(times), device_replay_agreement=replay_agreement,
+                        provenance=provenance)
 
 
 def _at_device_hops(times: np.ndarray, r: Replay) -> dict:
@@ -344,90 +425,124 @@ def _note_alignment(notes: list, times: np.ndarray, r: Replay) -> None:
 
 
 def plots(result: VerifyResult) -> list:
+    unit = result.provenance.get("bundle", {}).get("score_unit_short", "dimensionless")
+    figs = [("score overlay", _overlay_png(result, unit))]
+    if len(result.series) > 1:
+        figs.append(("device vs workstation scatter", _scatter_png(result, unit)))
+        figs.append(("error histogram", _error_histogram_png(result)))
+    return figs
+
+
+def _overlay_png(result: VerifyResult, unit: str) -> bytes:
     plt = rep.pyplot()
-    t = result.times
-    figs = []
-    names = list(result.series)
-    fig, axes = plt.subplots(len(names), 1, figsize=(12, 1.9 * len(names) + 0.6), sharex=True,
+    t, names = result.times, list(result.series)
+    fig, axes = plt.subplots(len(names), 1, figsize=(12, 1.9 * len(names) + 0.9), sharex=True,
                              constrained_layout=True, squeeze=False)
     for k, name in enumerate(names):
-        ax = axes[k, 0]
-        s = result.series[name]
+        ax, s = axes[k, 0], result.series[name]
         ax.plot(t, s["score"], lw=0.7, color=rep.colour(name, k), label=f"{name} score")
         ax.plot(t, s["threshold"], lw=0.9, color="tab:red", ls="--", label="threshold")
         rep.shade_runs(ax, t, s["alert"], "tab:red", 0.18, "alert open")
         rep.positive_log_axis(ax, [s["score"], s["threshold"]])
-        ax.set_ylabel(name)
+        ax.set_ylabel(f"{name}\nscore [{unit}]", fontsize=9)
         ax.legend(loc="upper left", fontsize=8, ncol=3)
     axes[0, 0].set_title("score, threshold and open alerts at the device's hops")
-    figs.append(("score overlay", rep.figure_png(fig)))
+    rep.time_axis(axes[-1, 0])
+    return rep.figure_png(fig)
 
-    others = [n for n in names if n != "device"]
-    if others:
-        fig, axes = plt.subplots(1, len(others), figsize=(3.6 * len(others) + 0.5, 3.8),
-                                 constrained_layout=True, squeeze=False)
-        dev = result.series["device"]["score"]
-        for k, name in enumerate(others):
-            ax = axes[0, k]
-            o = result.series[name]["score"]
-            ok = np.isfinite(dev) & np.isfinite(o)
-            ax.scatter(dev[ok], o[ok], s=5, alpha=0.5, color=rep.colour(name, k))
-            if ok.any():
-                lo = max(min(dev[ok].min(), o[ok].min()), 1e-12)
-                hi = max(dev[ok].max(), o[ok].max())
-                ax.plot([lo, hi], [lo, hi], color="grey", lw=0.8, ls=":")
-                if hi / lo > 10:
-                    ax.set_xscale("log")
-                    ax.set_yscale("log")
-            p = result.pairs[name]
-            ax.set_title(f"{name}\nSpearman {rep.fmt(p['spearman'], 6)}", fontsize=9)
-            ax.set_xlabel("device score")
-            ax.set_ylabel(f"{name} score")
-        figs.append(("device vs workstation scatter", rep.figure_png(fig)))
 
-        fig, ax = plt.subplots(figsize=(8, 3.8), constrained_layout=True)
-        for k, name in enumerate(others):
-            o = result.series[name]["score"]
-            ok = np.isfinite(dev) & np.isfinite(o)
-            rel = np.abs(o[ok] - dev[ok]) / np.maximum(np.abs(dev[ok]), 1e-12)
-            rel = np.log10(np.maximum(rel, 1e-12))
-            if len(rel):
-                ax.hist(rel, bins=60, histtype="step", lw=1.4, color=rep.colour(name, k),
-                        label=name)
-        ax.axvline(np.log10(result.tolerances.score_rel), color="tab:red", ls="--",
-                   label=f"score_rel tolerance {result.tolerances.score_rel:g}")
-        ax.set_xlabel("log10 relative score error against the device (exact matches at -12)")
-        ax.set_ylabel("hops")
-        ax.set_title("relative score error per hop")
-        ax.legend(fontsize=8)
-        figs.append(("error histogram", rep.figure_png(fig)))
-    return figs
+def _scatter_png(result: VerifyResult, unit: str) -> bytes:
+    plt = rep.pyplot()
+    others = [n for n in result.series if n != "device"]
+    fig, axes = plt.subplots(1, len(others), figsize=(3.6 * len(others) + 0.5, 3.9),
+                             constrained_layout=True, squeeze=False)
+    dev = result.series["device"]["score"]
+    for k, name in enumerate(others):
+        ax, o = axes[0, k], result.series[name]["score"]
+        ok = np.isfinite(dev) & np.isfinite(o)
+        ax.scatter(dev[ok], o[ok], s=5, alpha=0.5, color=rep.colour(name, k))
+        if ok.any():
+            lo = max(min(dev[ok].min(), o[ok].min()), 1e-12)
+            hi = max(dev[ok].max(), o[ok].max())
+            ax.plot([lo, hi], [lo, hi], color="grey", lw=0.8, ls=":", label="equal")
+            if hi / lo > 10:
+                ax.set_xscale("log")
+                ax.set_yscale("log")
+        ax.set_title(f"{name}\nSpearman {rep.fmt(result.pairs[name]['spearman'], 6)}",
+                     fontsize=9)
+        ax.set_xlabel(f"device score [{unit}]")
+        ax.set_ylabel(f"{name} score [{unit}]")
+    return rep.figure_png(fig)
+
+
+def _error_histogram_png(result: VerifyResult) -> bytes:
+    plt = rep.pyplot()
+    fig, ax = plt.subplots(figsize=(8, 3.8), constrained_layout=True)
+    dev = result.series["device"]["score"]
+    for k, name in enumerate(n for n in result.series if n != "device"):
+        o = result.series[name]["score"]
+        ok = np.isfinite(dev) & np.isfinite(o)
+        rel = np.abs(o[ok] - dev[ok]) / np.maximum(np.abs(dev[ok]), 1e-12)
+        if len(rel):
+            ax.hist(np.log10(np.maximum(rel, 1e-12)), bins=60, histtype="step", lw=1.4,
+                    color=rep.colour(name, k), label=name)
+    ax.axvline(np.log10(result.tolerances.score_rel), color="tab:red", ls="--",
+               label=f"score_rel tolerance {result.tolerances.score_rel:g}")
+    ax.set_xlabel("log10 of the relative score error against the device (dimensionless; "
+                  "exact matches at -12)")
+    ax.set_ylabel("hops (count)")
+    ax.set_title("relative score error per hop")
+    ax.legend(fontsize=8)
+    return rep.figure_png(fig)
+
+
+def pair_table(result: VerifyResult) -> str:
+    headers = ["pair", "hops", "max abs err", "max rel err", "Spearman", "alert agreement",
+               "events matched (of device / other)", "judged", "result",
+               "failed tolerance: by how much"]
+    rows = [row + [rep.lines_html([f["text"] for f in result.failures(name)])]
+            for row, name in zip(result.pair_rows(), result.pairs)]
+    classes = ["pass" if p["passed"] else "fail" for p in result.pairs.values()]
+    return rep.html_table(headers, rows, classes)
+
+
+def event_rows(result: VerifyResult) -> list:
+    rows = []
+    for name, p in result.pairs.items():
+        for d in p["events"]["first_alert_delta_s"]:
+            rows.append([name, d["device"], d["delta_s"]])
+        rows += [[name, s, "no matching alert"] for s in p["events"]["only_device"]]
+        rows += [[name, f"(only {name}) {s}", "no device alert"]
+                 for s in p["events"]["only_other"]]
+    return rows
+
+
+def tolerance_rows(result: VerifyResult) -> list:
+    return [[k, v, TOLERANCE_TEXT.get(k, "")] for k, v in asdict(result.tolerances).items()]
+
+
+def verdict_html(result: VerifyResult) -> str:
+    word = "PASS" if result.passed else "FAIL"
+    cls = "verdict-pass" if result.passed else "verdict-fail"
+    failed = [f"device vs {n}: {f['text']}" for n in result.pairs for f in result.failures(n)]
+    body = (f'<p><span class="{cls}">{word}</span>: {result.hops} hops compared; device = '
+            f"{rep.html.escape(result.device_source)}.</p>")
+    return body + "".join(rep.paragraph(f) for f in failed)
 
 
 def write_html(result: VerifyResult, path: Path) -> Path:
-    headers = ["pair", "hops", "max abs err", "max rel err", "spearman", "alert agreement",
-               "events matched", "judged", "result"]
-    rows = result.pair_rows()
-    classes = ["pass" if p["passed"] else "fail" for p in result.pairs.values()]
-    deltas = []
-    for name, p in result.pairs.items():
-        for d in p["events"]["first_alert_delta_s"]:
-            deltas.append([name, d["device"], d["delta_s"]])
-        for s in p["events"]["only_device"]:
-            deltas.append([name, s, "no matching alert"])
-        for s in p["events"]["only_other"]:
-            deltas.append([name, f"(only {name}) {s}", "no device alert"])
-    tol = asdict(result.tolerances)
+    deltas = event_rows(result)
     sections = [
-        ("Verdict", rep.paragraph(("PASS" if result.passed else "FAIL")
-                                  + f": {result.hops} hops; device = {result.device_source}.")),
-        ("Pairs", rep.html_table(headers, rows, classes) + rep.paragraph(
+        ("Verdict", verdict_html(result)),
+        ("What was tested", rep.facts_table(result.provenance)),
+        ("Pairs", pair_table(result) + rep.paragraph(
             "Pairs sharing the int8 weights (device vs onnxruntime, device vs numpy) are held "
             "to the strict tolerances. The fp32 student and the teacher are different networks: "
             "those pairs are judged by rank correlation only (teacher_spearman_min).", "note")),
-        ("Tolerances", rep.html_table(["tolerance", "value"], [[k, v] for k, v in tol.items()])),
+        ("Tolerances applied", rep.html_table(["tolerance", "value", "meaning"],
+                                              tolerance_rows(result))),
         ("Alert events: first-alert time difference (other minus device)",
-         rep.html_table(["series", "device alert opened", "difference (s)"], deltas)
+         rep.html_table(["series", "device alert opened (UTC)", "difference (s)"], deltas)
          if deltas else rep.paragraph("no alert events in any series")),
     ]
     if result.notes:

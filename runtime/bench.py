@@ -5,9 +5,14 @@ Figures are printed, never asserted. Measured keys:
     latency_ms_p50, latency_ms_p99   one window scored, as the stream does it once per hop
     hops_per_s                       1000 / mean latency
     cold_start_s                     `python run.py stream` spawned -> its first score event
-    peak_rss_mb                      ru_maxrss of that stream process (os.wait4 rusage, the
-                                     same figure resource.getrusage reports), per backend;
-                                     without the cold start: this process's own ru_maxrss
+    peak_rss_mb                      the stream process's own peak resident memory up to its
+                                     first score: VmHWM of /proc/PID/status (Linux), read while
+                                     it waits for more input (--follow). Not its ru_maxrss:
+                                     Linux folds the spawning process's peak into the child's
+                                     ru_maxrss at exec (with fork, vfork and posix_spawn alike),
+                                     so a big parent inflated it. Without /proc: ru_maxrss
+                                     (peak_rss_how says which). Without the cold start: this
+                                     process's own ru_maxrss
     bench_rss_mb                     resource.getrusage(RUSAGE_SELF).ru_maxrss of this process
                                      (a high-water mark: later backends include earlier ones)
     bundle_kb                        bytes on disk of the whole bundle
@@ -88,9 +93,9 @@ def _run_command(bundle) -> List[str]:
 
 
 def cold_start(bundle, backend: str, timeout_s: float = 120.0,
-               run_args: Sequence[str] = ()) -> Tuple[Optional[float], float]:
+               run_args: Sequence[str] = ()) -> Tuple[Optional[float], float, str]:
     """(seconds from spawning the stream command to its first score event on stdout,
-    peak RSS in MB of that process)."""
+    peak RSS in MB of that process, how the peak was measured)."""
     with tempfile.TemporaryDirectory() as tmp:
         csv_path = Path(tmp) / "cold.csv"
         lines = [",".join([bundle.time_column] + list(bundle.channels))]
@@ -100,11 +105,12 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0,
         csv_path.write_text("\n".join(lines) + "\n")
         cmd = _run_command(bundle) + [
             "stream", "--input", str(csv_path), "--backend", backend, "--score-every", "1",
-            "--heartbeat", "0", "--checkpoint-every", "0", *run_args,
+            "--heartbeat", "0", "--checkpoint-every", "0", "--follow",  # alive until killed
+            *run_args,
         ]
         t0 = time.perf_counter()
         proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
-        found = None
+        found, own_peak = None, None
         try:
             for line in proc.stdout:
                 if b'"event":"score"' in line:
@@ -112,12 +118,27 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0,
                     break
                 if time.perf_counter() - t0 > timeout_s:
                     break
+            own_peak = vm_hwm_mb(proc.pid)
         finally:
             proc.kill()
             _, status, usage = os.wait4(proc.pid, 0)
             proc.returncode = -signal.SIGKILL  # reaped here, so Popen must not wait again
             proc.stdout.close()
-        return found, _rss_mb(usage.ru_maxrss)
+        if own_peak is not None:
+            return found, own_peak, "VmHWM"
+        return found, _rss_mb(usage.ru_maxrss), "ru_maxrss"
+
+
+def vm_hwm_mb(pid: int) -> Optional[float]:
+    """A live process's peak resident set (VmHWM, kB in /proc/PID/status), None without it."""
+    try:
+        with open(f"/proc/{pid}/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except (OSError, ValueError, IndexError):
+        return None
+    return None
 
 
 def bundle_kb(bundle, runtime_copy: bool = True) -> float:
@@ -138,8 +159,8 @@ def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
         scorer = make_scorer(bundle, name)
         rule = ScoreRule(bundle.manifest["score"])
         ms = np.asarray(time_hops(scorer, rule, bundle.window, len(bundle.channels), hops))
-        start_s, rss = (cold_start(bundle, scorer.name, run_args=run_args) if cold_start_run
-                        else (None, None))
+        start_s, rss, how = (cold_start(bundle, scorer.name, run_args=run_args)
+                             if cold_start_run else (None, None, "this process's ru_maxrss"))
         flops = Network(bundle.weights).flops_per_window(bundle.window)
         m = {
             "latency_ms_p50": float(np.percentile(ms, 50)),
@@ -147,6 +168,7 @@ def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
             "hops_per_s": float(1000.0 / ms.mean()),
             "cold_start_s": start_s,
             "peak_rss_mb": rss if rss is not None else _peak_rss_mb(),
+            "peak_rss_how": how,
             "bench_rss_mb": _peak_rss_mb(),
             "bundle_kb": bundle_kb(bundle),
         }
@@ -210,8 +232,8 @@ def format_report(report: Dict) -> str:
     for name, m in report["backends"].items():
         out.append(f"\n[{name}]")
         for key in ("latency_ms_p50", "latency_ms_p99", "hops_per_s", "cold_start_s",
-                    "peak_rss_mb", "bench_rss_mb", "bundle_kb", "storage_kb", "flops_per_hop",
-                    "mflops_single_core"):
+                    "peak_rss_mb", "peak_rss_how", "bench_rss_mb", "bundle_kb", "storage_kb",
+                    "flops_per_hop", "mflops_single_core"):
             out.append(f"  {key:<18} {_fmt(m[key])}")
         rows = report["comparison"].get(name) or []
         if rows:

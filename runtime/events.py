@@ -18,6 +18,11 @@ Built in here: JsonLinesSink (stdout), ScoresCsvSink (--scores-out), AlertDbSink
 EventWriter wraps each in a guard.GuardedSink: a store that fails (disk full, read-only, file
 removed) becomes a sink_error event, is retried with back-off, and the other sinks go on.
 
+Scores CSV provenance: a new scores file starts with `# key: value` comment lines (PROVENANCE_KEYS:
+the bundle, the runtime's Python / numpy, the machine, the start time), then the column header;
+pandas.read_csv(comment="#") and compile/gateway.py read_scores skip them. Rows of another bundle
+are never appended to a file that says it holds this one's.
+
 Durability: the CSV sink reports its byte size after an fsync, which the checkpoint records; on
 resume the file is cut back to that size and the replayed hops append the same rows again, so a
 restart neither loses nor duplicates a row. With a size cap (--scores-max-mb) the CSV is
@@ -29,11 +34,16 @@ rewrites the same row.
 
 import json
 import os
+import platform
 import sqlite3
+import time
 from pathlib import Path
-from typing import Callable, List, Optional, TextIO, Tuple
+from typing import Callable, Dict, List, Optional, TextIO, Tuple
+
+import numpy as np
 
 from .guard import GuardedSink
+from .intake import format_time
 
 EVENTS = (
     "start",  # the service started (with the advisory notice)
@@ -52,6 +62,8 @@ EVENTS = (
 )
 ALERT_EVENTS = ("alert_opened", "alert_closed")
 SCORES_HEADER = "time,score,threshold,alert\n"
+PROVENANCE_KEYS = ("bundle_id", "bundle_name", "tool_version", "backend", "python", "numpy",
+                   "machine", "platform", "host", "started")
 
 
 def _num(x) -> str:
@@ -83,23 +95,73 @@ class JsonLinesSink:
             pass
 
 
+def scores_provenance(bundle, backend: str) -> Dict[str, str]:
+    """Where a scores file comes from: the bundle, this runtime's interpreter, the machine."""
+    return {
+        "bundle_id": bundle.bundle_id, "bundle_name": bundle.manifest["name"],
+        "tool_version": bundle.manifest["tool_version"], "backend": backend,
+        "python": platform.python_version(), "numpy": np.__version__,
+        "machine": platform.machine(), "platform": platform.platform(),
+        "host": platform.node(), "started": format_time(time.time()),
+    }
+
+
+def provenance_lines(provenance: Dict[str, str]) -> bytes:
+    """`# key: value` lines, one per known key (line breaks in a value become spaces)."""
+    lines = ["# ganlet scores: one row per scored hop, times in UTC\n"]
+    for key in PROVENANCE_KEYS:
+        if key in provenance:
+            value = " ".join(str(provenance[key]).split())
+            lines.append(f"# {key}: {value}\n")
+    return "".join(lines).encode("utf-8", "replace")
+
+
+def read_provenance(fh) -> Dict[str, str]:
+    """The `# key: value` lines at the top of a scores file opened in binary mode."""
+    out = {}
+    for raw in fh:
+        if not raw.startswith(b"#"):
+            break
+        key, sep, value = raw[1:].decode("utf-8", "replace").strip().partition(": ")
+        if sep and key in PROVENANCE_KEYS:
+            out[key] = value.strip()
+    return out
+
+
+def refuse_other_bundle(path, provenance: Dict[str, str]) -> None:
+    """A scores file that says it holds another bundle's scores is never appended to (OSError:
+    the service stops at start with exit 3 instead of mixing two bundles' rows)."""
+    path = Path(path)
+    if not path.is_file() or "bundle_id" not in provenance:
+        return
+    with open(path, "rb") as fh:
+        theirs = read_provenance(fh).get("bundle_id")
+    if theirs and theirs != provenance["bundle_id"]:
+        raise OSError(f"{path} holds scores of bundle {theirs[:12]}, not of this "
+                      f"bundle {provenance['bundle_id'][:12]}; move it aside or choose "
+                      "another --scores-out")
+
+
 class ScoresCsvSink:
     """time,score,threshold,alert per hop. resume: {"offset": n} from the checkpoint (cut the
     file back to n bytes), or {"offset": n, "repair": True} after a failure in this process
     (cut back a torn last row; a file someone shortened meanwhile is appended to).
-    max_bytes: rotate to NAME.1 (one old file kept) at the next checkpoint once reached."""
+    max_bytes: rotate to NAME.1 (one old file kept) at the next checkpoint once reached.
+    provenance: the `# key: value` lines a new file starts with (scores_provenance)."""
 
     name = "scores_csv"
 
-    def __init__(self, path, resume: Optional[dict] = None, max_bytes: Optional[int] = None):
+    def __init__(self, path, resume: Optional[dict] = None, max_bytes: Optional[int] = None,
+                 provenance: Optional[Dict[str, str]] = None):
         self.path = Path(path)
         self.rotated = self.path.with_name(self.path.name + ".1")
         self.max_bytes = max_bytes
+        self.head = provenance_lines(provenance or {}) + SCORES_HEADER.encode("ascii")
         self.fh = open(self.path, "ab")
         try:
             self._resume(resume or {})
             if self.fh.seek(0, os.SEEK_END) == 0:
-                self.fh.write(SCORES_HEADER.encode("ascii"))
+                self.fh.write(self.head)
                 self.fh.flush()
         except BaseException:
             self.fh.close()
@@ -164,7 +226,7 @@ class ScoresCsvSink:
         self.fh.close()
         os.replace(str(self.path), str(self.rotated))
         self.fh = open(self.path, "ab")
-        self.fh.write(SCORES_HEADER.encode("ascii"))
+        self.fh.write(self.head)
         self.fh.flush()
         self.good = self.fh.tell()
 

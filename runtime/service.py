@@ -28,7 +28,15 @@ from typing import Optional
 
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .detector import Detector
-from .events import ALERT_EVENTS, AlertDbSink, EventWriter, JsonLinesSink, ScoresCsvSink
+from .events import (
+    ALERT_EVENTS,
+    AlertDbSink,
+    EventWriter,
+    JsonLinesSink,
+    ScoresCsvSink,
+    refuse_other_bundle,
+    scores_provenance,
+)
 from .guard import STORE_ERRORS
 from .intake import REJECT_KINDS, HeaderError, RowError, format_time
 from .sources import Control, CsvSource, Stop
@@ -84,7 +92,7 @@ class Service:
         self.opts = opts
         self.stderr = stderr
         saved = load_checkpoint(opts.state, bundle.bundle_id) if opts.state else None
-        self.writer = EventWriter.guarded(self._sinks(stdout), (saved or {}).get("sinks", {}),
+        self.writer = EventWriter.guarded(self._sinks(stdout, scorer.name), (saved or {}).get("sinks", {}),
                                           notice=stderr)
         self.checkpoint_failed = False
         self.det = Detector(bundle, scorer)
@@ -106,14 +114,17 @@ class Service:
         if opts.state and not saved:
             self.checkpoint()  # so a crash before the first timed checkpoint resumes cleanly
 
-    def _sinks(self, stdout) -> list:
+    def _sinks(self, stdout, backend: str) -> list:
         """(sink class, open(resume) -> sink), durable sinks first; each is guarded."""
         opts, sinks = self.opts, []
         if opts.alert_db:
             sinks.append((AlertDbSink, lambda _resume: AlertDbSink(opts.alert_db)))
         if opts.scores_out:
+            provenance = scores_provenance(self.bundle, backend)
+            refuse_other_bundle(opts.scores_out, provenance)
             sinks.append((ScoresCsvSink, lambda resume: ScoresCsvSink(
-                opts.scores_out, resume=resume, max_bytes=opts.scores_max_bytes)))
+                opts.scores_out, resume=resume, max_bytes=opts.scores_max_bytes,
+                provenance=provenance)))
         stdout_sink = JsonLinesSink(stdout, opts.score_every)
         sinks.append((JsonLinesSink, lambda _resume: stdout_sink))
         return sinks

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import importlib.metadata
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -74,7 +75,8 @@ def test_version_matches_the_installed_distribution():
 
 def test_installed_entry_point_and_module_run():
     assert GANLET.exists(), f"{GANLET}: the console script is not installed"
-    for cmd in ([str(GANLET), "--help"], [sys.executable, "-m", "ganlet.compile.cli", "--help"]):
+    for cmd in ([str(GANLET), "--help"], [sys.executable, "-m", "ganlet.compile.cli", "--help"],
+                [sys.executable, "-m", "ganlet", "--help"]):
         proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
         assert proc.returncode == 0, proc.stderr
         assert "train" in proc.stdout and "Usage" in proc.stdout
@@ -195,3 +197,63 @@ def test_seed_from_the_config_file_is_kept_unless_seed_is_given(tmp_path, write_
             0 if key == "flag0" else 5)
     assert all(torch.equal(outs["file5"][k], outs["flag5"][k]) for k in outs["file5"])
     assert any(not torch.equal(outs["file5"][k], outs["flag0"][k]) for k in outs["file5"])
+
+
+# Runs the `ganlet` command as `python -m ganlet` with an import blocker installed first, as on a
+# machine where the `compile` extra was never installed: importing a blocked package raises
+# ModuleNotFoundError, exactly as Python does for a package that is absent.
+WITHOUT_EXTRA = r"""
+import importlib.abc, runpy, sys
+BLOCK = set(sys.argv[1].split(","))
+class Blocker(importlib.abc.MetaPathFinder):
+    def find_spec(self, name, path=None, target=None):
+        if name.split(".")[0] in BLOCK:
+            raise ModuleNotFoundError(f"No module named {name!r}", name=name)
+        return None
+sys.meta_path.insert(0, Blocker())
+sys.argv = ["ganlet"] + sys.argv[2:]
+runpy.run_module("ganlet", run_name="__main__", alter_sys=True)
+"""
+
+
+@pytest.mark.parametrize("blocked", ["torch,typer,click,rich,pandas,onnx,onnxruntime,matplotlib,"
+                                     "sklearn,scipy,dask,pyarrow", "torch"],
+                         ids=["no extra at all", "torch missing"])
+def test_without_the_compile_extra_the_command_says_what_to_install(tmp_path, write_csv,
+                                                                    blocked):
+    data = write_csv(correlated_series(100))
+    proc = subprocess.run([sys.executable, "-c", WITHOUT_EXTRA, blocked, "train", str(data),
+                           "--out", str(tmp_path / "m")],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2, proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert "'compile' extra" in lines[0] and 'pip install "ganlet[compile]"' in lines[0]
+    missing = blocked.split(",")[0] if blocked == "torch" else "typer"   # the first one met
+    assert f"({missing} is not installed)" in lines[0]
+
+
+def test_ctrl_c_during_training_says_it_was_interrupted(tmp_path, write_csv, config_file):
+    import signal
+    import time
+
+    data = write_csv(correlated_series(600))
+    out = tmp_path / "m"
+    slow = config_file(adversarial_epochs=5000, inversion_epochs=5000, max_train_windows=2000)
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    proc = subprocess.Popen([str(GANLET), "train", str(data), "--out", str(out), "--config",
+                             str(slow)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, env=env)
+    seen = ""
+    for line in proc.stderr:                  # the data summary: training comes next
+        seen += line
+        if line.startswith("  temp"):
+            break
+    time.sleep(3.0)                           # well inside the 5000 epochs
+    assert proc.poll() is None, seen           # precondition: still training
+    proc.send_signal(signal.SIGINT)
+    _, rest = proc.communicate(timeout=120)
+    assert proc.returncode == 130, seen + rest
+    assert "interrupted (Ctrl-C): training stopped" in rest and str(out) in rest
+    assert "Traceback" not in rest and "Aborted" not in rest
+    assert not (out / "model.json").exists()

@@ -40,6 +40,21 @@ def _alerts(db_path):
                           "hops FROM alerts ORDER BY opened").fetchall()
 
 
+def split_scores(path):
+    """(the `#` provenance lines, the CSV after them) of a scores file, as bytes."""
+    data = path.read_bytes()
+    lines = data.splitlines(keepends=True)
+    n = next(k for k, line in enumerate(lines) if not line.startswith(b"#"))
+    head = b"".join(lines[:n])
+    assert b"# bundle_id: " in head and b"# started: " in head
+    return head, data[len(head):]
+
+
+def provenance_without_start(head: bytes) -> bytes:
+    # the start time differs between two runs; everything else describes the same gateway
+    return b"".join(ln for ln in head.splitlines(keepends=True) if not ln.startswith(b"# started"))
+
+
 def test_sigkill_anywhere_loses_and_duplicates_nothing(setup, tmp_path):
     bundle, inp = setup
     base = tmp_path / "base"
@@ -47,10 +62,10 @@ def test_sigkill_anywhere_loses_and_duplicates_nothing(setup, tmp_path):
     done = subprocess.run(_cmd(bundle, inp, base), capture_output=True, text=True, timeout=60)
     assert done.returncode == 0, done.stderr
     want_alerts = _alerts(base / "alerts.db")
-    want_scores = (base / "scores.csv").read_bytes()
+    head, want_scores = split_scores(base / "scores.csv")
     assert len(want_alerts) >= 3 and all(a[1] == "closed" for a in want_alerts)
     n_hops = (N_ROWS - 16) // 4 + 1
-    assert want_scores.count(b"\n") == n_hops + 1  # header + one row per hop
+    assert want_scores.count(b"\n") == n_hops + 1  # column header + one row per hop
 
     run = tmp_path / "crashy"
     run.mkdir()
@@ -85,11 +100,13 @@ def test_sigkill_anywhere_loses_and_duplicates_nothing(setup, tmp_path):
     got = _alerts(run / "alerts.db")
     assert [a[0] for a in got] == [a[0] for a in want_alerts]  # same ids, none extra
     assert got == want_alerts  # same open/close times, peaks, thresholds, channels
-    scores = (run / "scores.csv").read_bytes()
+    run_head, scores = split_scores(run / "scores.csv")
     rows = scores.splitlines()[1:]
     times = [r.split(b",")[0] for r in rows]
     assert len(times) == len(set(times))  # no duplicated row
     assert scores == want_scores  # and none missing or different
+    # one provenance block, written at the first start and kept through every resume
+    assert provenance_without_start(run_head) == provenance_without_start(head)
 
 
 def test_sigterm_checkpoints_and_resume_appends(setup, tmp_path):
@@ -128,5 +145,5 @@ def test_sigterm_checkpoints_and_resume_appends(setup, tmp_path):
     base = tmp_path / "base"
     base.mkdir()
     subprocess.run(_cmd(bundle, inp, base), capture_output=True, timeout=60, check=True)
-    assert (run / "scores.csv").read_bytes() == (base / "scores.csv").read_bytes()
+    assert split_scores(run / "scores.csv")[1] == split_scores(base / "scores.csv")[1]
     assert _alerts(run / "alerts.db") == _alerts(base / "alerts.db")

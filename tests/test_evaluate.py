@@ -83,6 +83,15 @@ def test_model_dir_metrics_and_baselines(synthetic):
     assert r.methods["teacher"].metrics["event_recall"] > 0
 
 
+@pytest.mark.parametrize("seconds, text", [(45, "45 s"), (90, "90 s"), (600, "10 min"),
+                                           (5400, "90 min"), (7200, "2 h"), (9000, "2.5 h"),
+                                           (3 * 86400, "3 d"), (float("nan"), "-")])
+def test_delays_read_in_seconds_minutes_hours_days(seconds, text):
+    from ganlet.compile.report import duration
+
+    assert duration(seconds) == text          # worked by hand
+
+
 def test_rolling_z_matches_pandas_worked_by_hand():
     x = np.random.default_rng(0).normal(size=(100, 2)).astype(np.float32)
     s = rolling_z(x, width=10)
@@ -106,7 +115,32 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
     summary = json.loads((tmp_path / "e.json").read_text())
     assert set(summary["methods"]) == {"bundle (int8, gateway path)", "teacher", *BASELINES}
     assert summary["rule"]["kind"] == "static"
-    assert "data:image/png;base64," in (tmp_path / "e.html").read_text()
+    page = (tmp_path / "e.html").read_text()
+    assert "data:image/png;base64," in page
+    # where evaluation starts: grid point 500, the data's 501st time
+    # reference: pandas reads the data's time column
+    first = pd.to_datetime(pd.read_csv(synthetic["data"])["time"]).iloc[500]
+    assert summary["evaluation"]["first_row"] == 500 and summary["evaluation"]["before"] == 500
+    assert summary["evaluation"]["first"] == f"{first:%Y-%m-%d %H:%M:%S} UTC"
+    assert f"Evaluation from {first:%Y-%m-%d %H:%M:%S} UTC (grid point 500)" in r.output
+    assert "the 500 points before are not counted" in page
+    # abbreviations spelled out, in the terminal and on the page
+    assert "FAR = false-alarm rate" in r.output and "MAR = missed-alarm rate" in r.output
+    assert "false-alarm rate (FAR)" in page and "missed-alarm rate (MAR)" in page
+    assert "<dt>F1</dt><dd>F1 score: the harmonic mean of precision and recall" in page
+    assert set(summary["glossary"]) >= {"F1", "FAR", "MAR", "event recall", "mean delay"}
+    # alert settings as a table, each with its meaning and its length in time (1 min grid)
+    alerting = summary["rule"]["alerting"]
+    assert "{'warmup_hops'" not in page and "{&#x27;warmup_hops" not in page
+    assert (f'<tr><td class="short">min_hops</td><td class="num short">{alerting["min_hops"]}'
+            '</td>') in page
+    assert summary["rule"]["step_s"]["point"] == 60.0
+    # what was tested
+    said = summary["provenance"]
+    from ganlet.runtime.manifest import load_bundle
+    assert said["bundle"]["bundle_id"] == load_bundle(synthetic["bundle"]).bundle_id
+    assert said["data"]["rows"] == 900 and said["model"]["path"] == str(synthetic["model"])
+    assert said["device"]["bundle_id"] == said["bundle"]["bundle_id"]
     r = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(synthetic["data"]),
                                  "--incidents", str(tmp_path / "none.csv")])
     assert r.exit_code == 2 and "error:" in r.output

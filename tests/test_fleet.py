@@ -50,7 +50,9 @@ data = "broken.csv"
 def fleet_dir(tmp_path_factory):
     root = tmp_path_factory.mktemp("fleet")
     correlated_series(900, seed=1).to_csv(root / "alpha.csv", index=False)
-    correlated_series(900, seed=2).to_csv(root / "bravo.csv", index=False)
+    bravo = correlated_series(900, seed=2)
+    bravo.iloc[[100, 101]] = bravo.iloc[[101, 100]].to_numpy()   # intake warns: out of order
+    bravo.to_csv(root / "bravo.csv", index=False)
     broken = correlated_series(900, seed=3)
     broken["power"] = 4.2          # a constant channel: intake refuses it, naming the channel
     broken.to_csv(root / "broken.csv", index=False)
@@ -58,11 +60,19 @@ def fleet_dir(tmp_path_factory):
     return root
 
 
-def test_fleet_on_two_worker_processes_then_rerun_skips_unchanged(fleet_dir):
+def test_fleet_on_two_worker_processes_then_rerun_skips_unchanged(fleet_dir, capfd):
     spec = fleet.load_fleet(fleet_dir / "fleet.toml")
     seen = []
     first = fleet.run_fleet(spec, workers=2, on_result=lambda r, k, n: seen.append((r.asset, k, n)))
     by_id = {r.asset: r for r in first}
+    # a worker's warning comes back with its asset, as one clean line, not as raw
+    # `path:line: UserWarning` lines on the workers' stderr (captured here at the fd level,
+    # which the worker processes inherit)
+    lines = fleet.warning_lines(by_id["bravo"])
+    assert "warning: bravo: 1 rows were out of time order; sorted them" in lines, lines
+    assert all("\n" not in line for r in first for line in fleet.warning_lines(r))
+    assert not any("out of time order" in w for w in by_id["alpha"].warnings)
+    assert "UserWarning" not in capfd.readouterr().err
     assert [r.asset for r in first] == ["alpha", "bravo", "broken"]
     assert sorted(k for _, k, _ in seen) == [1, 2, 3] and all(n == 3 for *_, n in seen)
     assert by_id["alpha"].status == by_id["bravo"].status == "ok", by_id

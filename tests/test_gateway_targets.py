@@ -9,12 +9,16 @@ the builder's reason.
 
 import csv
 import json
+import platform
 import subprocess
 
 import numpy as np
 import pytest
 import runtime_fixtures as fx
 from gateways import gateway, skip_reason
+
+from ganlet.runtime.events import read_provenance
+from ganlet.runtime.manifest import load_bundle
 
 N_ROWS = 200  # emulation is slow: keep the feed short
 OTHER_GATEWAYS = ("py39-numpy1.19", "arm64-debian")
@@ -47,9 +51,21 @@ def check_and_stream(gw, bundle, feed, out_dir):
                         "--backend", "numpy", cwd=out_dir)
     assert stream.returncode == 0, stream.stderr
     with open(scores, newline="") as fh:
-        rows = list(csv.DictReader(fh))
+        # reference: the standard csv module, past the `#` provenance lines
+        rows = list(csv.DictReader(line for line in fh if not line.startswith("#")))
     assert len(rows) == (N_ROWS - 16) // 4 + 1  # one score per hop (fixture: window 16, hop 4)
+    check_provenance(gw, bundle, scores)
     return rows
+
+
+def check_provenance(gw, bundle, scores):
+    """The scores file says which interpreter on which machine produced it."""
+    with open(scores, "rb") as fh:
+        said = read_provenance(fh)
+    assert said["bundle_id"] == load_bundle(bundle).bundle_id
+    assert said["python"] == gw.python_version and said["numpy"] == gw.numpy_version
+    # qemu-aarch64 reports the emulated machine (uname -m of Linux arm64: aarch64)
+    assert said["machine"] == ("aarch64" if gw.name == "arm64-debian" else platform.machine())
 
 
 @pytest.fixture(scope="module")

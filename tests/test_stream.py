@@ -33,8 +33,9 @@ def stream(bundle_dir, csv_path, tmp_path, *extra, tag="run"):
         code = main(argv, bundle_dir=bundle_dir)
     assert code == 0, err.getvalue()
     events = [json.loads(line) for line in out.getvalue().splitlines()]
-    # reference: pandas.read_csv parses the scores file (external reader of our CSV)
-    df = pd.read_csv(scores)
+    # reference: pandas.read_csv parses the scores file (external reader of our CSV), past the
+    # `#` provenance lines at its top
+    df = pd.read_csv(scores, comment="#")
     return events, df, err.getvalue()
 
 
@@ -222,3 +223,40 @@ def test_header_without_a_channel_is_refused(bundle_dir, tmp_path):
         code = main(["stream", "--input", str(tmp_path / "h.csv")], bundle_dir=bundle_dir)
     assert code == 2 and "lacks channel(s) ['pressure']" in err.getvalue()
     assert json.loads(out.getvalue().splitlines()[-1])["reason"] == "bad_header"
+
+
+def test_scores_file_says_where_it_comes_from(bundle_dir, tmp_path):
+    import platform
+
+    from ganlet.runtime.events import PROVENANCE_KEYS, read_provenance
+
+    fx.write_csv(tmp_path / "c.csv", fx.raw_values(60))
+    stream(bundle_dir, tmp_path / "c.csv", tmp_path, "--backend", "numpy")
+    path = tmp_path / "run-scores.csv"
+    lines = path.read_text().splitlines()
+    head = [ln for ln in lines if ln.startswith("#")]
+    assert lines[len(head)] == "time,score,threshold,alert" and lines[:len(head)] == head
+    with open(path, "rb") as fh:
+        said = read_provenance(fh)
+    assert set(said) == set(PROVENANCE_KEYS)
+    assert said["bundle_id"] == load_bundle(bundle_dir).bundle_id and said["backend"] == "numpy"
+    # reference: the platform module and numpy of this interpreter, which ran the stream
+    assert said["python"] == platform.python_version() and said["numpy"] == np.__version__
+    assert said["machine"] == platform.machine()
+    # reference: pandas.to_datetime reads the start time as an ISO 8601 UTC time
+    started = pd.to_datetime(said["started"], utc=True)
+    assert abs((pd.Timestamp.now(tz="UTC") - started).total_seconds()) < 600
+
+
+def test_scores_of_another_bundle_are_not_appended_to(bundle_dir, tmp_path):
+    other = fx.build_bundle(tmp_path / "other", window=WINDOW, hop=HOP, seed=5, onnx_model=False)
+    fx.write_csv(tmp_path / "c.csv", fx.raw_values(60))
+    stream(other, tmp_path / "c.csv", tmp_path, "--backend", "numpy")
+    before = (tmp_path / "run-scores.csv").read_bytes()
+    err = io.StringIO()
+    with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(err):
+        code = main(["stream", "--input", str(tmp_path / "c.csv"), "--scores-out",
+                     str(tmp_path / "run-scores.csv"), "--heartbeat", "0"], bundle_dir=bundle_dir)
+    assert code == 3
+    assert f"holds scores of bundle {load_bundle(other).bundle_id[:12]}" in err.getvalue()
+    assert (tmp_path / "run-scores.csv").read_bytes() == before

@@ -1,7 +1,10 @@
 """`ganlet verify`: parity of the gateway path against onnxruntime, numpy, fp32 student and
 teacher on a tiny trained model; a tampered device capture fails; bad input exits 2."""
 
+import hashlib
 import json
+import platform
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -116,19 +119,36 @@ def test_cli_pass_json_html(built, tmp_path):
     assert page.count("data:image/png;base64,") == 3 and "rank only" in page
 
 
+def drifted_capture(scores: Path, out: Path) -> Path:
+    """The capture with a device that drifted by 1 % for a few hops; its provenance lines kept."""
+    head = [ln for ln in scores.read_text().splitlines(keepends=True) if ln.startswith("#")]
+    # reference: pandas.read_csv(comment="#") reads the scores file past its provenance lines
+    df = pd.read_csv(scores, comment="#")
+    k = len(df) // 2
+    df.loc[k:k + 5, "score"] *= 1.01
+    out.write_text("".join(head) + df.to_csv(index=False))
+    return out
+
+
 def test_tampered_device_capture_fails(built, tmp_path):
     scores = run_bundle(built["bundle"], built["data"], tmp_path / "dev").scores
-    df = pd.read_csv(scores)
-    k = len(df) // 2
-    df.loc[k:k + 5, "score"] *= 1.01          # a device that drifted by 1 % for a few hops
-    df.to_csv(tmp_path / "bad.csv", index=False)
+    bad = drifted_capture(scores, tmp_path / "bad.csv")
     r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
-                                   "--device-scores", str(tmp_path / "bad.csv"),
-                                   "--json", str(tmp_path / "bad.json")])
+                                   "--device-scores", str(bad), "--json",
+                                   str(tmp_path / "bad.json"), "--html", str(tmp_path / "bad.html")])
     assert r.exit_code == 1, r.output
     summary = json.loads((tmp_path / "bad.json").read_text())
-    assert summary["pairs"]["onnxruntime"]["checks"]["score_rel"] is False
-    assert summary["pairs"]["onnxruntime"]["max_rel_error"] == pytest.approx(0.01 / 1.01, rel=1e-3)  # relative to the device
+    pair = summary["pairs"]["onnxruntime"]
+    assert pair["checks"]["score_rel"] is False
+    assert pair["max_rel_error"] == pytest.approx(0.01 / 1.01, rel=1e-3)  # relative to the device
+    # the FAIL row names the tolerance and by how much it was missed
+    failed = {f["tolerance"]: f for f in pair["failed"]}
+    assert failed["score_rel"]["limit"] == summary["tolerances"]["score_rel"]
+    assert failed["score_rel"]["by"] == pytest.approx(0.01 / 1.01 - 1e-4, rel=1e-3)
+    assert "FAIL device vs onnxruntime: score_rel: max relative error 0.0099" in r.output
+    page = (tmp_path / "bad.html").read_text()
+    assert '<tr class="fail">' in page and "score_rel: max relative error 0.0099 exceeds" in page
+    assert all(p["failed"] == [] for p in summary["pairs"].values() if p["passed"])
     # a loose tolerance accepts the same capture
     r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
                                    "--device-scores", str(tmp_path / "bad.csv"),
@@ -159,3 +179,69 @@ def test_unusable_input_exits_2(built, tmp_path):
     r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
                                    "--tolerance", "nonsense=1"])
     assert r.exit_code == 2 and "unknown" in r.output
+
+
+def test_reports_say_what_they_tested(built, tmp_path, monkeypatch):
+    from datetime import datetime, timezone
+
+    from ganlet.compile import report
+    from ganlet.runtime.manifest import load_bundle
+
+    labels = []
+    real_png = report.figure_png
+
+    def recording_png(fig):   # every axis of every figure, as the page will show it
+        labels.append([(ax.get_xlabel(), ax.get_ylabel()) for ax in fig.axes])
+        return real_png(fig)
+
+    monkeypatch.setattr(report, "figure_png", recording_png)
+    out_json, out_html = tmp_path / "p.json", tmp_path / "p.html"
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--json", str(out_json), "--html", str(out_html)])
+    assert r.exit_code == 0, r.output
+    said = json.loads(out_json.read_text())["provenance"]
+    bundle = load_bundle(built["bundle"])
+    # reference: hashlib.sha256 over the files' bytes
+    manifest_sha = hashlib.sha256((built["bundle"] / "manifest.json").read_bytes()).hexdigest()
+    assert said["bundle"]["bundle_id"] == bundle.bundle_id == manifest_sha
+    assert said["bundle"]["manifest_sha256"] == manifest_sha
+    assert said["data"]["sha256"] == hashlib.sha256(built["data"].read_bytes()).hexdigest()
+    # reference: pandas reads the data's time column; its first and last time are the span
+    times = pd.to_datetime(pd.read_csv(built["data"])["time"], utc=True)
+    assert said["data"]["first"] == times.min().strftime("%Y-%m-%dT%H:%M:%SZ")
+    assert said["data"]["last"] == times.max().strftime("%Y-%m-%dT%H:%M:%SZ")
+    # the gateway run here used this interpreter: its scores file says so
+    assert said["device"]["python"] == platform.python_version()
+    assert said["device"]["numpy"] == np.__version__
+    assert said["device"]["machine"] == platform.machine()
+    assert said["device"]["bundle_id"] == bundle.bundle_id
+    written = datetime.fromisoformat(said["report"]["created"].replace("Z", "+00:00"))
+    assert abs((datetime.now(timezone.utc) - written).total_seconds()) < 600
+    page = out_html.read_text()
+    assert bundle.bundle_id in page and said["data"]["sha256"] in page
+    assert "Tolerances applied" in page and "event_match_hops" in page
+    # every plotted axis says what it shows with its unit; a figure's x axis (shared by its
+    # stacked panels) is labelled once, at the bottom; time axes say their zone
+    assert len(labels) == 3, labels
+    overlay, scatter, histogram = labels
+    assert overlay[-1][0] == "time (UTC)"
+    unit = "× normal error" if "regimes" in bundle.manifest["score"] else "scaled units²"
+    assert all(y.endswith(f"score [{unit}]") for _, y in overlay), overlay
+    assert all(x.startswith("device score [") and y.endswith("]") for x, y in scatter), scatter
+    assert "dimensionless" in histogram[0][0] and histogram[0][1] == "hops (count)"
+
+
+def test_device_scores_of_another_bundle_are_refused(built, tmp_path):
+    import runtime_fixtures as fx
+
+    other = fx.build_bundle(tmp_path / "other", onnx_model=False)
+    fx.write_csv(tmp_path / "feed.csv", fx.raw_values(60))
+    scores = run_bundle(other, tmp_path / "feed.csv", tmp_path / "run").scores
+    r = CliRunner().invoke(cli(), ["verify", str(built["bundle"]), str(built["data"]),
+                                   "--device-scores", str(scores)])
+    from ganlet.runtime.manifest import load_bundle
+
+    ours, theirs = load_bundle(built["bundle"]).bundle_id, load_bundle(other).bundle_id
+    assert r.exit_code == 2, r.output
+    assert f"scores are from bundle {theirs[:12]}" in r.output
+    assert f"not {ours[:12]}" in r.output

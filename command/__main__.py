@@ -1,0 +1,5 @@
+"""`python -m ganlet`: the same as the `ganlet` command."""
+
+from ganlet.command import main
+
+main()

@@ -1,0 +1,62 @@
+"""Real-world files on the workstation: a `;` file with decimal commas is named for what it is,
+and a time column whose UTC offset changes mid-file (summer time) is read onto one UTC grid."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+from synthetic import correlated_series
+
+from ganlet.compile.data import IntakeError, IntakeOptions, load_frame
+
+
+@pytest.mark.parametrize("options", [IntakeOptions(), IntakeOptions(sep=";"),
+                                     IntakeOptions(channels=["flow", "power"])],
+                         ids=["sniffed", "sep given", "channels given"])
+def test_decimal_commas_are_named_not_the_delimiter(write_csv, options):
+    # reference: pandas.DataFrame.to_csv(sep=";", decimal=",") writes the continental dialect
+    path = write_csv(correlated_series(200), sep=";", decimal=",")
+    assert "10," in path.read_text().splitlines()[1]          # precondition: commas written
+    with pytest.raises(IntakeError) as err:
+        load_frame(path, options)
+    message = str(err.value)
+    assert "decimal comma" in message and "--decimal ','" in message
+    assert "--sep" not in message
+    assert "flow" in message
+
+
+def test_text_columns_without_decimal_commas_keep_the_general_message(write_csv):
+    df = correlated_series(50)
+    df["flow"] = "off"                   # text, but not numbers with a decimal comma
+    df["power"] = "off"
+    df["temp"] = "off"
+    with pytest.raises(IntakeError, match="no numeric channel found"):
+        load_frame(write_csv(df))
+
+
+def _local_times(utc: pd.DatetimeIndex, zone: str) -> list:
+    # reference: pandas tz_convert with the IANA zone database gives the local wall clock and
+    # its offset; isoformat writes them as a logger with a UTC offset does
+    return [t.isoformat() for t in utc.tz_convert(zone)]
+
+
+@pytest.mark.parametrize("start", ["2025-03-30T00:00:00Z", "2025-10-26T00:00:00Z"],
+                         ids=["spring forward +01:00 -> +02:00", "fall back +02:00 -> +01:00"])
+def test_offsets_changing_mid_file_are_read_as_utc(write_csv, start):
+    utc = pd.date_range(start, periods=240, freq="60s")
+    df = correlated_series(240)
+    df["time"] = _local_times(utc, "Europe/Berlin")
+    offsets = {t[-6:] for t in df["time"]}
+    assert offsets == {"+01:00", "+02:00"}                      # precondition: both offsets
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")                          # no warning either
+        frame = load_frame(write_csv(df))
+    expected = utc.tz_convert("UTC").tz_localize(None)
+    np.testing.assert_array_equal(frame.times.to_numpy(), expected.to_numpy())
+    rep = frame.report
+    assert (rep.period_s, rep.grid_points, rep.duplicates, rep.out_of_order) == (60.0, 240, 0, 0)
+    assert rep.long_gaps == [] and rep.filled_points == 0
+    np.testing.assert_allclose(frame.values, df[["flow", "power", "temp"]].to_numpy())
