@@ -38,6 +38,7 @@ import pandas as pd
 from ganlet.compile import report as rep
 from ganlet.compile.calibrate import (
     DEFAULT_ALARMS_PER_WEEK,
+    DRIFT_ACTION,
     calibrated_bundle,
     policy_for,
     risk_per_hop,
@@ -138,6 +139,7 @@ class Rule:
     kind: str
     alerting: dict
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK
+    drift: str = DRIFT_ACTION
 
     def policy(self, calibration_scores: np.ndarray, period_s: float) -> dict:
         return policy_for(self.kind, calibration_scores,
@@ -146,6 +148,7 @@ class Rule:
     def apply(self, calibration_scores: np.ndarray, scores: np.ndarray, period_s: float):
         policy = self.policy(calibration_scores, period_s)
         levels, alert = replay_alerts(scores, policy, self.alerting)
+        alert = from_opening(alert, int(self.alerting["min_hops"]))
         return policy, levels, alert
 
 
@@ -414,7 +417,8 @@ def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_
                      "training split) are skipped")
     budget = bundle.manifest.get("false_alarms", {}).get("budget_per_week",
                                                          DEFAULT_ALARMS_PER_WEEK)
-    rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting), budget)
+    drift = bundle.manifest.get("drift", {}).get("action", DRIFT_ACTION)
+    rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting), budget, drift)
     by_rate = [c for c, f in zip(bundle.channels, bundle.features) if f == "rate"]
     if by_rate:
         notes.append(f"the detector watches {', '.join(by_rate)} by rate (change per period); "
@@ -438,12 +442,24 @@ def _evaluated(frame: Frame, eval_mask, eval_from) -> np.ndarray:
     return evaluated & ~np.isnan(frame.values).any(axis=1)
 
 
-def _on_grid(frame: Frame, times, score, threshold, alert, name: str, kind: str) -> Method:
+def from_opening(alert: np.ndarray, min_hops: int) -> np.ndarray:
+    """The alert column as the alerts' own spans: a gateway alert is `opened` at the first of
+    the min_hops exceeding hops, while its per-hop alert column turns to 1 on the last of them;
+    each run is extended back over those min_hops - 1 hops (they exceeded the level, so they
+    cannot overlap the previous alert)."""
+    out = np.asarray(alert, bool).copy()
+    for start, _ in alert_events(out):
+        out[max(0, start - (min_hops - 1)):start] = True
+    return out
+
+
+def _on_grid(frame: Frame, times, score, threshold, alert, name: str, kind: str,
+             min_hops: int) -> Method:
     """Per-hop series placed on the data's grid (the intake's rounding), each held until the
-    next hop."""
+    next hop, alerts from their opening hop."""
     n = len(frame.times)
     rows = grid_index(frame, times)
-    held_alert = hold(rows, np.asarray(alert, float), n)
+    held_alert = hold(rows, from_opening(alert, min_hops).astype(float), n)
     return Method(name, hold(rows, score, n), hold(rows, threshold, n),
                   np.nan_to_num(held_alert) > 0.5, kind)
 
@@ -454,7 +470,8 @@ def _gateway_method(bundle, feed: Path, frame: Frame, workdir: Path, kind: str):
     dev = read_scores(run_bundle(bundle.dir, feed, workdir / "gateway").scores)
     return _on_grid(frame, dev["time"].to_numpy(), dev["score"].to_numpy(),
                     dev["threshold"].to_numpy(), dev["alert"].to_numpy(),
-                    "bundle (int8, gateway path)", kind), dev.attrs.get("provenance", {})
+                    "bundle (int8, gateway path)", kind, int(bundle.alerting["min_hops"])), \
+        dev.attrs.get("provenance", {})
 
 
 def _teacher_method(model, feed: Path, frame: Frame, rule: Rule, hop: int) -> Method:
@@ -464,10 +481,10 @@ def _teacher_method(model, feed: Path, frame: Frame, rule: Rule, hop: int) -> Me
 
     scorer = TeacherScorer(model.teacher)
     bundle = calibrated_bundle(model, scorer, model.teacher.config.window, hop, rule.kind,
-                               rule.alarms_per_week, rule.alerting)
+                               rule.alarms_per_week, rule.alerting, rule.drift)
     r = replay_feed(bundle, scorer, feed)
     return _on_grid(frame, r.times, r.score, r.threshold, r.alert, "teacher",
-                    bundle.threshold_policy["kind"])
+                    bundle.threshold_policy["kind"], int(bundle.alerting["min_hops"]))
 
 
 def _baseline_methods(model, frame: Frame, rule: Rule) -> dict:

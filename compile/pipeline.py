@@ -25,6 +25,7 @@ from ganlet.compile import __version__
 from ganlet.compile.boards import DEFAULT_BOARD, Board, load_board
 from ganlet.compile.calibrate import (
     DEFAULT_ALARMS_PER_WEEK,
+    DRIFT_ACTION,
     Calibration,
     agreement_report,
     calibrate,
@@ -47,6 +48,7 @@ from ganlet.compile.pack import install_text as install_notes
 from ganlet.compile.quantise import dequantise_weights, quantisation_report, quantise_weights
 from ganlet.compile.sizing import StudentPlan, size_student
 from ganlet.compile.train import TrainedModel, load_model, plot_training, save_model, train
+from ganlet.runtime.drift import DRIFT_ACTIONS
 from ganlet.runtime.manifest import MANIFEST_NAME, build_manifest
 from ganlet.runtime.scorer import NetworkScorer
 
@@ -171,6 +173,7 @@ class CompileOptions:
     name: Optional[str] = None
     alerting: dict = field(default_factory=dict)   # overrides of the default alert settings
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK   # false-alarm budget on normal data
+    drift: str = DRIFT_ACTION                  # "report" a drift, or "recentre" it away
 
 
 @dataclass
@@ -207,6 +210,8 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     workstation's record of the bundle (the fp32 student, for `ganlet verify --model`)."""
     name = check_name(options.name or "detector")
     out = check_out(out)
+    if options.drift not in DRIFT_ACTIONS:
+        raise ValueError(f"--drift {options.drift!r}: choose {' or '.join(DRIFT_ACTIONS)}")
     board = load_board(options.board or DEFAULT_BOARD)
     cfg = model.teacher.config
     timings = {}
@@ -223,7 +228,7 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     device = dequantise_weights(qweights)
     cal = calibrate(model, NetworkScorer(device, "device"), plan.window, plan.hop,
                     options.threshold, options.alarms_per_week, options.alerting,
-                    options.distil.seed)
+                    options.distil.seed, options.drift)
     cal.report.update(agreement_report(model, cal.score, fp32, device))
     timings["calibrate"] = time.perf_counter() - started
     started = time.perf_counter()

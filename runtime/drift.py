@@ -32,10 +32,14 @@ import numpy as np
 MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
 
 
-def drift_section(lo, hi, v_max) -> dict:
-    """The manifest's `drift` section."""
+DRIFT_ACTIONS = ("recentre", "report")
+
+
+def drift_section(lo, hi, v_max, action: str = "report") -> dict:
+    """The manifest's `drift` section. action "recentre" feeds the network the channel
+    re-centred onto its envelope while the drift lasts; "report" only reports it."""
     return {"lo": [float(v) for v in lo], "hi": [float(v) for v in hi],
-            "v_max": [float(v) for v in v_max]}
+            "v_max": [float(v) for v in v_max], "action": action}
 
 
 class DriftMonitor:
@@ -49,12 +53,16 @@ class DriftMonitor:
         if not (np.all(np.isfinite(self.lo)) and np.all(self.hi >= self.lo)
                 and np.all(self.v_max >= 0)):
             raise ValueError("drift: need finite lo <= hi and v_max >= 0 per channel")
+        self.recentre = section.get("action", "report") == "recentre"
+        if section.get("action", "report") not in DRIFT_ACTIONS:
+            raise ValueError(f"drift.action must be one of {', '.join(DRIFT_ACTIONS)}")
         self.channels = list(channels)
         self.in_drift = np.zeros(n, dtype=bool)
         self.reported = np.zeros(n, dtype=bool)
         self.since = [None] * n  # type: List[Optional[str]]
         self.peak = np.zeros(n)
         self.inside = np.zeros(n, dtype=np.int64)  # hops back inside, per channel in drift
+        self.outside = np.zeros(n, dtype=np.int64)  # hops outside in a row, before drift
         # window means one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -75,17 +83,22 @@ class DriftMonitor:
                 self.peak[c] = max(self.peak[c], e[c])
                 if self.inside[c] >= self.past.maxlen:
                     events += self._end(c, time_text)
-            elif e[c] > 0 and not blocked[c] and speed[c] <= self.v_max[c]:
-                self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
+            else:
+                self.outside[c] = self.outside[c] + 1 if e[c] > 0 else 0
+                if (self.outside[c] >= self.past.maxlen and not blocked[c]
+                        and speed[c] <= self.v_max[c]):
+                    self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
+                    self.outside[c] = 0
             if self.in_drift[c] and not self.reported[c] and e[c] > MARGIN:
                 self.reported[c] = True
                 events.append({"event": "drift", "channel": self.channels[c],
                                "time": time_text, "since": self.since[c],
                                "excess": round(float(e[c]), 6),
                                "side": "above" if m[c] > self.hi[c] else "below",
-                               "action": "re-centred onto the training range; collect fresh "
-                                         "normal data and retrain"})
-        offset = np.where(self.in_drift, np.where(m > self.hi, e, -e), 0.0)
+                               "action": ("re-centred onto the training range" if self.recentre
+                                          else "scored as it is") + "; collect fresh normal "
+                                         "data and retrain"})
+        offset = np.where(self.in_drift & self.recentre, np.where(m > self.hi, e, -e), 0.0)
         return offset, events
 
     def _end(self, c: int, time_text: str) -> list:
@@ -106,6 +119,7 @@ class DriftMonitor:
         return {"in_drift": [bool(v) for v in self.in_drift],
                 "reported": [bool(v) for v in self.reported], "since": list(self.since),
                 "peak": [float(v) for v in self.peak], "inside": [int(v) for v in self.inside],
+                "outside": [int(v) for v in self.outside],
                 "past": [[float(v) for v in m] for m in self.past]}
 
     def restore(self, d: dict) -> None:
@@ -114,5 +128,6 @@ class DriftMonitor:
         self.since = list(d["since"])
         self.peak = np.asarray(d["peak"], dtype=np.float64)
         self.inside = np.asarray(d["inside"], dtype=np.int64)
+        self.outside = np.asarray(d["outside"], dtype=np.int64)
         self.past.clear()
         self.past.extend(np.asarray(m, dtype=np.float64) for m in d["past"])

@@ -2,23 +2,21 @@
 SKAB valve1 benchmark protocol (bundle through the gateway path vs teacher vs baselines)."""
 
 import json
-import multiprocessing
-import warnings
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
+import skab_protocol
 import torch
 import typer
 from synthetic import correlated_series, inject
 from typer.testing import CliRunner
 
 from ganlet.compile.cli_reports import register
-from ganlet.compile.data import grid_index, load_frame, parse_times, split_spans
+from ganlet.compile.data import load_frame, split_spans
 from ganlet.compile.distil import DistilConfig
-from ganlet.compile.evaluate import BASELINES, evaluate, point_metrics, rolling_z
+from ganlet.compile.evaluate import BASELINES, evaluate, rolling_z
 from ganlet.compile.model import TeacherConfig
 from ganlet.compile.pipeline import CompileOptions, compile_model
 from ganlet.compile.train import save_model, train
@@ -27,22 +25,6 @@ REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab" / "valve1"
 TINY = TeacherConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
                       generator_hidden=(6, 8), latent=2, max_train_windows=400)
-# The small, fast configuration for SKAB (one file trains in seconds on one core).
-SKAB_CONFIG = TeacherConfig(window=16, adversarial_epochs=10, inversion_epochs=40,
-                             encoder_hidden=(32,), generator_hidden=(16, 32), latent=4)
-# The SKAB calibration span is 80 rows (~65 scores): too few for a peaks-over-threshold fit,
-# and the rolling policy absorbs the long valve anomalies into its own median and stops
-# flagging them; the static policy (a calibration-score quantile) is the rule that works
-# for this protocol. Every method gets it.
-SKAB_THRESHOLD = "static"
-# The two thermal channels (SKAB README: motor body and loop fluid temperature, degC) wander
-# 3-9 robust sigmas beyond their 400-row training range over the test span, normal rows and
-# anomalous alike; watched by level they dominate the score (pooled FAR ~0.55). They are
-# chosen as a site engineer would, by what they measure (slow thermal quantities); the trend
-# screen of `ganlet train` (|Spearman rho| >= 0.5) flags each in 9 of the 16 fit spans.
-SKAB_RATE = ("Temperature", "Thermocouple")
-
-
 @pytest.fixture(scope="module")
 def synthetic(tmp_path_factory):
     torch.set_num_threads(1)
@@ -150,69 +132,39 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
 # SKAB valve1 under the benchmark's protocol
 
 
-def build_one(args):
-    """Train the teacher on a file's first 400 rows and compile its bundle (one process)."""
-    path, out = args
-    torch.set_num_threads(1)
-    warnings.simplefilter("ignore")
-    frame = load_frame(path)
-    model = train(frame, split_spans(frame, 400, 0.2), SKAB_CONFIG, rate_channels=SKAB_RATE)
-    model_dir = save_model(model, Path(out) / "model")
-    compile_model(model, Path(out) / "bundle",
-                  CompileOptions(board="workstation", threshold=SKAB_THRESHOLD,
-                                 distil=DistilConfig(epochs=10)), model_dir=model_dir)
-    return str(out)
-
-
 @pytest.fixture(scope="module")
 def skab(tmp_path_factory):
-    if not SKAB.is_dir():
+    if not (skab_protocol.SKAB / "valve1").is_dir():
         pytest.skip("SKAB data not found at ../shared/data/skab (test data beside the repo, "
                     "not part of it)")
-    root = tmp_path_factory.mktemp("skab")
-    files = sorted(SKAB.glob("*.csv"), key=lambda p: int(p.stem))
-    jobs = [(str(f), str(root / f.stem)) for f in files]
-    with ProcessPoolExecutor(2, mp_context=multiprocessing.get_context("spawn")) as pool:
-        list(pool.map(build_one, jobs))
-    pooled = {}
-    for f in files:
-        raw = pd.read_csv(f, sep=";")
-        times = parse_times(raw["datetime"]).to_numpy()
-        labels = raw["anomaly"].to_numpy() > 0
-        pad = np.concatenate([[False], labels, [False]]).astype(np.int8)
-        edges = np.flatnonzero(np.diff(pad))
-        incidents = pd.DataFrame({"start": times[edges[0::2]], "end": times[edges[1::2] - 1],
-                                  "kind": "valve"})
-        frame = load_frame(f)
-        test_rows = grid_index(frame, times[400:])     # protocol: score the rows after 400
-        mask = np.zeros(len(frame.times), bool)
-        mask[test_rows] = True
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            r = evaluate(root / f.stem / "bundle", f, incidents, eval_mask=mask,
-                         model_dir=root / f.stem / "model")
-        for m in r.methods.values():
-            y, p = pooled.setdefault(m.name, ([], []))
-            y.append(labels[400:])                       # the benchmark's own row labels
-            p.append(m.alert[test_rows])
-    metrics = {name: point_metrics(np.concatenate(y), np.concatenate(p))
-               for name, (y, p) in pooled.items()}
+    # every default a user gets, but 20 distillation epochs instead of 80 to keep the suite
+    # short (teacher vs student Spearman on the calibration span is the same to 4 digits on
+    # these files); benchmarks/bench_skab.py runs the full defaults over three seeds
+    metrics = skab_protocol.run(0, tmp_path_factory.mktemp("skab"), workers=2,
+                                distil_epochs=20)
     for name, k in metrics.items():
         print(f"SKAB valve1 pooled  {name:28s} F1 {k['f1']:.3f}  FAR {k['far']:.3f}  "
-              f"MAR {k['mar']:.3f}")
+              f"MAR {k['mar']:.3f}  AUC {k['auc']:.3f}")
     return metrics
 
 
-BUNDLE = "bundle (int8, gateway path)"
+BUNDLE = skab_protocol.BUNDLE
 
 
-def test_skab_bundle_f1_within_003_of_teacher(skab):
-    assert skab[BUNDLE]["f1"] >= skab["teacher"]["f1"] - 0.03, skab
+def test_skab_bundle_f1_within_002_of_teacher(skab):
+    # issue 11: the int8 student through the gateway path tracks the teacher
+    assert abs(skab[BUNDLE]["f1"] - skab["teacher"]["f1"]) <= 0.02, skab
 
 
 def test_skab_bundle_beats_isolation_forest_on_f1(skab):
     assert skab[BUNDLE]["f1"] > skab["IsolationForest"]["f1"], skab
 
 
-def test_skab_bundle_false_alarm_rate_below_isolation_forest(skab):
-    assert skab[BUNDLE]["far"] < skab["IsolationForest"]["far"], skab
+@pytest.mark.xfail(strict=True, reason="issue 11 target not met with one set of defaults; "
+                   "measured (seed 0, gateway path): see the closing note and bench_skab.py")
+def test_skab_meets_the_published_best(skab):
+    # The SKAB leaderboard's best (Conv-AE, as the SKAB authors publish it): F1 0.78 at FAR
+    # 0.136; issue 11's target for this detector through the gateway path: F1 >= 0.80 at FAR
+    # <= 0.10, and a teacher ROC AUC >= 0.85 over the same rows
+    assert skab[BUNDLE]["f1"] >= 0.80 and skab[BUNDLE]["far"] <= 0.10, skab
+    assert skab["teacher"]["auc"] >= 0.85, skab

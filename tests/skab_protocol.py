@@ -1,0 +1,106 @@
+"""The SKAB benchmark protocol, through what ships: one module for the test and the benchmark.
+
+SKAB (../shared/data/skab, see its README) valve1: per file the first 400 rows are the training
+span (the model's fit and calibration spans come out of them), the rest is the test span; the
+binary metric is F1 over all test rows of all files together, with the false-alarm rate (FAR)
+and missed-alarm rate (MAR) beside it. Each file gets the defaults a user gets: `ganlet train`'s
+TeacherConfig, `ganlet compile` for the default board, the bundle's own threshold policy and
+alert machine streamed through `run.py stream` (ganlet.compile.evaluate runs it), the teacher
+through the gateway's Detector with its own calibration, the baselines under the same policy,
+budget and alert machine. The SKAB folder is test data beside the repository, not part of it.
+"""
+
+import warnings
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+REPO = Path(__file__).resolve().parents[1]
+SKAB = REPO / ".." / "shared" / "data" / "skab"
+TRAIN_ROWS = 400
+BUNDLE = "bundle (int8, gateway path)"
+
+
+def valve1_files(root: Path = SKAB) -> list:
+    return sorted((Path(root) / "valve1").glob("*.csv"), key=lambda p: int(p.stem))
+
+
+def incidents_of(path: Path):
+    """(incidents DataFrame from the file's own `anomaly` column, labels [rows], times)."""
+    from ganlet.compile.data import parse_times
+
+    raw = pd.read_csv(path, sep=";")
+    times = parse_times(raw["datetime"]).to_numpy()
+    labels = raw["anomaly"].to_numpy() > 0
+    pad = np.concatenate([[False], labels, [False]]).astype(np.int8)
+    edges = np.flatnonzero(np.diff(pad))
+    incidents = pd.DataFrame({"start": times[edges[0::2]], "end": times[edges[1::2] - 1],
+                              "kind": "valve"})
+    return incidents, labels, times
+
+
+def run_file(args) -> dict:
+    """Train, compile and evaluate one file (in whichever process calls it): the test rows'
+    labels and, per method, alerts and scores on them."""
+    path, out, seed, distil_epochs = args
+    import torch
+
+    from ganlet.compile.data import grid_index, load_frame, split_spans
+    from ganlet.compile.distil import DistilConfig
+    from ganlet.compile.evaluate import evaluate
+    from ganlet.compile.model import TeacherConfig
+    from ganlet.compile.pipeline import CompileOptions, compile_model
+    from ganlet.compile.train import save_model, train
+
+    torch.set_num_threads(1)
+    warnings.simplefilter("ignore")
+    path, out = Path(path), Path(out)
+    frame = load_frame(path)
+    model = train(frame, split_spans(frame, TRAIN_ROWS, 0.2), replace(TeacherConfig(), seed=seed))
+    model_dir = save_model(model, out / "model")
+    compile_model(model, out / "bundle",
+                  CompileOptions(distil=DistilConfig(epochs=distil_epochs, seed=seed)),
+                  model_dir=model_dir)
+    incidents, labels, times = incidents_of(path)
+    rows = grid_index(frame, times[TRAIN_ROWS:])      # protocol: score the rows after 400
+    mask = np.zeros(len(frame.times), bool)
+    mask[rows] = True
+    r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir)
+    return {"labels": labels[TRAIN_ROWS:],
+            "alert": {m.name: m.alert[rows] for m in r.methods.values()},
+            "score": {m.name: m.scores[rows] for m in r.methods.values()}}
+
+
+def pooled(outs: list) -> dict:
+    """Per method: point metrics over every file's test rows together, and the ROC AUC of its
+    score (sklearn.metrics.roc_auc_score)."""
+    from sklearn.metrics import roc_auc_score
+
+    from ganlet.compile.evaluate import point_metrics
+
+    y = np.concatenate([o["labels"] for o in outs])
+    metrics = {}
+    for name in outs[0]["alert"]:
+        m = point_metrics(y, np.concatenate([o["alert"][name] for o in outs]))
+        s = np.concatenate([o["score"][name] for o in outs])
+        ok = np.isfinite(s)
+        m["auc"] = float(roc_auc_score(y[ok], s[ok]))
+        metrics[name] = m
+    return metrics
+
+
+def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
+        files=None) -> dict:
+    """Every valve1 file at one seed, `workers` processes; pooled metrics per method."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    files = files or valve1_files()
+    jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs)
+            for f in files]
+    ctx = multiprocessing.get_context("spawn")
+    with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
+        outs = list(pool.map(run_file, jobs))
+    return pooled(outs)
