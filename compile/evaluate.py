@@ -297,12 +297,14 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
                          "training split) are skipped")
         rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting))
         opts = IntakeOptions(time_col=bundle.time_column, channels=bundle.channels,
-                             period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods)
+                             period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods,
+                             tz=bundle.manifest.get("time_zone"))
     else:
         model = load_model(source)
         rule = Rule(threshold, default_alerting(model.teacher.config.window, 1))
         opts = IntakeOptions(time_col=model.time_col, channels=model.channels,
-                             period_s=model.period_s, max_fill_periods=model.max_fill_periods)
+                             period_s=model.period_s, max_fill_periods=model.max_fill_periods,
+                             tz=model.time_zone)
     frame: Frame = load_frame(data, opts)
     watched = bundle.features if bundle is not None else model.scaler.features
     by_rate = [c for c, f in zip(frame.channels, watched) if f == "rate"]

@@ -99,7 +99,7 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0) -> Tuple[Optional
         csv_path.write_text("\n".join(lines) + "\n")
         cmd = _run_command(bundle) + [
             "stream", "--input", str(csv_path), "--backend", backend, "--score-every", "1",
-            "--heartbeat", "0", "--checkpoint-every", "0",
+            "--heartbeat", "0", "--checkpoint-every", "0", "--replay",  # times from 1970
         ]
         t0 = time.perf_counter()
         proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)

@@ -32,6 +32,11 @@ EVENTS = (
     "alert_opened",
     "alert_closed",
     "gap",  # a long gap reset the window
+    "time_jump",  # the feed's times jumped and enough rows confirmed it (clock.py): from, to
+    "clock_suspect",  # the gateway's own clock reads earlier than any plausible row
+    "header_changed",  # a header line mid-stream: columns remapped, or rows refused
+    "input_rotated",  # the followed file was renamed away or truncated: read the new one
+    "input_waiting",  # the followed file does not exist yet
     "input_error",  # rejected rows, counted by kind (rate-limited)
     "heartbeat",
     "stop",  # the service stopped (with every counter)

@@ -289,16 +289,19 @@ def build_manifest(
     tool_version: str,
     parity_tolerances: Optional[dict] = None,
     created: Optional[str] = None,
+    time_zone: str = "UTC",
 ) -> dict:
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
-    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit)."""
+    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
+    time_zone: the zone zone-less input times were read in at training (the gateway's default)."""
     return {
         "schema_version": SCHEMA_VERSION,
         "tool_version": tool_version,
         "created": created or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "name": name,
         "time_column": time_column,
+        "time_zone": str(time_zone),
         "channels": [{"name": n, "unit": u} for n, u in channels],
         "period_s": float(period_s),
         "max_gap_periods": int(max_gap_periods),
