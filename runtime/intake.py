@@ -155,7 +155,7 @@ def header_sep(text: str, time_column: str, dialect: Dialect,
         try:
             cells = dialect.split(text, sep)
         except RowError:
-            return None
+            continue  # quotes that do not fit this separator
         if time_column in cells:
             if all(c in cells for c in channels):
                 return sep

@@ -35,6 +35,8 @@ import sys
 import time
 from typing import Optional
 
+import numpy as np
+
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, FEED, JUMP, MAX_AHEAD_S, ClockBounds, Timeline
 from .detector import Detector
@@ -50,6 +52,11 @@ ADVISORY_NOTICE = (
 )
 ERROR_REPORT_INTERVAL_S = 5.0  # input_error events at most this often (first one at once)
 EXIT_NO_ROWS = 4  # the input held no usable data row: empty, header only, or every row refused
+
+
+def wall_clock() -> float:
+    """The gateway's clock (epoch seconds): read here, never by the detector."""
+    return time.time()
 
 
 # ---------------------------------------------------------------------- the service
@@ -129,7 +136,8 @@ class Service:
 
     def _restore(self, saved: dict) -> None:
         try:
-            self.det.restore(saved["detector"])
+            with np.errstate(all="ignore"):  # absurd numbers are refused below, not warned of
+                self.det.restore(saved["detector"])
             _check_restored(self.det, self.bundle)
             if saved.get("input") is not None:
                 self.resume_pos = Position.from_state(saved["input"])
@@ -199,7 +207,7 @@ class Service:
         if rec.error is not None:
             self.reject(rec.error, rec.lineno)
             return
-        now = time.time()  # the gateway's clock: read here, never by the detector
+        now = wall_clock()
         self._watch_clock(now)
         problem = self.bounds.check(rec.time, now)
         if problem is not None:
@@ -384,14 +392,14 @@ def _check_restored(det: Detector, bundle) -> None:
     """What a restored detector must satisfy before a row reaches it (ValueError if not)."""
     ring, n = det.ring, len(bundle.channels)
     if (ring.size, ring.n_channels) != (bundle.window, n) or not 0 <= ring.next < ring.size \
-            or ring.filled < 0:
+            or ring.filled < 0 or not np.isfinite(ring.buf).all():
         raise ValueError("ring does not fit this bundle")
     last = det.last_time
     if last is not None and not (isinstance(last, (int, float)) and math.isfinite(last)
                                  and MIN_TIME <= last < MAX_TIME):
         raise ValueError(f"last_time {last!r} is not a time")
     if det.last_raw is not None and (det.last_raw.shape != (n,)
-                                     or not _all_finite(det.last_raw)):
+                                     or not np.isfinite(det.last_raw).all()):
         raise ValueError("last_raw does not fit this bundle")
     for name in ("counters", "errors"):
         table = getattr(det, name)
@@ -414,10 +422,6 @@ def _check_judge(judge, n: int) -> None:
                 and isinstance(a.get("parts_sum"), list) and len(a["parts_sum"]) == n
                 and all(isinstance(v, (int, float)) for v in a["parts_sum"])):
             raise ValueError("open alert record is malformed")
-
-
-def _all_finite(values) -> bool:
-    return all(math.isfinite(float(v)) for v in values)
 
 
 def _clock_bounds(bundle, opts: StreamOptions) -> ClockBounds:

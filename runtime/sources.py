@@ -107,7 +107,7 @@ class StreamInput:
     def readline(self, limit: int) -> bytes:
         return self.fh.readline(limit)
 
-    def at_end(self) -> Optional[dict]:
+    def at_end(self, tail: bytes) -> Optional[dict]:
         return None  # nothing changes under an open stream
 
     def seek_to(self, pos: Position) -> bool:
@@ -133,7 +133,10 @@ class StreamInput:
 
 class FollowedPath(StreamInput):
     """A file followed by name (tail -F): waits for it to exist, and at end of file notices a
-    new file under the name (rename rotation) or a truncated one (copy-truncate rotation)."""
+    new file under the name (rename rotation) or a truncated one (copy-truncate rotation: the
+    size fell below our position, or the bytes before it changed). As with tail -F, a
+    copy-truncate that lands while a burst of rows is being read (not at end of file) is seen
+    late: the rows written before the reader looks again are read from the wrong place."""
 
     def __init__(self, path: str):
         super().__init__(None, path, owned=True)
@@ -150,7 +153,8 @@ class FollowedPath(StreamInput):
     def readline(self, limit: int) -> bytes:
         return self.fh.readline(limit) if self.fh is not None else b""
 
-    def at_end(self) -> Optional[dict]:
+    def at_end(self, tail: bytes) -> Optional[dict]:
+        """After a pause at end of file: has the name changed files, or the file its bytes?"""
         if self.fh is None:
             if self._open():
                 return None
@@ -159,9 +163,9 @@ class FollowedPath(StreamInput):
             self.waiting_said = True
             return {"event": "input_waiting", "input": self.name,
                     "action": "waiting for the file to appear"}
-        return self._rotation()
+        return self._rotation(tail)
 
-    def _rotation(self) -> Optional[dict]:
+    def _rotation(self, tail: bytes) -> Optional[dict]:
         try:
             now = os.stat(self.name)
         except FileNotFoundError:
@@ -175,11 +179,18 @@ class FollowedPath(StreamInput):
             self._open()
             return {"event": "input_rotated", "input": self.name, "how": "renamed",
                     "action": "reading the new file from its start"}
-        if now.st_size < self.fh.tell():
+        if now.st_size < self.fh.tell() or not self._still_reads(tail):
             self.fh.seek(0)
             return {"event": "input_rotated", "input": self.name, "how": "truncated",
                     "action": "reading the file from its start"}
         return None
+
+    def _still_reads(self, tail: bytes) -> bool:
+        """The bytes before our position are still the ones we read: a copy-truncate rotation
+        that grew past our position before we looked shows up here, not in the size."""
+        here = self.fh.tell()
+        # pread, not seek + read: a buffered reader would answer from its stale buffer
+        return os.pread(self.fh.fileno(), len(tail), here - len(tail)) == tail
 
     def seek_to(self, pos: Position) -> bool:
         return self.fh is not None and super().seek_to(pos)
@@ -231,11 +242,12 @@ class _Lines:
                     if pending or too_long:
                         yield self.TOO_LONG if too_long else pending
                     return
-                notice = self.source.at_end()
+                if self.idle is not None:
+                    self.idle()
+                time.sleep(POLL_S)
+                # after the pause, before reading on: the name may hold another file by now
+                notice = self.source.at_end(self.tail)
                 if notice is None:
-                    if self.idle is not None:
-                        self.idle()
-                    time.sleep(POLL_S)
                     continue
                 if notice["event"] == "input_rotated":
                     if pending or too_long:  # the old file's last line, without its newline
