@@ -21,6 +21,7 @@ a detail saying why. format_time is the way back: ISO 8601 UTC with 'Z'.
 import math
 import re
 from datetime import datetime, timedelta, timezone, tzinfo
+from functools import lru_cache
 from typing import Optional, Tuple
 
 MIN_TIME = -2208988800.0  # 1900-01-01T00:00:00Z
@@ -44,6 +45,9 @@ _TIMES = (
     re.compile(r"(?P<h>[0-9]{2})(?:(?P<m>[0-9]{2})(?:(?P<s>[0-9]{2})" + _FRAC + ")?)?" + _ZONE),
 )
 _SEPARATOR = re.compile(r"[Tt]| +")
+# the form loggers write most, read in one match (the general path gives the same answer)
+_COMMON = re.compile(r"([0-9]{4})-([0-9]{2})-([0-9]{2})[T ]([0-9]{2}):([0-9]{2}):([0-9]{2})"
+                     r"(?:\.([0-9]+))?(Z|[+-][0-9]{2}:[0-9]{2})?")
 
 
 class TimeError(ValueError):
@@ -51,6 +55,7 @@ class TimeError(ValueError):
 
 
 # ---------------------------------------------------------------------- calendar arithmetic
+@lru_cache(maxsize=64)  # one entry per day seen: a feed's rows share a few dates
 def days_from_civil(y: int, m: int, d: int) -> int:
     """Days since 1970-01-01 of a proleptic Gregorian date (H. Hinnant's algorithm)."""
     y -= m <= 2
@@ -154,8 +159,14 @@ def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str]
         raise TimeError(f"time cell of {len(text)} characters")
     if _EPOCH.fullmatch(text):
         return _checked(float(text), text, epoch=True)
-    y, mo, d, rest = _date_fields(text, date_order)
-    h, mi, s, frac, offset = _time_fields(rest, text)
+    common = _COMMON.fullmatch(text)
+    if common:
+        y, mo, d, h, mi, s = map(int, common.groups()[:6])
+        frac = float("0." + common.group(7)) if common.group(7) else 0.0
+        offset = _offset(common.group(8))
+    else:
+        y, mo, d, rest = _date_fields(text, date_order)
+        h, mi, s, frac, offset = _time_fields(rest, text)
     _check_fields(y, mo, d, h, mi, s)
     if offset is None:
         offset = _local_offset(zone, y, mo, d, h, mi, s)
