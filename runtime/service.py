@@ -249,7 +249,10 @@ class Service:
 
     def _jump(self, jump: dict, first_time: float) -> None:
         backward = jump["direction"] == "backward"
-        self.emit("time_jump", direction=jump["direction"], **{"from": format_time(jump["from"])},
+        what = ("the feed's clock was set back" if backward else
+                "a long gap in the feed, or its clock set forward")
+        self.emit("time_jump", what=what, direction=jump["direction"],
+                  **{"from": format_time(jump["from"])},
                   to=format_time(jump["to"]), shift_s=round(jump["to"] - jump["from"], 3),
                   confirmed_by_rows=jump["rows"],
                   action="clock_restarted" if backward else "window_reset")

@@ -72,6 +72,7 @@ def test_a_clock_set_back_is_believed_after_confirmation_and_detection_goes_on(b
     jumps = run.of("time_jump")
     assert len(jumps) == 1
     assert jumps[0]["direction"] == "backward" and jumps[0]["action"] == "clock_restarted"
+    assert jumps[0]["what"] == "the feed's clock was set back"
     assert jumps[0]["from"] == format_time(times[99]) and jumps[0]["to"] == format_time(times[100])
     assert jumps[0]["confirmed_by_rows"] == 10 and jumps[0]["shift_s"] == -3099.0
     assert sum(run.stop["errors"].values()) == 0 and run.stop["counters"]["samples"] == 200
