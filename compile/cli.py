@@ -161,6 +161,10 @@ def train(
     inversion_epochs: Optional[int] = typer.Option(None, "--inversion-epochs", help="Epochs of the encoder phase."),
     seed: Optional[int] = typer.Option(None, help="Random seed (default: the config's, else 0; runs are reproducible on CPU)."),
     rate: Optional[str] = typer.Option(None, "--rate", help="Comma-separated channels to watch by their change per period instead of their level: slow quantities that wander, such as temperatures (train suggests them)."),
+    decimal: str = typer.Option(".", "--decimal", help="Decimal mark of the numbers: '.' or ',' (1,5; the separator must then differ)."),
+    tz: Optional[str] = typer.Option(None, "--tz", help="Zone of times written without one: IANA name (Europe/Berlin), UTC or +hh:mm. Recorded in the bundle; the gateway reads such times in it. Default: UTC."),
+    dayfirst: bool = typer.Option(False, "--dayfirst", help="Read numeric dates with the year last as day/month/year (10/11/2025 = 10 November)."),
+    monthfirst: bool = typer.Option(False, "--monthfirst", help="Read them as month/day/year. Without either, such dates are refused: 03/04 cannot be read safely."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Learn one machine's normal behaviour from a sensor history."""
@@ -168,13 +172,16 @@ def train(
 
     with user_errors(interrupted=f"training stopped; {out} holds no complete new model "
                                  "(run `ganlet train` again)"):
+        if dayfirst and monthfirst:
+            raise UsageProblem("--dayfirst and --monthfirst exclude each other")
         options = pipeline.TrainOptions(
             sep=sep, time_col=time_col, channels=split_list(channels),
             exclude=split_list(exclude) or [], units=parse_units(units), period=period,
             max_fill=max_fill, train_until=parse_train_until(train_until),
             calibration=calibration, window=window, config_file=config,
             adversarial_epochs=adversarial_epochs, inversion_epochs=inversion_epochs, seed=seed,
-            rate=split_list(rate) or [],
+            rate=split_list(rate) or [], decimal=decimal, tz=tz,
+            date_order="dayfirst" if dayfirst else "monthfirst" if monthfirst else None,
         )
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))

@@ -19,6 +19,8 @@ import pandas as pd
 
 from ganlet.runtime.features import rate_mask
 from ganlet.runtime.features import series as feature_series
+from ganlet.runtime.intake import Dialect, RowError
+from ganlet.runtime.times import MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
 LABEL_NAMES = ("anomaly", "label", "labels", "changepoint", "fault", "target", "is_anomaly",
@@ -48,6 +50,17 @@ class IntakeOptions:
     period_s: Optional[float] = None     # None: the median spacing
     max_fill_periods: int = 5            # interpolate gaps up to this many missing periods
     units: dict = field(default_factory=dict)
+    decimal: str = "."                   # "," for decimal commas (1,5)
+    tz: Optional[str] = None             # zone of zone-less times (None: UTC)
+    date_order: Optional[str] = None     # "dayfirst" | "monthfirst" for 02/03/2026
+
+    def dialect(self) -> Dialect:
+        """How time cells are read: the gateway's own rules (runtime/intake.py), so a file
+        trains and streams alike."""
+        try:
+            return Dialect(sep=None, decimal=self.decimal, tz=self.tz, date_order=self.date_order)
+        except ValueError as exc:
+            raise IntakeError(str(exc)) from None
 
 
 @dataclass
@@ -71,6 +84,7 @@ class IntakeReport:
     segments: int
     channel_ranges: dict       # name -> [min, max] in raw units
     warnings: list = field(default_factory=list)
+    time_zone: str = "UTC"     # the zone zone-less times were read in
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -167,7 +181,7 @@ def snapped_period(median: float, notes: list) -> float:
     return median
 
 
-def read_table(path: Path, sep: Optional[str]) -> pd.DataFrame:
+def read_table(path: Path, sep: Optional[str], decimal: str = ".") -> pd.DataFrame:
     path = Path(path)
     if not path.exists():
         raise IntakeError(f"{path}: no such file")
@@ -178,12 +192,16 @@ def read_table(path: Path, sep: Optional[str]) -> pd.DataFrame:
             head = fh.read(16384)
         if not head.strip():
             raise IntakeError(f"{path}: the file is empty")
+        # with decimal commas a comma cannot be the delimiter (every row has as many of them)
+        delimiters = ";\t|" if decimal == "," else ",;\t|"
         try:
-            sep = csv.Sniffer().sniff(head, delimiters=",;\t|").delimiter
+            sep = csv.Sniffer().sniff(head, delimiters=delimiters).delimiter
         except csv.Error:
-            sep = ","
+            sep = ";" if decimal == "," else ","
+    if sep == decimal:
+        raise IntakeError(f"--sep and --decimal are both {sep!r}; give the file's separator")
     try:
-        df = pd.read_csv(path, sep=sep)
+        df = pd.read_csv(path, sep=sep, decimal=decimal)
     except (pd.errors.ParserError, UnicodeDecodeError) as exc:
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
     # One column whose name holds another delimiter: the separator is wrong, not the time column.
@@ -244,7 +262,8 @@ def unit_for(name: str, given: dict) -> str:
 def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     """Read, clean and regularise one sensor history."""
     opts = options or IntakeOptions()
-    df = read_table(Path(path), opts.sep)
+    dialect = opts.dialect()
+    df = read_table(Path(path), opts.sep, opts.decimal)
     if len(df) == 0:
         raise IntakeError(f"{path}: no data rows")
     notes: list = []
@@ -274,14 +293,15 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
                           f"{time_col!r}; check --sep, or name channels with --channels")
 
     raw_times = df[time_col]
-    times = parse_times(raw_times)
+    times = parse_times(raw_times, dialect)
     bad_time = times.isna().to_numpy()
     if bad_time.mean() > 0.01 or bad_time.all():
         first = int(np.flatnonzero(bad_time)[0])
         raise IntakeError(f"column {time_col!r}: {int(bad_time.sum())} of {len(df)} times cannot "
                           f"be parsed (first at data row {first + 1}: {raw_times.iloc[first]!r}); "
-                          "use ISO 8601 (2026-03-02T10:00:00) or epoch seconds, or pick another "
-                          "column with --time-col")
+                          f"{time_problem(raw_times.iloc[first], dialect)}; use ISO 8601 "
+                          "(2026-03-02T10:00:00) or epoch seconds, or pick another column with "
+                          "--time-col")
     values = df[channels].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64, copy=True)
     values[~np.isfinite(values)] = np.nan
     keep = ~bad_time
@@ -360,6 +380,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         grid_points=n_slots, unparsable_times=int(bad_time.sum()), out_of_order=out_of_order,
         duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
         long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
+        time_zone=dialect.zone_name,
     )
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
 
@@ -528,25 +549,63 @@ def save_json(path: Path, obj) -> None:
     Path(path).write_text(json.dumps(obj, indent=2, default=str) + "\n")
 
 
-def parse_times(raw: pd.Series) -> pd.Series:
-    """Times as naive UTC datetimes (NaT where unparsable); numbers are epoch seconds.
-    load_frame and grid_index share it so raw rows map onto the grid they were read into."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        if pd.api.types.is_numeric_dtype(raw):
-            times = pd.to_datetime(raw, unit="s", errors="coerce")
-        else:
-            # utc=True: offsets that change mid-file (summer time: +01:00 then +02:00) are
-            # each converted to UTC; naive times stay what they were (UTC)
-            times = pd.to_datetime(raw, errors="coerce", format="mixed", utc=True)
-    if times.dt.tz is not None:
-        times = times.dt.tz_convert("UTC").dt.tz_localize(None)
-    return times
+def parse_times(raw: pd.Series, dialect: Optional[Dialect] = None) -> pd.Series:
+    """Times as naive UTC datetimes (NaT where unparsable). Text goes through the gateway's own
+    parser (runtime/times.py) under `dialect` (zone of zone-less times, date order, decimal
+    mark), numbers are epoch seconds, datetimes are kept (aware ones in UTC). load_frame and
+    grid_index share it so raw rows map onto the grid they were read into."""
+    if pd.api.types.is_datetime64_any_dtype(raw):
+        times = pd.Series(raw)
+        if times.dt.tz is not None:
+            times = times.dt.tz_convert("UTC").dt.tz_localize(None)
+        return times
+    if pd.api.types.is_numeric_dtype(raw) and not pd.api.types.is_bool_dtype(raw):
+        seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=np.float64)
+    else:
+        dialect = dialect or Dialect()
+        seconds = np.array([_seconds_or_nan(cell, dialect) for cell in raw], dtype=np.float64)
+    return pd.Series(epoch_to_datetime(seconds), index=raw.index)
+
+
+def _seconds_or_nan(cell, dialect: Dialect) -> float:
+    if not isinstance(cell, str):
+        return float("nan")
+    try:
+        return dialect.time(cell.strip())
+    except RowError:
+        return float("nan")
+
+
+# datetime64[ns] reaches 2262-04-11; the gateway's parser accepts up to year 9999
+_NS_LIMIT = float(np.iinfo(np.int64).max) / 1e9 - 1
+
+
+def epoch_to_datetime(seconds: np.ndarray) -> np.ndarray:
+    """Epoch seconds (float) -> datetime64[ns], NaT outside what either side can hold; whole
+    seconds and the fraction apart, so nanoseconds are not lost to float rounding."""
+    ok = np.isfinite(seconds) & (seconds >= max(MIN_TIME, -_NS_LIMIT)) & (
+        seconds < min(MAX_TIME, _NS_LIMIT))
+    out = np.full(len(seconds), np.datetime64("NaT"), dtype="datetime64[ns]")
+    whole = np.floor(seconds[ok])
+    ns = whole.astype(np.int64) * 1_000_000_000 + np.round((seconds[ok] - whole) * 1e9).astype(
+        np.int64)
+    out[ok] = ns.astype("datetime64[ns]")
+    return out
+
+
+def time_problem(cell, dialect: Dialect) -> str:
+    """Why the gateway's parser refuses a time cell (for error messages)."""
+    try:
+        dialect.time(str(cell).strip())
+    except RowError as exc:
+        return exc.detail
+    return "outside the times a datetime64 can hold"
 
 
 def grid_index(frame: Frame, times) -> np.ndarray:
-    """The grid row each timestamp falls on (rounded to the nearest period)."""
-    parsed = parse_times(pd.Series(times))
+    """The grid row each timestamp falls on (rounded to the nearest period); text times are read
+    in the frame's zone."""
+    parsed = parse_times(pd.Series(times), Dialect(tz=frame.report.time_zone))
     if parsed.isna().any():
         raise IntakeError(f"{int(parsed.isna().sum())} times cannot be parsed")
     stamps = parsed.to_numpy()

@@ -365,7 +365,8 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
         time_col=contract.time_column if bundle is not None else model.time_col,
         channels=list(contract.channels), period_s=contract.period_s,
         max_fill_periods=(bundle.max_gap_periods if bundle is not None
-                          else model.max_fill_periods)))
+                          else model.max_fill_periods),
+        tz=(bundle.manifest.get("time_zone") if bundle is not None else model.time_zone)))
     inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
     y = incident_labels(frame.times, inc)
     evaluated = _evaluated(frame, eval_mask, eval_from)
@@ -406,7 +407,7 @@ def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_
     if source_kind(source) == "model":
         model = load_model(source)
         rule = Rule(threshold, default_alerting(model.teacher.config.window, 1), alarms_per_week)
-        return None, model, rule, notes
+        return None, model, rule, _rate_note(model.channels, model.scaler.features)
     try:
         bundle = load_bundle(source, skip_signature=True)  # detection, not trust
     except BundleError as exc:
@@ -419,11 +420,15 @@ def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_
                                                          DEFAULT_ALARMS_PER_WEEK)
     drift = bundle.manifest.get("drift", {}).get("action", DRIFT_ACTION)
     rule = Rule(bundle.threshold_policy["kind"], dict(bundle.alerting), budget, drift)
-    by_rate = [c for c, f in zip(bundle.channels, bundle.features) if f == "rate"]
-    if by_rate:
-        notes.append(f"the detector watches {', '.join(by_rate)} by rate (change per period); "
-                     "the baselines see every channel's level")
-    return bundle, model, rule, notes
+    return bundle, model, rule, notes + _rate_note(bundle.channels, bundle.features)
+
+
+def _rate_note(channels, features) -> list:
+    by_rate = [c for c, f in zip(channels, features) if f == "rate"]
+    if not by_rate:
+        return []
+    return [f"the detector watches {', '.join(by_rate)} by rate (change per period); the "
+            "baselines see every channel's level"]
 
 
 def _evaluated(frame: Frame, eval_mask, eval_from) -> np.ndarray:

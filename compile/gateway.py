@@ -57,7 +57,8 @@ class GatewayRun:
 def run_bundle(bundle_dir: Path, feed: Path, out_dir: Path, backend: str = "numpy",
                keep_state: bool = False) -> GatewayRun:
     """`run.py stream` of the bundle on a CSV feed; scores, events (and with keep_state a
-    checkpoint and an alert database) land in out_dir."""
+    checkpoint and an alert database) land in out_dir. The feed is recorded history (--replay:
+    not judged against the gateway's clock or the bundle's creation date)."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     scores = out_dir / "scores.csv"
@@ -69,7 +70,7 @@ def run_bundle(bundle_dir: Path, feed: Path, out_dir: Path, backend: str = "nump
         stale.unlink(missing_ok=True)
     cmd = [sys.executable, str(Path(bundle_dir) / "run.py"), "stream", "--input", str(feed),
            "--scores-out", str(scores), "--backend", backend, "--score-every", "0",
-           "--heartbeat", "0", "--checkpoint-every", "0", "--skip-signature", *extra]
+           "--heartbeat", "0", "--checkpoint-every", "0", "--skip-signature", "--replay", *extra]
     proc = subprocess.run(cmd, capture_output=True, text=True)
     (out_dir / "events.jsonl").write_text(proc.stdout)
     if proc.returncode != 0:

@@ -75,13 +75,17 @@ class TrainOptions:
     seed: Optional[int] = None                   # None: the config's own seed
     rate: list = field(default_factory=list)     # channels watched by their change per period
     config: Optional[TeacherConfig] = None      # used as is when given (tests, demo, fleet)
+    decimal: str = "."                           # input dialect, as the gateway reads it
+    tz: Optional[str] = None
+    date_order: Optional[str] = None             # "dayfirst" | "monthfirst"
 
     def intake(self) -> IntakeOptions:
         if self.max_fill < 0:
             raise IntakeError("--max-fill must be 0 or more")
         return IntakeOptions(sep=self.sep, time_col=self.time_col, channels=self.channels,
                              exclude=tuple(self.exclude), period_s=parse_period(self.period),
-                             max_fill_periods=self.max_fill, units=dict(self.units))
+                             max_fill_periods=self.max_fill, units=dict(self.units),
+                             decimal=self.decimal, tz=self.tz, date_order=self.date_order)
 
     def detector_config(self) -> TeacherConfig:
         cfg = self.config or TeacherConfig()
@@ -256,7 +260,7 @@ def bundle_manifest(model: TrainedModel, plan: StudentPlan, board: Board, cal: C
         network={"encoder": plan.encoder_hidden, "latent": plan.latent,
                  "generator": plan.generator_hidden},
         score=cal.score, threshold=cal.policy, alerting=cal.alerting, drift=cal.drift,
-        false_alarms=cal.false_alarms,
+        false_alarms=cal.false_alarms, time_zone=model.time_zone,
         board={"name": board.name, "cpu_class": board.cpu_class,
                "budget": {"storage_kb": board.storage_budget_kb, "ram_mb": board.ram_budget_mb,
                           "hop_ms": plan.hop_seconds_budget * 1e3,

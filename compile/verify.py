@@ -40,11 +40,12 @@ from ganlet.compile.gateway import (
     read_scores,
     run_bundle,
 )
+from ganlet.runtime.clock import JUMP, REFUSE, Timeline
 from ganlet.runtime.detector import Detector, Judge
-from ganlet.runtime.intake import RowError
+from ganlet.runtime.intake import Dialect, RowError
 from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
 from ganlet.runtime.scorer import NetworkScorer, make_scorer
-from ganlet.runtime.sources import Control, CsvSource
+from ganlet.runtime.sources import CsvSource
 
 STRICT = ("onnxruntime", "numpy")          # share the int8 weights with the device
 
@@ -148,22 +149,38 @@ class Replay:
 
 
 def replay_feed(bundle: Bundle, scorer, feed: Path) -> Replay:
-    """Feed a CSV through runtime.detector.Detector as `run.py stream` does, with `scorer`."""
+    """Feed a CSV through runtime.detector.Detector as `run.py stream --replay` does, with
+    `scorer`: the bundle's time zone, and jumps in time held until confirmed (clock.Timeline)."""
     det = Detector(bundle, scorer)
+    timeline = Timeline(bundle.period_s, bundle.max_gap_periods)
     refused = {}
     hops = []
+
+    def apply(step) -> None:
+        if step.action == JUMP:
+            if step.jump["direction"] == "backward":
+                det.restart_clock()
+            return
+        try:
+            if step.action == REFUSE:
+                raise step.error
+            events = det.feed(step.time, step.item.values)
+        except RowError as exc:  # refused by time order or range, as on the gateway
+            refused[exc.kind] = refused.get(exc.kind, 0) + 1
+            return
+        hops.extend(e for e in events if e["event"] == "score")
+
+    dialect = Dialect(tz=bundle.manifest.get("time_zone"))
     with open(feed, "rb") as fh:
-        for rec in CsvSource(fh, bundle.time_column, bundle.channels, False, None, Control()):
-            if rec.error is not None or rec.blank:
+        for rec in CsvSource(fh, bundle.time_column, bundle.channels, dialect=dialect):
+            if rec.values is None:  # blank, header or refused line
                 if rec.error is not None:
                     refused[rec.error.kind] = refused.get(rec.error.kind, 0) + 1
                 continue
-            try:
-                events = det.feed(rec.time, rec.values)
-            except RowError as exc:  # refused by time order or range, as on the gateway
-                refused[exc.kind] = refused.get(exc.kind, 0) + 1
-                continue
-            hops += [e for e in events if e["event"] == "score"]
+            for step in timeline.offer(rec.time, rec, det.last_time):
+                apply(step)
+    for step in timeline.flush(det.last_time):
+        apply(step)
     return Replay(parse_times(pd.Series([e["time"] for e in hops], dtype=object)).to_numpy(),
                   np.array([np.nan if e["score"] is None else e["score"] for e in hops], float),
                   np.array([np.nan if e["threshold"] is None else e["threshold"] for e in hops],

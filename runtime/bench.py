@@ -106,6 +106,7 @@ def cold_start(bundle, backend: str, timeout_s: float = 120.0,
         cmd = _run_command(bundle) + [
             "stream", "--input", str(csv_path), "--backend", backend, "--score-every", "1",
             "--heartbeat", "0", "--checkpoint-every", "0", "--follow",  # alive until killed
+            "--replay",  # times from 1970
             *run_args,
         ]
         t0 = time.perf_counter()

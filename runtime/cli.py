@@ -6,11 +6,14 @@ Exit codes (the only ones; README lists them too):
   0  done: end of input, or stopped by SIGTERM / SIGINT
   1  the bundle was refused: checksums, signature, layout, an older bundle than the state
      directory has run, or a gateway too old for it
-  2  bad usage or an unusable input header
+  2  bad usage or an unusable input header (a channel missing, a column named twice, an
+     unknown --tz)
   3  the state file (checkpoint or the newest-bundle record) or the input could not be used
      at start; a store that fails while running (scores CSV, alert database, checkpoint
      writes) is reported as a sink_error event and retried: it never ends the service
   4  internal error (a bug: the traceback is on stderr)
+  5  the input held no usable data row (empty, a header only, or every data row refused:
+     stderr says why)
 """
 
 import argparse
@@ -20,6 +23,8 @@ import traceback
 from typing import List, Optional
 
 from .checkpoint import CheckpointError
+from .clock import BACKLOG_DAYS, CONFIRM_ROWS, MAX_AHEAD_S
+from .intake import DECIMALS, Dialect
 from .manifest import BundleError, load_bundle
 from .scorer import BACKENDS, make_scorer
 from .trust import read_keys
@@ -63,6 +68,7 @@ def _parser() -> argparse.ArgumentParser:
                    help="heartbeat event interval (0 = none)")
     s.add_argument("--allow-older", action="store_true",
                    help="run a bundle older than the newest one run with this --state folder")
+    _input_options(s)
 
     b = sub.add_parser("bench", parents=[common], help="latency, throughput, memory, cold start")
     b.add_argument("--backend", choices=BACKENDS + ("all",), default="all")
@@ -77,6 +83,42 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--allow-older", action="store_true",
                    help="with --state: accept an older bundle and make it the record")
     return p
+
+
+def _input_options(s: argparse.ArgumentParser) -> None:
+    """How the input is read and which times are believed (intake.py and clock.py say more)."""
+    g = s.add_argument_group("input dialect (as for `ganlet train`)")
+    g.add_argument("--sep", help="CSV separator (default: the one that splits the header into "
+                                 "the bundle's columns); TAB as '\t'")
+    g.add_argument("--decimal", choices=DECIMALS, default=".",
+                   help="decimal mark of numbers (',' for 1,5; the separator must differ)")
+    g.add_argument("--tz", metavar="NAME",
+                   help="zone of times written without one: IANA name, UTC or +hh:mm "
+                        "(default: the zone the bundle was trained in, else UTC)")
+    order = g.add_mutually_exclusive_group()
+    order.add_argument("--dayfirst", dest="date_order", action="store_const", const="dayfirst",
+                       help="read numeric dates with the year last as day/month/year")
+    order.add_argument("--monthfirst", dest="date_order", action="store_const",
+                       const="monthfirst", help="read them as month/day/year")
+    c = s.add_argument_group("time plausibility")
+    c.add_argument("--max-ahead", type=float, default=MAX_AHEAD_S, metavar="SECONDS",
+                   help="refuse rows later than the gateway clock plus this (ahead_of_clock)")
+    c.add_argument("--backlog-days", type=float, default=BACKLOG_DAYS, metavar="DAYS",
+                   help="refuse rows older than the bundle's creation minus this (before_bundle)")
+    c.add_argument("--confirm-rows", type=int, default=CONFIRM_ROWS, metavar="N",
+                   help="rows that must agree before a jump in time is believed (>= 2)")
+    c.add_argument("--replay", action="store_true",
+                   help="the input is recorded history: no gateway-clock or bundle-date bounds "
+                        "(jumps are still confirmed)")
+
+
+def _dialect(args, bundle) -> Dialect:
+    """ValueError with a message for options that do not fit together."""
+    sep = "\t" if args.sep in ("\\t", "TAB", "tab") else args.sep
+    tz = args.tz if args.tz is not None else bundle.manifest.get("time_zone")
+    if args.max_ahead < 0 or args.backlog_days < 0 or args.confirm_rows < 2:
+        raise ValueError("--max-ahead and --backlog-days must be >= 0, --confirm-rows >= 2")
+    return Dialect(sep=sep, decimal=args.decimal, tz=tz, date_order=args.date_order)
 
 
 def main(argv: Optional[List[str]] = None, bundle_dir=None) -> int:
@@ -191,6 +233,11 @@ def _stream(bundle, args) -> int:
         sys.stderr.write("error: --scores-max-mb must be > 0\n")
         return EXIT_USAGE
     try:
+        dialect = _dialect(args, bundle)
+    except ValueError as exc:
+        sys.stderr.write(f"error: {exc}\n")
+        return 2
+    try:
         scorer = make_scorer(bundle, args.backend)
     except BundleError as exc:
         sys.stderr.write(f"error: {exc}\n")
@@ -200,6 +247,9 @@ def _stream(bundle, args) -> int:
         alert_db=args.alert_db, score_every=args.score_every,
         checkpoint_every=args.checkpoint_every, heartbeat=args.heartbeat,
         scores_max_bytes=(int(args.scores_max_mb * 2 ** 20) if args.scores_max_mb else None),
+        dialect=dialect,
+        replay=args.replay, max_ahead=args.max_ahead, backlog_days=args.backlog_days,
+        confirm_rows=args.confirm_rows,
     )
     try:
         return run_stream(bundle, scorer, opts)

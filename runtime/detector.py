@@ -236,6 +236,16 @@ class Detector:
         self.last_time = t
         return events
 
+    def restart_clock(self) -> None:
+        """The feed's clock was set back (a jump the service's clock guard confirmed): the next
+        row starts a new timeline, as after a long gap (window reset, no filling across it)."""
+        self.ring.reset()
+        self.judge.reset_run()
+        if self.drift is not None:
+            self.drift.reset()
+        self.last_time = None
+        self.last_raw = None
+
     def _check_order(self, t: float) -> None:
         if self.last_time is None:
             return

@@ -54,6 +54,11 @@ EVENTS = (
     "gap",  # a long gap reset the window
     "drift",  # a channel slowly left its training range and is re-centred (drift.py)
     "drift_ended",  # a reported drift is back inside the range
+    "time_jump",  # the feed's times jumped and enough rows confirmed it (clock.py): from, to
+    "clock_suspect",  # the gateway's own clock reads earlier than any plausible row
+    "header_changed",  # a header line mid-stream: columns remapped, or rows refused
+    "input_rotated",  # the followed file was renamed away or truncated: read the new one
+    "input_waiting",  # the followed file does not exist yet
     "input_error",  # rejected rows, counted by kind (rate-limited)
     "heartbeat",
     "sink_error",  # a store failed (sink name, error, retry_in_s); the other sinks go on

@@ -1,30 +1,71 @@
 """One input line -> (time, values) or a rejection with a kind. Nothing here keeps state.
 
-Input is CSV text: a header naming the time column and the channels (any order, extra columns
-ignored), then one sample per line. Times are ISO 8601 (naive means UTC) or epoch seconds.
+Input is CSV text (RFC 4180 cells, read with the standard csv module one line at a time; a
+quoted cell may hold the separator but not a line break): a header naming the time column and
+the channels (any order; other columns ignored; no name twice), then one sample per line.
+
+Dialect (the same options as `ganlet train`, so one file trains and streams):
+    --sep C         separator: , ; TAB or | (default: the one that splits the header into the
+                    bundle's columns)
+    --decimal ,     decimal comma in numbers and in epoch seconds (1,5); the separator must
+                    then be another character
+    --tz NAME       zone of times written without one: an IANA name (Europe/Berlin, via the
+                    standard zoneinfo module and the system's tzdata), UTC, or a fixed offset
+                    +01:00. Default: the zone the bundle was trained in (manifest time_zone),
+                    else UTC. Events always carry UTC with 'Z'.
+    --dayfirst / --monthfirst
+                    how to read numeric dates with the year last (02/03/2026, 02.03.2026);
+                    without one they are refused (bad_time) with a message saying so, never
+                    read month-first in silence.
+
+Time cells (our own parser, times.py; the same answers on every supported Python):
+    epoch seconds   1772445600, 1772445600.25, 1.7e9 (a cell of digits is always epoch seconds,
+                    so write basic-format dates with a time: 20260302T000000)
+    ISO 8601        2026-03-02T10:00:00Z, 2026-03-02 10:00, 2026-03-02T10:00:00.5+01:00,
+                    20260302T100000+0100, 2026-03-02 (midnight), week dates 2026-W10-1 and
+                    2026W101; 'T' or spaces before the time; hh, hh:mm, hh:mm:ss or hhmmss;
+                    fractions after '.' or ','; zones Z, +hh:mm, +hhmm, +hh (and '-')
+    other           2026/03/02 10:00 (year first); 02/03/2026 with --dayfirst or --monthfirst
+    refused         ordinal dates (2026-061), hour 24, leap second :60, two-digit years, month
+                    names, anything before 1900 or after 9999 (epoch 1e15, 1e308, -1e11, and
+                    0001-01-01T00:00+05:00 among them), and a local time the clocks skip when
+                    they go forward in the --tz zone. In the hour that repeats when they go
+                    back, a zone-less time is read as its first pass (log with an offset or in
+                    UTC to avoid that hour's out_of_order rows).
+
 A rejected row raises RowError whose `kind` is one of REJECT_KINDS; the service counts them.
 """
 
+import csv
 import math
-from datetime import datetime, timezone
-from typing import List, Optional, Tuple
+import re
+from typing import List, Optional, Sequence, Tuple
+
+from .times import DATE_ORDERS, TimeError, zone_from_name, zone_name
+from .times import format_time as format_time  # re-exported: events format times through here
+from .times import parse_time as parse_time_cell
 
 MAX_LINE_BYTES = 64 * 1024  # longer lines are rejected whole ("too_long")
+SEPARATORS = (",", ";", "\t", "|")
+DECIMALS = (".", ",")
 
 REJECT_KINDS = (
     "too_long",  # line longer than MAX_LINE_BYTES
-    "bad_encoding",  # not UTF-8
+    "bad_encoding",  # not UTF-8, or a NUL / carriage return inside the line
     "column_count",  # fewer or more cells than the header
-    "bad_time",  # time cell empty or neither ISO 8601 nor epoch seconds
+    "bad_time",  # time cell empty or not a time we read (see the docstring)
     "missing_value",  # a channel cell is empty
     "non_numeric",  # a channel cell is not a number
     "non_finite",  # NaN or +-inf
     "out_of_range",  # finite, but absurdly far from the scaler's center (service)
     "out_of_order",  # time earlier than the last accepted sample (service)
     "duplicate_time",  # time equal to the last accepted sample (service)
+    "unusable_header",  # after a header line lacking a channel, until a usable header (source)
+    "ahead_of_clock",  # later than the gateway clock plus --max-ahead (clock.py)
+    "before_bundle",  # earlier than the bundle's creation minus --backlog-days (clock.py)
+    "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
-
-_EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
+_EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
 
 
 class RowError(Exception):
@@ -38,101 +79,163 @@ class HeaderError(Exception):
     """The header cannot feed this bundle (a channel or the time column is absent)."""
 
 
-def _split(line: str) -> List[str]:
-    # Plain comma separation: sensor CSV carries numbers and times, never quoted commas.
-    return [cell.strip().strip('"').strip() for cell in line.split(",")]
+class Dialect:
+    """How a line's cells are read: separator (None: chosen from the header), decimal mark,
+    the zone of zone-less times and the order of numeric dates."""
+
+    def __init__(self, sep: Optional[str] = None, decimal: str = ".", tz: Optional[str] = None,
+                 date_order: Optional[str] = None):
+        if sep is not None and (len(sep) != 1 or sep in "\"\r\n"):
+            raise ValueError(f"separator {sep!r}: give one character such as , ; | or a TAB")
+        if decimal not in DECIMALS:
+            raise ValueError(f"decimal mark {decimal!r}: give . or ,")
+        if sep is not None and sep == decimal:
+            raise ValueError(f"separator and decimal mark are both {sep!r}; with --decimal , "
+                             "the file needs another separator (--sep ';')")
+        if date_order is not None and date_order not in DATE_ORDERS:
+            raise ValueError(f"date order {date_order!r}: give one of {', '.join(DATE_ORDERS)}")
+        self.sep = sep
+        self.decimal = decimal
+        self.zone = zone_from_name(tz)
+        self.zone_name = zone_name(self.zone)
+        self.date_order = date_order
+
+    def with_sep(self, sep: str) -> "Dialect":
+        other = Dialect.__new__(Dialect)
+        other.__dict__.update(self.__dict__)
+        other.sep = sep
+        return other
+
+    def split(self, text: str, sep: Optional[str] = None) -> List[str]:
+        sep = sep or self.sep or ","
+        if "\0" in text or "\r" in text:
+            raise RowError("bad_encoding", "line holds a NUL or carriage-return character")
+        if '"' not in text:
+            return [cell.strip() for cell in text.split(sep)]
+        try:
+            cells = next(csv.reader([text], delimiter=sep, strict=True), [])
+        except csv.Error as exc:
+            raise RowError("bad_encoding", f"not one CSV record ({exc})") from None
+        return [cell.strip() for cell in cells]
+
+    def time(self, cell: str) -> float:
+        if self.decimal == "," and _EPOCH_COMMA.fullmatch(cell):
+            cell = cell.replace(",", ".")
+        try:
+            return parse_time_cell(cell, self.zone, self.date_order)
+        except TimeError as exc:
+            raise RowError("bad_time", str(exc)) from None
+
+    def number(self, name: str, cell: str) -> float:
+        if not cell:
+            raise RowError("missing_value", f"channel {name!r} is empty")
+        text = cell.replace(",", ".") if self.decimal == "," else cell
+        try:
+            v = float(text)
+        except ValueError:
+            hint = " (a decimal comma? pass --decimal ,)" if "," in cell else ""
+            raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}") from None
+        if not math.isfinite(v):
+            raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
+        return v
 
 
-def parse_time(cell: str) -> float:
-    """ISO 8601 (naive = UTC, 'Z' accepted) or epoch seconds -> epoch seconds (float)."""
-    if not cell:
-        raise RowError("bad_time", "empty time cell")
-    try:
-        t = float(cell)
-    except ValueError:
-        t = None
-    if t is not None:
-        if not math.isfinite(t):
-            raise RowError("bad_time", f"time {cell!r} is not finite")
-        return t
-    text = cell[:-1] + "+00:00" if cell[-1] in "zZ" else cell
-    try:
-        dt = datetime.fromisoformat(text)
-    except ValueError:
-        raise RowError("bad_time", f"time {cell[:40]!r} is neither ISO 8601 nor epoch seconds") from None
-    if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
-    return (dt - _EPOCH).total_seconds()
+def parse_time(cell: str, dialect: Optional[Dialect] = None) -> float:
+    """One time cell -> epoch seconds, or RowError("bad_time")."""
+    return (dialect or _UTC).time(cell.strip())
 
 
-def format_time(t: float) -> str:
-    """Epoch seconds -> ISO 8601 UTC with 'Z' (milliseconds only when needed)."""
-    dt = datetime.fromtimestamp(t, tz=timezone.utc)
-    if dt.microsecond:
-        return dt.strftime("%Y-%m-%dT%H:%M:%S.") + f"{dt.microsecond // 1000:03d}Z"
-    return dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+def header_sep(text: str, time_column: str, dialect: Dialect,
+               channels: Sequence[str] = ()) -> Optional[str]:
+    """The separator under which `text` names the time column (and, preferably, every
+    channel): the given one, else the first of SEPARATORS that does; None for a data line."""
+    candidates = [dialect.sep] if dialect.sep else list(SEPARATORS)
+    named = []
+    for sep in candidates:
+        try:
+            cells = dialect.split(text, sep)
+        except RowError:
+            continue  # quotes that do not fit this separator
+        if time_column in cells:
+            if all(c in cells for c in channels):
+                return sep
+            named.append(sep)
+    return named[0] if named else None
 
 
 class Header:
     """Column positions of the time column and of each model channel, in model order."""
 
-    def __init__(self, line: str, time_column: str, channels: List[str]):
-        cells = _split(line.lstrip("\ufeff").rstrip("\r\n"))
+    def __init__(self, line: str, time_column: str, channels: List[str], dialect: Dialect):
+        text = line.lstrip("\ufeff").rstrip("\r\n")
+        sep = header_sep(text, time_column, dialect, channels) or dialect.sep or ","
+        self.dialect = dialect.with_sep(sep)
+        self.text = text
+        try:
+            cells = self.dialect.split(text)
+        except RowError as exc:
+            raise HeaderError(f"input header unreadable ({exc})") from None
         self.n_cells = len(cells)
-        if time_column not in cells:
-            raise HeaderError(
-                f"input header has no time column {time_column!r} (columns: {cells[:20]}); "
-                "the first line must name the columns"
-            )
-        missing = [c for c in channels if c not in cells]
-        if missing:
-            raise HeaderError(
-                f"input header lacks channel(s) {missing} the model needs (columns: {cells[:20]})"
-            )
+        _check_columns(cells, time_column, channels)
         self.time_index = cells.index(time_column)
         self.channel_index = [cells.index(c) for c in channels]
         self.channels = list(channels)
 
+    def same_layout(self, other: "Header") -> bool:
+        return (self.dialect.sep, self.n_cells, self.time_index, self.channel_index) == (
+            other.dialect.sep, other.n_cells, other.time_index, other.channel_index)
+
     def time_of(self, line: str) -> Optional[float]:
         """The row's time if its time cell can be read, else None (used when resuming)."""
-        cells = _split(line)
-        if len(cells) != self.n_cells:
-            return None
         try:
-            return parse_time(cells[self.time_index])
+            cells = self.dialect.split(line)
+            if len(cells) != self.n_cells:
+                return None
+            return self.dialect.time(cells[self.time_index])
         except RowError:
             return None
 
     def parse(self, line: str) -> Tuple[float, List[float]]:
         """A data line (no newline) -> (epoch seconds, values in model channel order)."""
-        cells = _split(line)
+        cells = self.dialect.split(line)
         if len(cells) != self.n_cells:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")
-        t = parse_time(cells[self.time_index])
-        values = []
-        for name, idx in zip(self.channels, self.channel_index):
-            cell = cells[idx]
-            if not cell:
-                raise RowError("missing_value", f"channel {name!r} is empty")
-            try:
-                v = float(cell)
-            except ValueError:
-                raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}") from None
-            if not math.isfinite(v):
-                raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
-            values.append(v)
-        return t, values
+        t = self.dialect.time(cells[self.time_index])
+        number = self.dialect.number
+        return t, [number(name, cells[i]) for name, i in zip(self.channels, self.channel_index)]
+
+
+def _check_columns(cells: List[str], time_column: str, channels: Sequence[str]) -> None:
+    twice = sorted({c for c in cells if c and cells.count(c) > 1})
+    if twice:
+        raise HeaderError(f"input header names column(s) {twice} more than once; give every "
+                          "column its own name")
+    if time_column not in cells:
+        raise HeaderError(
+            f"input header has no time column {time_column!r} (columns: {cells[:20]}); "
+            "the first line must name the columns"
+        )
+    missing = [c for c in channels if c not in cells]
+    if missing:
+        raise HeaderError(
+            f"input header lacks channel(s) {missing} the model needs (columns: {cells[:20]})"
+        )
 
 
 def decode_line(raw: bytes) -> Optional[str]:
-    """Bytes of one line (newline stripped by the reader) -> text; None for a blank line."""
+    """Bytes of one line (newline stripped by the reader) -> text; None for a blank line.
+    Leading NUL bytes are dropped: they are the hole a copy-truncate rotation leaves when the
+    writer does not append."""
     if len(raw) > MAX_LINE_BYTES:
         raise RowError("too_long", f"{len(raw)} bytes > {MAX_LINE_BYTES}")
     try:
-        text = raw.decode("utf-8")
+        text = raw.lstrip(b"\0").decode("utf-8")
     except UnicodeDecodeError:
         raise RowError("bad_encoding", "line is not UTF-8") from None
     text = text.rstrip("\r")
     if not text.strip():
         return None
     return text
+
+
+_UTC = Dialect()

@@ -321,12 +321,14 @@ def build_manifest(
     created: Optional[str] = None,
     drift: Optional[dict] = None,
     false_alarms: Optional[dict] = None,
+    time_zone: str = "UTC",
 ) -> dict:
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
     network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
     drift: drift.drift_section(...) (optional); false_alarms: the budget the threshold was
-    calibrated to and the rate it implies (optional, informative)."""
+    calibrated to and the rate it implies (optional, informative); time_zone: the zone
+    zone-less input times were read in at training (the gateway's default)."""
     optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms))
                 if v is not None}
     return {**optional,
@@ -335,6 +337,7 @@ def build_manifest(
         "created": created or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "name": name,
         "time_column": time_column,
+        "time_zone": str(time_zone),
         "channels": [{"name": n, "unit": u} for n, u in channels],
         "period_s": float(period_s),
         "max_gap_periods": int(max_gap_periods),

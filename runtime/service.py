@@ -19,14 +19,26 @@ sink durable (fsyncs the CSV and records its byte size).
     consumers de-duplicate alerts by alert_id (scores by time).
 The replay needs input that can be read again (a file, or a source that re-sends unacknowledged
 rows); rows read from a pipe after the last checkpoint are gone with the process.
+
+Where a restart resumes: the checkpoint records the input position after the last line whose
+fate is decided (sources.Position: byte offset, the bytes before it, the header in force). When
+the same file still holds those bytes there, the restart continues exactly after them, whatever
+the times in the file do (a clock set back included). Otherwise (standard input, a rotated file)
+it skips every line up to the first one later than the checkpoint's last time. Rows the clock
+guard (clock.py) holds are not decided: the position stays before them, so they are read again
+after a restart and never reach the checkpoint unconfirmed.
 """
 
+import math
 import signal
 import sys
 import time
 from typing import Optional
 
+import numpy as np
+
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
+from .clock import BACKLOG_DAYS, CONFIRM_ROWS, FEED, JUMP, MAX_AHEAD_S, ClockBounds, Timeline
 from .detector import Detector
 from .events import (
     ALERT_EVENTS,
@@ -38,8 +50,9 @@ from .events import (
     scores_provenance,
 )
 from .guard import STORE_ERRORS
-from .intake import REJECT_KINDS, HeaderError, RowError, format_time
-from .sources import Control, CsvSource, Stop
+from .intake import REJECT_KINDS, Dialect, HeaderError, RowError, format_time
+from .sources import Control, CsvSource, Position, Stop, open_input
+from .times import MAX_TIME, MIN_TIME, TimeError, parse_time
 
 ADVISORY_NOTICE = (
     "ganlet detection is advisory condition monitoring. It is not a safety function and does "
@@ -47,6 +60,12 @@ ADVISORY_NOTICE = (
     "govern the installation."
 )
 ERROR_REPORT_INTERVAL_S = 5.0  # input_error events at most this often (first one at once)
+EXIT_NO_ROWS = 5  # the input held no usable data row: empty, header only, or every row refused
+
+
+def wall_clock() -> float:
+    """The gateway's clock (epoch seconds): read here, never by the detector."""
+    return time.time()
 
 
 # ---------------------------------------------------------------------- the service
@@ -62,8 +81,18 @@ class StreamOptions:
         checkpoint_every: float = 30.0,
         heartbeat: float = 60.0,
         scores_max_bytes: Optional[int] = None,
+        dialect: Optional[Dialect] = None,
+        replay: bool = False,
+        max_ahead: float = MAX_AHEAD_S,
+        backlog_days: float = BACKLOG_DAYS,
+        confirm_rows: int = CONFIRM_ROWS,
     ):
         self.input = input
+        self.dialect = dialect  # None: UTC, separator from the header
+        self.replay = replay  # recorded history: no gateway-clock or bundle-date bounds
+        self.max_ahead = max_ahead
+        self.backlog_days = backlog_days
+        self.confirm_rows = confirm_rows
         self.follow = follow
         self.state = state
         self.scores_out = scores_out
@@ -92,27 +121,45 @@ class Service:
         self.opts = opts
         self.stderr = stderr
         saved = load_checkpoint(opts.state, bundle.bundle_id) if opts.state else None
-        self.writer = EventWriter.guarded(self._sinks(stdout, scorer.name), (saved or {}).get("sinks", {}),
-                                          notice=stderr)
+        saved = _checked_saved(saved, opts.state)
+        self.writer = EventWriter.guarded(self._sinks(stdout, scorer.name),
+                                          (saved or {}).get("sinks", {}), notice=stderr)
         self.checkpoint_failed = False
         self.det = Detector(bundle, scorer)
         self.det.errors.update({k: 0 for k in REJECT_KINDS})
+        self.det.counters.setdefault("header_lines", 0)
+        self.resume_pos = None  # type: Optional[Position]
         if saved:
-            try:
-                self.det.restore(saved["detector"])
-            except (KeyError, TypeError, ValueError) as exc:
-                self.writer.close()
-                raise CheckpointError(
-                    f"{opts.state}: state cannot be restored ({exc}); move it aside to start fresh"
-                ) from None
+            self._restore(saved)
         self.resumed = bool(saved)
         self.resume_after = self.det.last_time if saved else None
         self.timers = _Timers(time.monotonic())
         self.pending_errors = {}  # kind -> count since the last input_error event
         self.example = {}
         self.already = 0  # lines of the replay prefix after a restart
+        self.bounds = _clock_bounds(bundle, opts)
+        self.timeline = Timeline(bundle.period_s, bundle.max_gap_periods, opts.confirm_rows)
+        self.position = self.resume_pos  # after the last line whose fate is decided
+        self.held_from = None  # type: Optional[Position]  # before the first held row
+        self.clock_suspect = False
+        self.run_rows = self.run_fed = 0  # data lines read / rows fed in this run
+        self.first_refusal = None  # type: Optional[str]
         if opts.state and not saved:
             self.checkpoint()  # so a crash before the first timed checkpoint resumes cleanly
+
+    def _restore(self, saved: dict) -> None:
+        try:
+            with np.errstate(all="ignore"):  # absurd numbers are refused below, not warned of
+                self.det.restore(saved["detector"])
+            _check_restored(self.det, self.bundle)
+            if saved.get("input") is not None:
+                self.resume_pos = Position.from_state(saved["input"])
+        except Exception as exc:  # noqa: BLE001 - decoding untrusted state: every failure is "unusable"
+            self.writer.close()
+            raise CheckpointError(
+                f"{self.opts.state}: state cannot be restored ({type(exc).__name__}: {exc}); "
+                "move it aside to start fresh"
+            ) from None
 
     def _sinks(self, stdout, backend: str) -> list:
         """(sink class, open(resume) -> sink), durable sinks first; each is guarded."""
@@ -139,9 +186,11 @@ class Service:
         sinks = self.writer.durable_state()
         if not self.opts.state:
             return
+        mark = self.held_from or self.position
         try:
             save_checkpoint(self.opts.state, self.bundle.bundle_id,
-                            {"detector": self.det.state(), "sinks": sinks})
+                            {"detector": self.det.state(), "sinks": sinks,
+                             "input": mark.state() if mark is not None else None})
         except STORE_ERRORS as exc:
             if not self.checkpoint_failed:
                 self.stderr.write(f"sink_error: checkpoint {self.opts.state}: {exc}\n")
@@ -155,35 +204,109 @@ class Service:
 
     # ------------------------------------------------------------------ per record
     def handle(self, rec) -> None:
-        if self.resume_after is not None:
-            # Replay prefix after a restart: every line up to the first one whose time is
-            # later than the checkpoint was handled before; skip it quietly. (A bad line with
-            # no readable time in this prefix is counted here too: it cannot be told apart
-            # from one the previous run already counted.)
-            if rec.time is None or rec.time <= self.resume_after:
-                self.already += 1
-                return
-            self.resume_after = None
+        if rec.event is not None and rec.header is None:  # about the input itself
+            self.writer.emit(rec.event)
+        elif rec.header is not None:
+            self._header(rec)
+        elif not self._already(rec):
+            self._line(rec)
+        self._advance(rec)
+
+    def _already(self, rec) -> bool:
+        if self.resume_after is None:
+            return False
+        # Replay prefix after a restart that could not resume by position: every line up to
+        # the first one whose time is later than the checkpoint was handled before; skip it
+        # quietly. (A bad line with no readable time in this prefix is counted here too: it
+        # cannot be told apart from one the previous run already counted.)
+        if rec.time is None or rec.time <= self.resume_after:
+            self.already += 1
+            return True
+        self.resume_after = None
+        return False
+
+    def _header(self, rec) -> None:
+        if rec.header == "first" or self.resume_after is not None:
+            return
+        self.det.counters["lines"] += 1
+        self.det.counters["header_lines"] += 1
+        if rec.event is not None:
+            self.writer.emit(rec.event)
+
+    def _line(self, rec) -> None:
         self.det.counters["lines"] += 1
         if rec.blank:
             self.det.counters["blank_lines"] += 1
             return
+        self.run_rows += 1
         if rec.error is not None:
             self.reject(rec.error, rec.lineno)
             return
+        now = wall_clock()
+        self._watch_clock(now)
+        problem = self.bounds.check(rec.time, now)
+        if problem is not None:
+            self.reject(problem, rec.lineno)
+            return
+        for step in self.timeline.offer(rec.time, rec, self.det.last_time):
+            self._step(step)
+
+    def _step(self, step) -> None:
+        if step.action == JUMP:
+            self._jump(step.jump, step.time)
+        elif step.action == FEED:
+            self.feed(step.item)
+        else:
+            self.reject(step.error, step.item.lineno)
+
+    def _advance(self, rec) -> None:
+        """Keep the resume position: after this line, or before the first held row."""
+        first = self.timeline.first_held()
+        if first is None:
+            self.held_from = None
+        elif first is rec:
+            self.held_from = self.position or Position(0, b"", 0, 0, None)
+        self.position = rec.pos
+
+    def feed(self, rec) -> None:
         try:
             events = self.det.feed(rec.time, rec.values)
         except RowError as exc:
             self.reject(exc, rec.lineno)
             return
+        self.run_fed += 1
         for event in events:
             self.writer.emit(event)
         if any(e["event"] in ALERT_EVENTS for e in events) or self.writer.wants_checkpoint():
+            if not self.timeline.pending:
+                self.position, self.held_from = rec.pos, None  # rows of a confirmed jump
             self.checkpoint()
+
+    def _jump(self, jump: dict, first_time: float) -> None:
+        backward = jump["direction"] == "backward"
+        what = ("the feed's clock was set back" if backward else
+                "a long gap in the feed, or its clock set forward")
+        self.emit("time_jump", what=what, direction=jump["direction"],
+                  **{"from": format_time(jump["from"])},
+                  to=format_time(jump["to"]), shift_s=round(jump["to"] - jump["from"], 3),
+                  confirmed_by_rows=jump["rows"],
+                  action="clock_restarted" if backward else "window_reset")
+        if backward:
+            self.det.restart_clock()
+
+    def _watch_clock(self, now: float) -> None:
+        suspect = not self.bounds.clock_ok(now)
+        if suspect and not self.clock_suspect:
+            self.emit("clock_suspect", gateway_clock=format_time(now),
+                      earliest_plausible=format_time(self.bounds.earliest),
+                      action="rows are not checked against the gateway clock until it is set")
+        self.clock_suspect = suspect
 
     def reject(self, exc: RowError, lineno: int) -> None:
         self.det.errors[exc.kind] = self.det.errors.get(exc.kind, 0) + 1
         self.pending_errors[exc.kind] = self.pending_errors.get(exc.kind, 0) + 1
+        if self.first_refusal is None:
+            self.first_refusal = f"line {lineno}: {exc.kind}: {exc.detail}"
         if not self.example:
             self.example.update({"line": lineno, "kind": exc.kind, "detail": exc.detail})
         self.report_errors(force=False)
@@ -216,19 +339,29 @@ class Service:
 
     # ------------------------------------------------------------------ the run
     def start_event(self) -> None:
-        b = self.bundle
+        b, d = self.bundle, self.opts.dialect or Dialect()
         self.emit("start", bundle_id=b.bundle_id, name=b.manifest["name"],
                   tool_version=b.manifest["tool_version"], backend=self.det.scorer.name,
                   channels=list(b.channels), window=b.window, hop=b.hop, period_s=b.period_s,
                   threshold=b.threshold_policy.get("kind"), resumed=self.resumed,
                   resume_after=(format_time(self.resume_after)
                                 if self.resume_after is not None else None),
+                  input={"sep": d.sep, "decimal": d.decimal, "time_zone": d.zone_name,
+                         "date_order": d.date_order, "replay": self.opts.replay},
                   notice=ADVISORY_NOTICE)
 
-    def run(self, fh, control: Control) -> int:
+    def open_source(self, reader, control: Control) -> CsvSource:
+        """The CSV source over `reader`, resumed exactly after the checkpoint's position when
+        the input still holds it (then the time-based replay prefix is not needed)."""
+        source = CsvSource(reader, self.bundle.time_column, self.bundle.channels,
+                           self.opts.follow, self.timed, control, dialect=self.opts.dialect)
+        if self.resume_pos is not None and source.resume_at(self.resume_pos):
+            self.resume_after = None
+            self.already = self.resume_pos.rows
+        return source
+
+    def run(self, source: CsvSource, control: Control) -> int:
         reason, code = "end_of_input", 0
-        source = CsvSource(fh, self.bundle.time_column, self.bundle.channels,
-                           self.opts.follow, self.timed, control)
         try:
             for rec in source:
                 if control.stop_signal is not None:
@@ -242,8 +375,27 @@ class Service:
         except HeaderError as exc:
             reason, code = "bad_header", 2
             self.stderr.write(f"error: {exc}\n")
+        if reason == "end_of_input":
+            for step in self.timeline.flush(self.det.last_time):
+                self._step(step)
+            code = self._no_rows_code(source)
         self.finish(reason, control)
         return code
+
+    def _no_rows_code(self, source: CsvSource) -> int:
+        """EXIT_NO_ROWS (with a message) when this run read nothing usable."""
+        if source.header_text is None:
+            problem = "the input is empty (no header line)"
+        elif self.run_rows == 0 and self.already == 0:
+            problem = "the input has a header but no data rows"
+        elif self.run_rows > 0 and self.run_fed == 0:
+            refused = ", ".join(f"{k} {v}" for k, v in self.det.errors.items() if v)
+            problem = (f"all {self.run_rows} data rows were refused ({refused}); first: "
+                       f"{self.first_refusal}")
+        else:
+            return 0
+        self.stderr.write(f"error: {problem}\n")
+        return EXIT_NO_ROWS
 
     def finish(self, reason: str, control: Control) -> None:
         self.report_errors(force=True)
@@ -251,12 +403,76 @@ class Service:
         last, det = self.det.last_time, self.det
         fields = {"reason": reason, "last_time": format_time(last) if last is not None else None,
                   "counters": dict(det.counters), "errors": dict(det.errors),
-                  "already_processed": self.already,
+                  "already_processed": self.already, "held_rows": self.timeline.pending,
                   "open_alert": det.judge.alert["alert_id"] if det.judge.alert else None}
         if control.stop_signal is not None:
             fields["signal"] = signal.Signals(control.stop_signal).name
         self.emit("stop", **fields)
         self.writer.close()
+
+
+# ---------------------------------------------------------------------- checks of saved state
+def _checked_saved(saved, path) -> Optional[dict]:
+    """The checkpoint's state when it has the expected shape; CheckpointError otherwise."""
+    if saved is None:
+        return None
+    ok = (isinstance(saved, dict) and isinstance(saved.get("detector"), dict)
+          and isinstance(saved.get("sinks", {}), dict)
+          and all(isinstance(v, dict) for v in saved.get("sinks", {}).values())
+          and isinstance(saved.get("input"), (dict, type(None))))
+    if not ok:
+        raise CheckpointError(f"{path}: state is malformed (not the sections this runtime "
+                              "writes); move it aside to start fresh")
+    return saved
+
+
+def _check_restored(det: Detector, bundle) -> None:
+    """What a restored detector must satisfy before a row reaches it (ValueError if not)."""
+    ring, n = det.ring, len(bundle.channels)
+    if (ring.size, ring.n_channels) != (bundle.window, n) or not 0 <= ring.next < ring.size \
+            or ring.filled < 0 or not np.isfinite(ring.buf).all():
+        raise ValueError("ring does not fit this bundle")
+    last = det.last_time
+    if last is not None and not (isinstance(last, (int, float)) and math.isfinite(last)
+                                 and MIN_TIME <= last < MAX_TIME):
+        raise ValueError(f"last_time {last!r} is not a time")
+    if det.last_raw is not None and (det.last_raw.shape != (n,)
+                                     or not np.isfinite(det.last_raw).all()):
+        raise ValueError("last_raw does not fit this bundle")
+    for name in ("counters", "errors"):
+        table = getattr(det, name)
+        if not all(isinstance(k, str) and type(v) is int and v >= 0 for k, v in table.items()):
+            raise ValueError(f"{name} are not counts")
+    _check_judge(det.judge, n)
+
+
+def _check_judge(judge, n: int) -> None:
+    if judge.machine.is_open != (judge.alert is not None):
+        raise ValueError("alert machine and alert record disagree")
+    for _hop, t, parts in judge.recent:
+        if len(parts) != n or not math.isfinite(t):
+            raise ValueError("recent hops do not fit this bundle")
+    a = judge.alert
+    if a is not None:
+        if not (isinstance(a.get("alert_id"), str) and isinstance(a.get("opened"), str)
+                and type(a.get("opened_hop")) is int and type(a.get("hops")) is int
+                and isinstance(a.get("threshold"), (int, float))
+                and isinstance(a.get("parts_sum"), list) and len(a["parts_sum"]) == n
+                and all(isinstance(v, (int, float)) for v in a["parts_sum"])):
+            raise ValueError("open alert record is malformed")
+
+
+def _clock_bounds(bundle, opts: StreamOptions) -> ClockBounds:
+    """No bounds for recorded history; else the bundle's creation minus the backlog, and the
+    gateway clock plus max_ahead."""
+    if opts.replay:
+        return ClockBounds()
+    try:
+        created = parse_time(bundle.manifest["created"])
+    except TimeError:
+        created = None
+    earliest = None if created is None else created - opts.backlog_days * 86400.0
+    return ClockBounds(earliest=earliest, max_ahead=opts.max_ahead)
 
 
 def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, stdin=None) -> int:
@@ -273,13 +489,17 @@ def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, st
             old_handlers[sig] = signal.signal(sig, control.handler)
         except ValueError:  # not the main thread: no signal handling
             pass
-    service.start_event()
-    own_input = opts.input != "-"
-    fh = open(opts.input, "rb") if own_input else (stdin or sys.stdin.buffer)
+    reader = None
     try:
-        return service.run(fh, control)
+        try:
+            reader = open_input(opts.input, opts.follow, stdin or sys.stdin.buffer)
+        except OSError:
+            service.writer.close()
+            raise
+        service.start_event()
+        return service.run(service.open_source(reader, control), control)
     finally:
-        if own_input:
-            fh.close()
+        if reader is not None:
+            reader.close()
         for sig, old in old_handlers.items():
             signal.signal(sig, old)

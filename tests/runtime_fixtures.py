@@ -116,8 +116,9 @@ def build_bundle(
     center: Sequence[float] = CENTER,
     score: Optional[dict] = None,
     drift: Optional[dict] = None,
-    created: str = "2024-01-01T00:00:00Z",
+    created: str = "2023-11-14T00:00:00Z",
     ed25519_key: Optional[bytes] = None,
+    time_zone: str = "UTC",
 ) -> Path:
     """A complete bundle folder. threshold=None -> static level from calibrate_on's scores.
     features=None watches every channel's level."""
@@ -157,7 +158,9 @@ def build_bundle(
                "budget": {"hop_ms": 50.0, "ram_mb": 256, "storage_kb": 150,
                           "onnxruntime": False},
                "estimate": {"hop_ms": 1.0, "ram_mb": 1.0, "flops_per_hop": 1}},
-        tool_version="0.1.0-test", created=created,
+        # made before its feeds start (T0), as in the field: the gateway refuses rows older than
+        # the bundle's creation minus a backlog allowance unless told the input is a replay
+        tool_version="0.1.0-test", created=created, time_zone=time_zone,
         parity_tolerances={"score_rel": 1e-5},
     )
     write_manifest(bundle_dir, manifest, sign_key=sign_key, ed25519_key=ed25519_key)

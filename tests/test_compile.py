@@ -56,7 +56,7 @@ def teacher(tmp_path_factory):
     df = correlated_series(1500)
     csv = root / "data.csv"
     df.to_csv(csv, index=False)
-    frame = load_frame(csv, IntakeOptions())
+    frame = load_frame(csv, IntakeOptions(tz="Europe/Berlin"))  # station-local times
     spans = split_spans(frame, None, 0.2)
     model = train(frame, spans, TINY)
     model_dir = save_model(model, root / "model")
@@ -186,6 +186,7 @@ def test_manifest_describes_the_detector(teacher, bundle):
     assert [c["name"] for c in m["channels"]] == ["flow", "power", "temp"]   # the CSV's order
     assert [c["unit"] for c in m["channels"]] == list(model.units)
     assert m["time_column"] == "time"
+    assert m["time_zone"] == "Europe/Berlin"  # train's zone, the gateway's default
     # reference: pandas differences of the written timestamps (60 s grid in synthetic.py)
     assert m["period_s"] == pd.Series(df["time"]).diff().dt.total_seconds().median() == 60.0
     # robust scaler on the fit span: median and IQR / 1.349

@@ -369,3 +369,55 @@ def test_a_period_far_finer_than_the_data_is_refused(tmp_path):
                   "a": np.arange(200.0), "b": np.sin(np.arange(200.0))}).to_csv(path, index=False)
     with pytest.raises(IntakeError, match="median spacing is 1 min"):
         load_frame(path, IntakeOptions(period_s=0.001))
+
+
+# ------------------------------------------------------------------------------------------
+# dialects and zones, read by the gateway's own rules (issue 13 section 3)
+
+
+def test_offsets_that_change_mid_file_are_read_as_utc(write_csv):
+    """Summer time: +01:00 then +02:00 in one column; one regular UTC grid, no pandas error."""
+    df = correlated_series(300, period_s=600)
+    utc = pd.date_range("2026-03-28T20:00", periods=300, freq="10min", tz="UTC")
+    # reference: pandas converts each UTC time to Europe/Berlin with its offset of the day
+    local = utc.tz_convert("Europe/Berlin")
+    df["time"] = [ts.isoformat() for ts in local]
+    assert {t[-6:] for t in df["time"]} == {"+01:00", "+02:00"}
+    frame = load_frame(write_csv(df))
+    assert (frame.times == utc.tz_localize(None)).all() and frame.report.grid_points == 300
+
+
+def test_zoneless_local_times_with_tz(write_csv):
+    df = correlated_series(200)
+    utc = pd.date_range("2026-01-05", periods=200, freq="60s", tz="UTC")
+    df["time"] = utc.tz_convert("Europe/Berlin").strftime("%Y-%m-%d %H:%M:%S")
+    frame = load_frame(write_csv(df), IntakeOptions(tz="Europe/Berlin"))
+    assert (frame.times == utc.tz_localize(None)).all()  # reference: pandas tz_convert
+    assert frame.report.time_zone == "Europe/Berlin"
+    with pytest.raises(IntakeError, match="unknown here"):
+        load_frame(write_csv(df), IntakeOptions(tz="Nowhere/Atlantis"))
+
+
+def test_decimal_comma_is_an_option_and_its_absence_is_named(write_csv):
+    df = correlated_series(100)
+    path = write_csv(df, sep=";", decimal=",")
+    with pytest.raises(IntakeError, match="hold numbers with a decimal comma .*--decimal ','"):
+        load_frame(path)
+    frame = load_frame(path, IntakeOptions(decimal=","))
+    assert frame.channels == CHANNELS
+    # reference: pandas.read_csv told the separator and the decimal mark
+    expected = pd.read_csv(path, sep=";", decimal=",")[CHANNELS].to_numpy()
+    np.testing.assert_allclose(frame.values, expected)
+
+
+def test_the_training_zone_is_kept_with_the_model(write_csv, tmp_path, one_torch_thread):
+    from ganlet.compile.train import load_model, save_model
+
+    df = correlated_series(300)
+    df["time"] = df["time"].dt.strftime("%d.%m.%Y %H:%M")
+    frame = load_frame(write_csv(df), IntakeOptions(tz="America/New_York", date_order="dayfirst"))
+    cfg = TeacherConfig(window=16, encoder_hidden=(4,), generator_hidden=(4,),
+                        discriminator_hidden=4, adversarial_epochs=1, inversion_epochs=1)
+    model = train(frame, split_spans(frame, None, 0.2), cfg)
+    assert model.time_zone == "America/New_York"
+    assert load_model(save_model(model, tmp_path / "m")).time_zone == "America/New_York"

@@ -23,8 +23,9 @@ def bundles(tmp_path_factory):
 
 
 def stream(bundle, state, feed, *extra):
+    # --replay: the fixture feeds are recorded history, dated before these bundles were made
     return subprocess.run([sys.executable, str(bundle / "run.py"), "stream", "--input", str(feed),
-                           "--state", str(state), "--heartbeat", "0", *extra],
+                           "--state", str(state), "--heartbeat", "0", "--replay", *extra],
                           capture_output=True, text=True, timeout=120)
 
 

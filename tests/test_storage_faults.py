@@ -97,7 +97,7 @@ def test_a_full_disk_for_the_scores_csv_does_not_stop_detection(setup, tmp_path,
     assert alerts(tmp_path / "alerts.db") == setup["alerts"]
     # what reached the full file is whole rows of the fault-free run, in order
     want = setup["scores"].decode().splitlines()
-    got = (mnt / "scores.csv").read_bytes().decode()
+    got = without_provenance((mnt / "scores.csv").read_bytes()).decode()
     assert got.startswith(SCORES_HEADER) and got.endswith("\n")
     rows = got.splitlines()[1:]
     assert 0 < len(rows) < N_HOPS and all(r in want for r in rows)
@@ -121,7 +121,8 @@ def test_a_read_only_alert_database_does_not_stop_detection(setup, tmp_path, tin
     # stdout got every alert, the scores file is exactly the fault-free one
     opened = [e for e in events if e["event"] == "alert_opened"]
     assert [e["alert_id"] for e in opened] == [a[0] for a in setup["alerts"]]
-    assert (tmp_path / "scores.csv").read_bytes() == setup["scores"]
+    assert without_provenance((tmp_path / "scores.csv").read_bytes()) == \
+        without_provenance(setup["scores"])
     assert alerts(db) == []
 
 
@@ -168,8 +169,13 @@ def test_a_failed_store_is_retried_with_back_off_and_replays_missed_alerts(tmp_p
     assert [retry_delay(n) for n in (1, 2, 9, 10, 50)] == [1.0, 2.0, 256.0, 300.0, 300.0]
 
 
+def without_provenance(data: bytes) -> bytes:
+    """A scores file without its `#` provenance lines (runtime/events.py)."""
+    return b"".join(ln for ln in data.splitlines(keepends=True) if not ln.startswith(b"#"))
+
+
 def rows_of(data: bytes):
-    return data.decode().splitlines()[1:]
+    return without_provenance(data).decode().splitlines()[1:]
 
 
 def test_scores_are_capped_with_one_rotated_file(setup, tmp_path):
@@ -180,7 +186,7 @@ def test_scores_are_capped_with_one_rotated_file(setup, tmp_path):
     longest = max(len(r) + 1 for r in rows_of(setup["scores"]))
     current, rotated = tmp_path / "scores.csv", tmp_path / "scores.csv.1"
     for f in (current, rotated):
-        assert f.read_bytes().startswith(SCORES_HEADER.encode())
+        assert without_provenance(f.read_bytes()).startswith(SCORES_HEADER.encode())
         assert f.stat().st_size < cap + longest
     kept = rows_of(rotated.read_bytes()) + rows_of(current.read_bytes())
     assert kept == rows_of(setup["scores"])[-len(kept):]  # the newest rows, none missing
@@ -215,7 +221,8 @@ def test_sigkill_with_rotation_loses_and_duplicates_nothing(setup, tmp_path):
                    run / "state.json", "--scores-max-mb", cap)
     assert final.returncode == 0, final.stderr
     for name in ("scores.csv", "scores.csv.1"):
-        assert (run / name).read_bytes() == (base / name).read_bytes(), name
+        assert without_provenance((run / name).read_bytes()) == \
+            without_provenance((base / name).read_bytes()), name
     assert alerts(run / "alerts.db") == alerts(base / "alerts.db") == setup["alerts"]
 
 
