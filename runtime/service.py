@@ -18,7 +18,9 @@ sink durable (fsyncs the CSV and records its byte size).
   - stdout events are at-least-once: after a crash the replayed hops print their events again;
     consumers de-duplicate alerts by alert_id (scores by time).
 The replay needs input that can be read again (a file, or a source that re-sends unacknowledged
-rows); rows read from a pipe after the last checkpoint are gone with the process.
+rows: MQTT, see mqtt.py); rows read from a pipe after the last checkpoint are gone with the
+process. After each checkpoint the after_checkpoint hooks run: the MQTT source acknowledges
+there, so the broker forgets a sample only once a checkpoint covers it.
 """
 
 import signal
@@ -52,6 +54,7 @@ class StreamOptions:
         score_every: int = 1,
         checkpoint_every: float = 30.0,
         heartbeat: float = 60.0,
+        mqtt=None,
     ):
         self.input = input
         self.follow = follow
@@ -61,6 +64,7 @@ class StreamOptions:
         self.score_every = score_every
         self.checkpoint_every = checkpoint_every
         self.heartbeat = heartbeat
+        self.mqtt = mqtt  # mqtt.MqttSettings when --mqtt-in / --mqtt-out is given
 
 
 class _Timers:
@@ -76,10 +80,12 @@ class _Timers:
 class Service:
     """One run of `run.py stream`: sinks, detector, checkpoint, the read loop."""
 
-    def __init__(self, bundle, scorer, opts: StreamOptions, stdout, stderr):
+    def __init__(self, bundle, scorer, opts: StreamOptions, stdout, stderr, link=None):
         self.bundle = bundle
         self.opts = opts
         self.stderr = stderr
+        self.link = link  # the MQTT connection (mqtt.MqttLink), or None
+        self.after_checkpoint = []  # called once each checkpoint is durable
         saved = load_checkpoint(opts.state, bundle.bundle_id) if opts.state else None
         self.writer = EventWriter(self._sinks(stdout, (saved or {}).get("sinks", {})))
         self.det = Detector(bundle, scorer)
@@ -107,6 +113,7 @@ class Service:
             sinks.append(AlertDbSink(self.opts.alert_db))
         if self.opts.scores_out:
             sinks.append(ScoresCsvSink(self.opts.scores_out, resume=resume.get("scores_csv")))
+        sinks.extend(_mqtt_sinks(self.link, self.opts, resume))
         sinks.append(JsonLinesSink(stdout, self.opts.score_every))
         return sinks
 
@@ -117,6 +124,8 @@ class Service:
         if self.opts.state:
             save_checkpoint(self.opts.state, self.bundle.bundle_id,
                             {"detector": self.det.state(), "sinks": self.writer.durable_state()})
+        for hook in self.after_checkpoint:
+            hook()
 
     # ------------------------------------------------------------------ per record
     def handle(self, rec) -> None:
@@ -190,10 +199,9 @@ class Service:
                                 if self.resume_after is not None else None),
                   notice=ADVISORY_NOTICE)
 
-    def run(self, fh, control: Control) -> int:
+    def run(self, source, control: Control) -> int:
+        """Read Records from `source` (sources.py) until it ends or a signal stops it."""
         reason, code = "end_of_input", 0
-        source = CsvSource(fh, self.bundle.time_column, self.bundle.channels,
-                           self.opts.follow, self.timed, control)
         try:
             for rec in source:
                 if control.stop_signal is not None:
@@ -212,6 +220,8 @@ class Service:
 
     def finish(self, reason: str, control: Control) -> None:
         self.report_errors(force=True)
+        if self.link is not None:
+            self.link.drain()  # alerts the broker acknowledges now need no re-send next time
         self.checkpoint()
         last, det = self.det.last_time, self.det
         fields = {"reason": reason, "last_time": format_time(last) if last is not None else None,
@@ -224,13 +234,62 @@ class Service:
         self.writer.close()
 
 
+def _mqtt_link(bundle, opts: StreamOptions, stderr):
+    """The broker connection for --mqtt-in / --mqtt-out (connecting in the background), or None."""
+    if opts.mqtt is None:
+        return None
+    from .mqtt import MqttLink
+
+    def log(line: str) -> None:
+        stderr.write(line + "\n")
+        stderr.flush()
+
+    link = MqttLink(opts.mqtt, bundle, log)
+    link.start()
+    return link
+
+
+def _mqtt_sinks(link, opts: StreamOptions, resume: dict) -> list:
+    if link is None or not opts.mqtt.publish:
+        return []
+    from .mqtt import MqttSink
+
+    return [MqttSink(link, resume=resume.get(MqttSink.name))]
+
+
+def _open_source(service: Service, opts: StreamOptions, control: Control, stdin):
+    """(the Record source, the file to close afterwards or None): MQTT, a file, or stdin."""
+    if opts.mqtt is not None and opts.mqtt.subscribe is not None:
+        from .mqtt import MESSAGE_REJECT_KINDS, MqttSource
+
+        source = MqttSource(service.link, service.bundle.channels, service.timed,
+                            service.checkpoint, control)
+        service.after_checkpoint.append(source.acknowledge)
+        service.det.errors.update({k: 0 for k in MESSAGE_REJECT_KINDS if k not in service.det.errors})
+        return source, None
+    own_input = opts.input != "-"
+    fh = open(opts.input, "rb") if own_input else (stdin or sys.stdin.buffer)
+    source = CsvSource(fh, service.bundle.time_column, service.bundle.channels, opts.follow,
+                       service.timed, control)
+    return source, (fh if own_input else None)
+
+
 def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, stdin=None) -> int:
     """Run until end of input (or a signal). Returns the process exit code."""
     stdout = stdout or sys.stdout
     stderr = stderr or sys.stderr
     stderr.write("NOTICE: " + ADVISORY_NOTICE + "\n")
     stderr.flush()
-    service = Service(bundle, scorer, opts, stdout, stderr)
+    link = _mqtt_link(bundle, opts, stderr)
+    try:
+        return _serve(bundle, scorer, opts, stdout, stderr, stdin, link)
+    finally:
+        if link is not None:
+            link.close()
+
+
+def _serve(bundle, scorer, opts: StreamOptions, stdout, stderr, stdin, link) -> int:
+    service = Service(bundle, scorer, opts, stdout, stderr, link=link)
     control = Control()
     old_handlers = {}
     for sig in (signal.SIGTERM, signal.SIGINT):
@@ -239,12 +298,11 @@ def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, st
         except ValueError:  # not the main thread: no signal handling
             pass
     service.start_event()
-    own_input = opts.input != "-"
-    fh = open(opts.input, "rb") if own_input else (stdin or sys.stdin.buffer)
+    source, own_fh = _open_source(service, opts, control, stdin)
     try:
-        return service.run(fh, control)
+        return service.run(source, control)
     finally:
-        if own_input:
-            fh.close()
+        if own_fh is not None:
+            own_fh.close()
         for sig, old in old_handlers.items():
             signal.signal(sig, old)
