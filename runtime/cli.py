@@ -66,10 +66,10 @@ def _mqtt_options(s: argparse.ArgumentParser) -> None:
     m.add_argument("--mqtt-config", metavar="FILE",
                    help="INI file with an [mqtt] section (host, port, username, password, tls, "
                         "ca_file, cert_file, key_file, client_id, prefix, keepalive); mode 600")
-    m.add_argument("--mqtt-host", help="broker host (default localhost)")
-    m.add_argument("--mqtt-port", type=int, help="broker port (default 1883, 8883 with TLS)")
-    m.add_argument("--mqtt-prefix", help="first topic levels (default ganlet)")
-    m.add_argument("--mqtt-client-id", help="MQTT client id (default ganlet-HOST-BUNDLEID8); "
+    m.add_argument("--mqtt-host", metavar="HOST", help="broker host (default localhost)")
+    m.add_argument("--mqtt-port", type=int, metavar="PORT", help="broker port (default 1883, 8883 with TLS)")
+    m.add_argument("--mqtt-prefix", metavar="PREFIX", help="first topic levels (default ganlet)")
+    m.add_argument("--mqtt-client-id", metavar="ID", help="MQTT client id (default ganlet-HOST-BUNDLEID8); "
                                             "keep it stable: the broker keeps the session by it")
     m.add_argument("--mqtt-tls", action="store_true", help="TLS with the system's CAs")
     m.add_argument("--mqtt-ca", metavar="FILE", help="CA certificate(s) for TLS (implies TLS)")
