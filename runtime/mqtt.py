@@ -31,6 +31,7 @@ Delivery (why the order is what it is):
        reconnect; reconnects back off from 1 s to 60 s.
 """
 
+import collections
 import configparser
 import json
 import math
@@ -311,9 +312,12 @@ class MqttLink:
         self.log = log
         self.manual_ack = int(version.split(".")[0]) >= 2
         self.inbox = queue.Queue()  # type: queue.Queue
-        self.lock = threading.RLock()
+        # Never call into paho while holding self.lock: paho runs on_publish under its own
+        # message lock, which publish() takes too; on_publish only queues the mid in `acked`.
+        self.lock = threading.Lock()
         self.unacked = {}  # type: Dict[int, dict]  # mid -> QoS 1 event not acknowledged yet
         self.in_flight = set()  # every QoS 1 mid not acknowledged yet (events and status)
+        self.acked = collections.deque()  # mids the broker acknowledged, not yet settled
         self.generation = 0  # connections so far; an ack only goes back on the same one
         self.connected = threading.Event()
         self.held = 0  # paho 1.x: message callbacks waiting for their checkpoint
@@ -401,7 +405,15 @@ class MqttLink:
                      f"({RECONNECT_S[0]} s to {RECONNECT_S[1]} s)")
 
     def _on_publish(self, client, userdata, mid, *rest):
-        with self.lock:
+        self.acked.append(mid)  # no lock here (see __init__); settled by _settle()
+
+    def _settle(self) -> None:
+        """Forget what the broker acknowledged (called with self.lock held, by the main
+        thread). Each mid is registered before its acknowledgement is settled: events are
+        published and settled by the main thread; a status published in paho's thread is
+        registered there before that thread can read its acknowledgement."""
+        while self.acked:
+            mid = self.acked.popleft()
             self.unacked.pop(mid, None)
             self.in_flight.discard(mid)
 
@@ -434,15 +446,16 @@ class MqttLink:
     def publish_event(self, event: dict) -> None:
         topic, qos = EVENT_TOPICS[event["event"]]
         payload = json.dumps(event, separators=(",", ":"), allow_nan=False)
-        with self.lock:  # on_publish may run before publish() returns: register under the lock
-            info = self.client.publish(self.topics.of(topic), payload, qos=qos)
-            if qos:
+        info = self.client.publish(self.topics.of(topic), payload, qos=qos)
+        if qos:  # an acknowledgement that came first waits in self.acked
+            with self.lock:
                 self.unacked[info.mid] = event
                 self.in_flight.add(info.mid)
         self.counts["published"] += 1
 
     def unacknowledged(self) -> List[dict]:
         with self.lock:
+            self._settle()
             return list(self.unacked.values())[-MAX_UNACKED:]
 
     def drain(self, timeout: float = DRAIN_S) -> bool:
@@ -450,6 +463,7 @@ class MqttLink:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             with self.lock:
+                self._settle()
                 if not self.in_flight:
                     return True
             if self.held:
