@@ -27,8 +27,9 @@ Delivery (why the order is what it is):
   out: alerts go at QoS 1 (at least once, consumers de-duplicate by alert_id). An alert event
        the broker has not acknowledged is kept in the checkpoint (MqttSink.durable_state) and
        published again at the next start; events after the checkpoint are derived again by the
-       input replay. While the broker is away paho queues QoS 1 events and sends them on
-       reconnect; reconnects back off from 1 s to 60 s.
+       input replay. While the broker is away QoS 1 events wait in the gateway's outbox and go
+       out in order after reconnecting (MqttLink.flush says why paho alone would reorder
+       them); QoS 0 events are dropped meanwhile. Reconnects back off from 1 s to 60 s.
 """
 
 import collections
@@ -54,6 +55,7 @@ RECONNECT_S = (1, 60)  # paho's back-off doubles the wait from 1 s up to 60 s
 # default in-flight window of 20 messages per client (mosquitto.conf, from memory).
 ACK_BATCH = 10
 DRAIN_S = 5.0  # a clean stop waits this long for the broker to acknowledge alerts
+RESEND_WAIT_S = 10.0  # after a reconnect, new events wait at most this long behind re-sends
 MAX_MESSAGE_BYTES = 1 << 20
 MAX_UNACKED = 1000  # alert events kept for re-sending (the newest)
 POLL_S = 0.2
@@ -315,16 +317,18 @@ class MqttLink:
         # Never call into paho while holding self.lock: paho runs on_publish under its own
         # message lock, which publish() takes too; on_publish only queues the mid in `acked`.
         self.lock = threading.Lock()
+        self.outbox = collections.deque()  # QoS 1 events not handed to paho yet, in order
         self.unacked = {}  # type: Dict[int, dict]  # mid -> QoS 1 event not acknowledged yet
-        self.in_flight = set()  # every QoS 1 mid not acknowledged yet (events and status)
+        self.in_flight = {}  # type: Dict[int, int]  # every QoS 1 mid -> connection sent on
         self.acked = collections.deque()  # mids the broker acknowledged, not yet settled
         self.generation = 0  # connections so far; an ack only goes back on the same one
         self.connected = threading.Event()
+        self.connected_at = 0.0
         self.held = 0  # paho 1.x: message callbacks waiting for their checkpoint
         self.closing = False
         self.closed = False
         self.stop_reason = None  # type: Optional[str]
-        self.counts = {"received": 0, "published": 0, "resent": 0}
+        self.counts = {"received": 0, "published": 0, "resent": 0, "dropped": 0}
         self.client = self._client(client_mod)
 
     # -------------------------------------------------------------- set-up
@@ -377,6 +381,7 @@ class MqttLink:
             self.log(f"mqtt: broker refused the connection ({rc}); retrying with back-off")
             return
         self.generation += 1
+        self.connected_at = time.monotonic()
         self.connected.set()
         self.log(f"mqtt: connected to {self.settings.host}:{self.settings.port}")
         if self.settings.subscribe is not None:
@@ -396,7 +401,7 @@ class MqttLink:
     def _publish_status(self, client, state: str, reason: Optional[str] = None) -> None:
         info = client.publish(self.topics.status, self._status(state, reason), qos=1, retain=True)
         with self.lock:
-            self.in_flight.add(info.mid)
+            self.in_flight[info.mid] = self.generation
 
     def _on_disconnect(self, client, userdata, *args):
         self.connected.clear()
@@ -415,7 +420,7 @@ class MqttLink:
         while self.acked:
             mid = self.acked.popleft()
             self.unacked.pop(mid, None)
-            self.in_flight.discard(mid)
+            self.in_flight.pop(mid, None)
 
     def _on_message(self, client, userdata, msg):
         self.counts["received"] += 1
@@ -444,27 +449,58 @@ class MqttLink:
             self.client.ack(item.msg.mid, item.msg.qos)
 
     def publish_event(self, event: dict) -> None:
+        """QoS 1 events go out in order through the outbox; QoS 0 ones only while connected."""
         topic, qos = EVENT_TOPICS[event["event"]]
+        if qos:
+            self.outbox.append(event)
+            self.flush()
+        elif self.connected.is_set():
+            self._send(event, topic, qos)
+        else:
+            self.counts["dropped"] += 1
+
+    def flush(self) -> None:
+        """Hand queued events to paho, in order, when they cannot overtake older ones (main
+        thread only). paho re-sends what was in flight on the previous connection only after
+        on_connect returns, and sends at once what is published meanwhile: so new events wait
+        until those re-sends are acknowledged (at most RESEND_WAIT_S)."""
+        while True:
+            with self.lock:
+                self._settle()
+                if not self.outbox or not self._may_send():
+                    return
+                event = self.outbox.popleft()
+            self._send(event, *EVENT_TOPICS[event["event"]])
+
+    def _may_send(self) -> bool:
+        if not self.connected.is_set():
+            return False
+        if time.monotonic() - self.connected_at > RESEND_WAIT_S:
+            return True
+        return all(g >= self.generation for g in self.in_flight.values())
+
+    def _send(self, event: dict, topic: str, qos: int) -> None:
         payload = json.dumps(event, separators=(",", ":"), allow_nan=False)
         info = self.client.publish(self.topics.of(topic), payload, qos=qos)
         if qos:  # an acknowledgement that came first waits in self.acked
             with self.lock:
                 self.unacked[info.mid] = event
-                self.in_flight.add(info.mid)
+                self.in_flight[info.mid] = self.generation
         self.counts["published"] += 1
 
     def unacknowledged(self) -> List[dict]:
+        """QoS 1 events the broker has not acknowledged, oldest first (main thread only)."""
         with self.lock:
             self._settle()
-            return list(self.unacked.values())[-MAX_UNACKED:]
+            return (list(self.unacked.values()) + list(self.outbox))[-MAX_UNACKED:]
 
     def drain(self, timeout: float = DRAIN_S) -> bool:
         """Wait until the broker has acknowledged every QoS 1 publish (or the timeout)."""
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
+            self.flush()
             with self.lock:
-                self._settle()
-                if not self.in_flight:
+                if not self.in_flight and not self.outbox:
                     return True
             if self.held:
                 return False  # paho 1.x: a held message blocks the network thread
@@ -483,7 +519,8 @@ class MqttLink:
         self.client.loop_stop()
         c = self.counts
         self.log(f"mqtt: {c['received']} messages in, {c['published']} events out "
-                 f"({c['resent']} re-sent from the checkpoint), "
+                 f"({c['resent']} re-sent from the checkpoint, {c['dropped']} QoS 0 events "
+                 f"dropped while disconnected), "
                  f"{len(self.unacknowledged())} alert events unacknowledged at close")
 
 
@@ -558,6 +595,7 @@ class MqttSink:
                      "acknowledged before the restart")
 
     def handle(self, event: dict) -> None:
+        self.link.flush()  # events held back while the broker was away go first
         if event["event"] == "stop":
             self.link.stop_reason = event.get("reason")
         elif event["event"] in EVENT_TOPICS:
