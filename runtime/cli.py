@@ -69,6 +69,7 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--allow-older", action="store_true",
                    help="run a bundle older than the newest one run with this --state folder")
     _input_options(s)
+    _mqtt_options(s)
 
     b = sub.add_parser("bench", parents=[common], help="latency, throughput, memory, cold start")
     b.add_argument("--backend", choices=BACKENDS + ("all",), default="all")
@@ -119,6 +120,48 @@ def _dialect(args, bundle) -> Dialect:
     if args.max_ahead < 0 or args.backlog_days < 0 or args.confirm_rows < 2:
         raise ValueError("--max-ahead and --backlog-days must be >= 0, --confirm-rows >= 2")
     return Dialect(sep=sep, decimal=args.decimal, tz=tz, date_order=args.date_order)
+
+
+def _mqtt_options(s: argparse.ArgumentParser) -> None:
+    m = s.add_argument_group(
+        "MQTT (needs paho-mqtt; topics and payloads: README)",
+        "the broker password goes in the --mqtt-config file only, never on the command line")
+    m.add_argument("--mqtt-in", nargs="?", const="", default=None, metavar="TOPIC",
+                   help="read samples from MQTT instead of --input (default topic "
+                        "PREFIX/NAME/samples)")
+    m.add_argument("--mqtt-out", action="store_true",
+                   help="also publish alerts, drift, input errors, heartbeat and status")
+    m.add_argument("--mqtt-config", metavar="FILE",
+                   help="INI file with an [mqtt] section (host, port, username, password, tls, "
+                        "ca_file, cert_file, key_file, client_id, prefix, keepalive); mode 600")
+    m.add_argument("--mqtt-host", metavar="HOST", help="broker host (default localhost)")
+    m.add_argument("--mqtt-port", type=int, metavar="PORT", help="broker port (default 1883, 8883 with TLS)")
+    m.add_argument("--mqtt-prefix", metavar="PREFIX", help="first topic levels (default ganlet)")
+    m.add_argument("--mqtt-client-id", metavar="ID", help="MQTT client id (default ganlet-HOST-BUNDLEID8); "
+                                            "keep it stable: the broker keeps the session by it")
+    m.add_argument("--mqtt-tls", action="store_true", help="TLS with the system's CAs")
+    m.add_argument("--mqtt-ca", metavar="FILE", help="CA certificate(s) for TLS (implies TLS)")
+    m.add_argument("--mqtt-cert", metavar="FILE", help="client certificate for TLS")
+    m.add_argument("--mqtt-key", metavar="FILE", help="client private key for TLS")
+
+
+def _mqtt_settings(args, bundle):
+    """MqttSettings from the options, or None without --mqtt-in/--mqtt-out. Raises
+    MqttUnavailable / MqttConfigError (mqtt.py) with a message for the user."""
+    from .mqtt import MqttConfigError, paho_module, resolve_settings
+
+    given = {"host": args.mqtt_host, "port": args.mqtt_port, "prefix": args.mqtt_prefix,
+             "client_id": args.mqtt_client_id, "tls": args.mqtt_tls, "ca_file": args.mqtt_ca,
+             "cert_file": args.mqtt_cert, "key_file": args.mqtt_key}
+    if args.mqtt_in is None and not args.mqtt_out:
+        if args.mqtt_config or any(v not in (None, False) for v in given.values()):
+            raise MqttConfigError("MQTT options need --mqtt-in and/or --mqtt-out")
+        return None
+    if args.mqtt_in is not None and (args.input != "-" or args.follow):
+        raise MqttConfigError("--mqtt-in replaces --input and --follow; give one or the other")
+    paho_module()  # raises MqttUnavailable with what to install
+    given.update(subscribe=args.mqtt_in, publish=args.mqtt_out)
+    return resolve_settings(given, args.mqtt_config, bundle.bundle_id)
 
 
 def main(argv: Optional[List[str]] = None, bundle_dir=None) -> int:
@@ -182,8 +225,11 @@ def signature_line(summary: dict) -> str:
 
 
 def _check(bundle, args) -> int:
+    from .mqtt import availability
+
     summary = bundle.summary()
     summary["verified"] = True
+    summary["mqtt"] = availability()
     if args.json:
         print(json.dumps(summary, indent=2, sort_keys=True))
         return EXIT_OK
@@ -194,6 +240,9 @@ def _check(bundle, args) -> int:
     print(f"  channels: {chans}")
     print(f"  window {summary['window']} x {summary['period_s']} s, hop {summary['hop']}, "
           f"threshold {summary['threshold']}, board {summary['board']}")
+    mqtt = summary["mqtt"]
+    print(f"  MQTT: available ({mqtt['client']})" if mqtt["available"]
+          else f"  MQTT: not available. {mqtt['detail']}")
     return EXIT_OK
 
 
@@ -237,6 +286,13 @@ def _stream(bundle, args) -> int:
     except ValueError as exc:
         sys.stderr.write(f"error: {exc}\n")
         return 2
+    from .mqtt import MqttConfigError, MqttUnavailable
+
+    try:
+        mqtt = _mqtt_settings(args, bundle)
+    except (MqttUnavailable, MqttConfigError) as exc:
+        sys.stderr.write(f"error: {exc}\n")
+        return EXIT_USAGE
     try:
         scorer = make_scorer(bundle, args.backend)
     except BundleError as exc:
@@ -247,12 +303,15 @@ def _stream(bundle, args) -> int:
         alert_db=args.alert_db, score_every=args.score_every,
         checkpoint_every=args.checkpoint_every, heartbeat=args.heartbeat,
         scores_max_bytes=(int(args.scores_max_mb * 2 ** 20) if args.scores_max_mb else None),
-        dialect=dialect,
+        dialect=dialect, mqtt=mqtt,
         replay=args.replay, max_ahead=args.max_ahead, backlog_days=args.backlog_days,
         confirm_rows=args.confirm_rows,
     )
     try:
         return run_stream(bundle, scorer, opts)
+    except MqttConfigError as exc:  # the TLS files, found unusable when the link is built
+        sys.stderr.write(f"error: {exc}\n")
+        return EXIT_USAGE
     except (CheckpointError, OSError) as exc:
         sys.stderr.write(f"error: {exc}\n")
         return EXIT_STATE

@@ -18,7 +18,9 @@ sink durable (fsyncs the CSV and records its byte size).
   - stdout events are at-least-once: after a crash the replayed hops print their events again;
     consumers de-duplicate alerts by alert_id (scores by time).
 The replay needs input that can be read again (a file, or a source that re-sends unacknowledged
-rows); rows read from a pipe after the last checkpoint are gone with the process.
+rows: MQTT, see mqtt.py); rows read from a pipe after the last checkpoint are gone with the
+process. After each checkpoint the after_checkpoint hooks run: the MQTT source acknowledges
+there, so the broker forgets a sample only once a checkpoint covers it.
 
 Where a restart resumes: the checkpoint records the input position after the last line whose
 fate is decided (sources.Position: byte offset, the bytes before it, the header in force). When
@@ -86,6 +88,7 @@ class StreamOptions:
         max_ahead: float = MAX_AHEAD_S,
         backlog_days: float = BACKLOG_DAYS,
         confirm_rows: int = CONFIRM_ROWS,
+        mqtt=None,
     ):
         self.input = input
         self.dialect = dialect  # None: UTC, separator from the header
@@ -101,6 +104,7 @@ class StreamOptions:
         self.checkpoint_every = checkpoint_every
         self.heartbeat = heartbeat
         self.scores_max_bytes = scores_max_bytes
+        self.mqtt = mqtt  # mqtt.MqttSettings when --mqtt-in / --mqtt-out is given
 
 
 class _Timers:
@@ -116,10 +120,12 @@ class _Timers:
 class Service:
     """One run of `run.py stream`: sinks, detector, checkpoint, the read loop."""
 
-    def __init__(self, bundle, scorer, opts: StreamOptions, stdout, stderr):
+    def __init__(self, bundle, scorer, opts: StreamOptions, stdout, stderr, link=None):
         self.bundle = bundle
         self.opts = opts
         self.stderr = stderr
+        self.link = link  # the MQTT connection (mqtt.MqttLink), or None
+        self.after_checkpoint = []  # called once each checkpoint is durable
         saved = load_checkpoint(opts.state, bundle.bundle_id) if opts.state else None
         saved = _checked_saved(saved, opts.state)
         self.writer = EventWriter.guarded(self._sinks(stdout, scorer.name),
@@ -172,6 +178,10 @@ class Service:
             sinks.append((ScoresCsvSink, lambda resume: ScoresCsvSink(
                 opts.scores_out, resume=resume, max_bytes=opts.scores_max_bytes,
                 provenance=provenance)))
+        if self.link is not None and opts.mqtt.publish:
+            from .mqtt import MqttSink
+
+            sinks.append((MqttSink, lambda resume: MqttSink(self.link, resume=resume)))
         stdout_sink = JsonLinesSink(stdout, opts.score_every)
         sinks.append((JsonLinesSink, lambda _resume: stdout_sink))
         return sinks
@@ -184,8 +194,12 @@ class Service:
         state file that cannot be written is reported once per streak and retried at the next
         checkpoint: detection goes on, a restart resumes from the last saved one."""
         sinks = self.writer.durable_state()
-        if not self.opts.state:
+        if self.opts.state and not self._save_state(sinks):
             return
+        for hook in self.after_checkpoint:
+            hook()
+
+    def _save_state(self, sinks: dict) -> bool:
         mark = self.held_from or self.position
         try:
             save_checkpoint(self.opts.state, self.bundle.bundle_id,
@@ -197,10 +211,11 @@ class Service:
                 self.emit("sink_error", sink="checkpoint", error=f"{type(exc).__name__}: {exc}",
                           retry_in_s=self.opts.checkpoint_every or None, failures=1)
             self.checkpoint_failed = True
-            return
+            return False
         if self.checkpoint_failed:
             self.checkpoint_failed = False
             self.emit("sink_recovered", sink="checkpoint", down_s=None, missed=0, replayed=0)
+        return True
 
     # ------------------------------------------------------------------ per record
     def handle(self, rec) -> None:
@@ -360,7 +375,9 @@ class Service:
             self.already = self.resume_pos.rows
         return source
 
-    def run(self, source: CsvSource, control: Control) -> int:
+    def run(self, source, control: Control) -> int:
+        """Read Records from `source` (sources.py, or mqtt.py) until it ends or a signal stops
+        it."""
         reason, code = "end_of_input", 0
         try:
             for rec in source:
@@ -384,7 +401,7 @@ class Service:
 
     def _no_rows_code(self, source: CsvSource) -> int:
         """EXIT_NO_ROWS (with a message) when this run read nothing usable."""
-        if source.header_text is None:
+        if getattr(source, "header_text", "") is None:  # (an MQTT source has no header)
             problem = "the input is empty (no header line)"
         elif self.run_rows == 0 and self.already == 0:
             problem = "the input has a header but no data rows"
@@ -399,6 +416,8 @@ class Service:
 
     def finish(self, reason: str, control: Control) -> None:
         self.report_errors(force=True)
+        if self.link is not None:
+            self.link.drain()  # alerts the broker acknowledges now need no re-send next time
         self.checkpoint()
         last, det = self.det.last_time, self.det
         fields = {"reason": reason, "last_time": format_time(last) if last is not None else None,
@@ -475,13 +494,49 @@ def _clock_bounds(bundle, opts: StreamOptions) -> ClockBounds:
     return ClockBounds(earliest=earliest, max_ahead=opts.max_ahead)
 
 
+def _mqtt_link(bundle, opts: StreamOptions, stderr):
+    """The broker connection for --mqtt-in / --mqtt-out (connecting in the background), or None."""
+    if opts.mqtt is None:
+        return None
+    from .mqtt import MqttLink
+
+    def log(line: str) -> None:
+        stderr.write(line + "\n")
+        stderr.flush()
+
+    link = MqttLink(opts.mqtt, bundle, log)
+    link.start()
+    return link
+
+
+def _mqtt_source(service: Service, control: Control):
+    """Samples from the broker (--mqtt-in), acknowledged once a checkpoint covers them."""
+    from .mqtt import MESSAGE_REJECT_KINDS, MqttSource
+
+    source = MqttSource(service.link, service.bundle.channels, service.timed,
+                        service.checkpoint, control)
+    service.after_checkpoint.append(source.acknowledge)
+    for kind in MESSAGE_REJECT_KINDS:
+        service.det.errors.setdefault(kind, 0)
+    return source
+
+
 def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, stdin=None) -> int:
     """Run until end of input (or a signal). Returns the process exit code."""
     stdout = stdout or sys.stdout
     stderr = stderr or sys.stderr
     stderr.write("NOTICE: " + ADVISORY_NOTICE + "\n")
     stderr.flush()
-    service = Service(bundle, scorer, opts, stdout, stderr)
+    link = _mqtt_link(bundle, opts, stderr)
+    try:
+        return _serve(bundle, scorer, opts, stdout, stderr, stdin, link)
+    finally:
+        if link is not None:
+            link.close()
+
+
+def _serve(bundle, scorer, opts: StreamOptions, stdout, stderr, stdin, link) -> int:
+    service = Service(bundle, scorer, opts, stdout, stderr, link=link)
     control = Control()
     old_handlers = {}
     for sig in (signal.SIGTERM, signal.SIGINT):
@@ -491,13 +546,17 @@ def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, st
             pass
     reader = None
     try:
-        try:
-            reader = open_input(opts.input, opts.follow, stdin or sys.stdin.buffer)
-        except OSError:
-            service.writer.close()
-            raise
+        if opts.mqtt is not None and opts.mqtt.subscribe is not None:
+            source = _mqtt_source(service, control)
+        else:
+            try:
+                reader = open_input(opts.input, opts.follow, stdin or sys.stdin.buffer)
+            except OSError:
+                service.writer.close()
+                raise
+            source = None
         service.start_event()
-        return service.run(service.open_source(reader, control), control)
+        return service.run(source or service.open_source(reader, control), control)
     finally:
         if reader is not None:
             reader.close()
