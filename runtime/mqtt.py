@@ -64,6 +64,8 @@ EVENT_TOPICS = {  # event -> (topic under BASE, QoS)
     "alert_opened": ("alerts", 1),
     "alert_closed": ("alerts", 1),
     "drift": ("drift", 1),
+    "drift_ended": ("drift", 1),
+    "time_jump": ("input_errors", 0),
     "input_error": ("input_errors", 0),
     "heartbeat": ("heartbeat", 0),
 }
