@@ -133,6 +133,10 @@ def progress_printer(quiet: bool):
     return update, stop
 
 
+THREADS_HELP = ("torch threads (default: 1, as these small networks run fastest on one; never "
+                "more than the cores not already busy).")
+
+
 @app.command()
 def train(
     data: Path = typer.Argument(..., help="CSV or Parquet sensor history."),
@@ -152,6 +156,7 @@ def train(
     inversion_epochs: Optional[int] = typer.Option(None, "--inversion-epochs", help="Epochs of the encoder phase."),
     seed: Optional[int] = typer.Option(None, help="Random seed (default: the config's, else 0; runs are reproducible on CPU)."),
     rate: Optional[str] = typer.Option(None, "--rate", help="Comma-separated channels to watch by their change per period instead of their level: slow quantities that wander, such as temperatures (train suggests them)."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help=THREADS_HELP),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Learn one machine's normal behaviour from a sensor history."""
@@ -164,7 +169,7 @@ def train(
             max_fill=max_fill, train_until=parse_train_until(train_until),
             calibration=calibration, window=window, config_file=config,
             adversarial_epochs=adversarial_epochs, inversion_epochs=inversion_epochs, seed=seed,
-            rate=split_list(rate) or [],
+            rate=split_list(rate) or [], threads=threads,
         )
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))
@@ -190,20 +195,21 @@ def budgets():
 @app.command("compile")
 def compile_cmd(
     model_dir: Path = typer.Argument(..., help="Model directory written by `ganlet train`."),
-    out: Path = typer.Option(..., "--out", "-o", help="Bundle directory to write (replaced if present)."),
-    board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512)."),
+    out: Path = typer.Option(..., "--out", "-o", help="Bundle directory to write (replaced if present); with several boards, the folder of one bundle per board (OUT/BOARD)."),
+    board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512); several as a,b; 'all' for every shipped profile."),
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
     sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac)."),
     name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest and used for file and service names on the gateway: letters, digits, '.', '_', '-' (default: the model folder's name)."),
     distil_epochs: int = typer.Option(80, "--distil-epochs", min=1, help="Distillation epochs."),
     seed: int = typer.Option(0, help="Random seed of the distillation."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help=THREADS_HELP),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
-    """Size a student to the board, distil, quantise to int8, export ONNX and pack the bundle."""
+    """Size a network to each board, distil, quantise to int8, export ONNX and pack the bundle."""
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.pack import safe_name
-    from ganlet.compile.pipeline import CompileOptions, compile_dir
+    from ganlet.compile.pipeline import CompileOptions
 
     with user_errors():
         key = read_key(sign_key) if sign_key else None
@@ -212,15 +218,33 @@ def compile_cmd(
                                "create one with `ganlet train DATA --out DIR`")
         options = CompileOptions(board=board, threshold=threshold, archive=archive, sign_key=key,
                                  name=name or safe_name(model_dir.resolve().name),
-                                 distil=DistilConfig(epochs=distil_epochs, seed=seed))
+                                 distil=DistilConfig(epochs=distil_epochs, seed=seed),
+                                 threads=threads)
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))
         try:
-            result = compile_dir(model_dir, out, options, progress=progress, echo=echo)
+            text = run_compile(model_dir, out, options, progress, echo)
         finally:
             stop()
         if not quiet:
-            typer.echo(result.describe())
+            typer.echo(text)
+
+
+def run_compile(model_dir: Path, out: Path, options, progress, echo) -> str:
+    """One board: OUT is the bundle. Several (a,b or all): OUT/BOARD per board, one table."""
+    from ganlet.compile.pipeline import (
+        ALL_BOARDS,
+        boards_named,
+        boards_table,
+        compile_boards_dir,
+        compile_dir,
+    )
+
+    if options.board is None or ("," not in options.board and options.board != ALL_BOARDS):
+        return compile_dir(model_dir, out, options, progress=progress, echo=echo).describe()
+    results = compile_boards_dir(model_dir, out, boards_named(options.board), options,
+                                 progress=progress, echo=echo)
+    return "\n\n".join([r.describe() for r in results] + [boards_table(results)])
 
 
 def read_key(path: Path) -> bytes:

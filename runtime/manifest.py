@@ -249,6 +249,8 @@ def _check_sections(manifest: dict) -> None:
     for k in ("budget", "estimate"):
         if not isinstance(board.get(k), dict):
             raise BundleError(f"manifest: board.{k} must be an object")
+    if not isinstance(manifest.get("fidelity", {}), dict):
+        raise BundleError("manifest: fidelity must be an object")
     for k in REQUIRES:
         if version_tuple(manifest["requires"].get(k)) is None:
             raise BundleError(f"manifest: requires.{k} must be a version 'MAJOR.MINOR'")
@@ -289,11 +291,14 @@ def build_manifest(
     tool_version: str,
     parity_tolerances: Optional[dict] = None,
     created: Optional[str] = None,
+    fidelity: Optional[dict] = None,
 ) -> dict:
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
-    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit)."""
-    return {
+    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit).
+    fidelity (optional): how the bundle's network compares with the teacher it came from
+    (compile/fidelity.py); information for people, the gateway does not read it."""
+    manifest = {
         "schema_version": SCHEMA_VERSION,
         "tool_version": tool_version,
         "created": created or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -317,6 +322,9 @@ def build_manifest(
         "parity": {"tolerances": {**PARITY_TOLERANCES, **(parity_tolerances or {})}},
         "requires": dict(REQUIRES),
     }
+    if fidelity is not None:
+        manifest["fidelity"] = dict(fidelity)
+    return manifest
 
 
 def sign_bytes(key: bytes, data: bytes) -> str:
