@@ -17,7 +17,8 @@ work (one run at the end shows the cache warm). Prints:
    in one run (target <= 1.5x): the demo's `--board all` and the tight board (distillation);
 4. torch threads: the tight board's compile (distillation) with --threads 2 vs --threads 1,
    alternated (the rule in compile/threads.py).
-Figures are printed, never asserted; the load average is printed beside them because other
+Thread variables (OMP_NUM_THREADS, ...) are removed from the commands' environment, so the
+figures measure ganlet's own thread choice. Figures are printed, never asserted; the load average is printed beside them because other
 processes on the machine inflate every timing.
 """
 
@@ -27,6 +28,7 @@ import argparse
 import hashlib
 import json
 import os
+import resource
 import shutil
 import statistics
 import subprocess
@@ -42,6 +44,8 @@ from ganlet.compile.student_cache import CACHE_DIR
 
 TARGET_ALL_VS_ONE = 1.5
 TARGET_HOG = 1.5
+# Left out of every command's environment: the thread counts measured are ganlet's own choice.
+THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def main(argv=None) -> int:
@@ -54,6 +58,8 @@ def main(argv=None) -> int:
                    help="flash of the not-shipped tight board (the smallest board's otherwise)")
     p.add_argument("--repeats", type=int, default=2, help="alternated pairs per ratio")
     p.add_argument("--seed", type=int, default=7)
+    p.add_argument("--sections", default="1234",
+                   help="which sections to run (3 and 4 alone skip the per-board table)")
     args = p.parse_args(argv)
     work = args.work or Path(tempfile.mkdtemp(prefix="ganlet-bench-boards-"))
     work.mkdir(parents=True, exist_ok=True)
@@ -63,10 +69,14 @@ def main(argv=None) -> int:
     tight = write_tight_board(work, args.tight_kb)
     bench = Bench(model_dir, work, args.distil_epochs)
 
-    rows = per_board(bench, tight)
-    together(bench, rows, tight)
-    hog_ratios(bench, tight, args.repeats)
-    thread_ratio(bench, tight, args.repeats)
+    if "1" in args.sections or "2" in args.sections:
+        rows = per_board(bench, tight)
+        if "2" in args.sections:
+            together(bench, rows, tight)
+    if "3" in args.sections:
+        hog_ratios(bench, tight, args.repeats)
+    if "4" in args.sections:
+        thread_ratio(bench, tight, args.repeats)
     print(f"\nload average at the end {os.getloadavg()[0]:.2f}")
     return 0
 
@@ -96,11 +106,18 @@ def write_tight_board(work: Path, kb: int) -> Path:
     return path
 
 
+def child_cpu_seconds() -> float:
+    """User + system CPU seconds of this process's finished children."""
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
 class Bench:
     def __init__(self, model_dir: Path, work: Path, epochs: int):
         self.model_dir = Path(model_dir)
         self.work = work
         self.epochs = epochs
+        self.last_cpu = 0.0     # CPU seconds of the last command (all its threads)
 
     def compile(self, boards: str, out: Path, threads=None, warm=False) -> float:
         """Wall seconds of one `ganlet compile` command."""
@@ -110,9 +127,13 @@ class Bench:
         cmd = [sys.executable, "-m", "ganlet.compile.cli", "compile", str(self.model_dir),
                "--out", str(out), "--board", boards, "--distil-epochs", str(self.epochs),
                "--quiet"] + (["--threads", str(threads)] if threads else [])
+        env = {k: v for k, v in os.environ.items() if k not in THREAD_VARIABLES}
+        cpu_before = child_cpu_seconds()
         started = time.perf_counter()
-        subprocess.run(cmd, check=True, capture_output=True, text=True)
-        return time.perf_counter() - started
+        subprocess.run(cmd, check=True, capture_output=True, text=True, env=env)
+        wall = time.perf_counter() - started
+        self.last_cpu = child_cpu_seconds() - cpu_before
+        return wall
 
     def figures(self, bundle: Path) -> dict:
         """What a bundle runs and its fidelity, from its manifest and the compile's record."""
@@ -190,15 +211,19 @@ def cpu_hog():
         hog.wait()
 
 
-def alternated(run, repeats: int, label_a: str, label_b: str) -> tuple:
-    """Run a, b, a, b ...; returns the median seconds of each."""
-    a, b = [], []
+def alternated(bench: Bench, run, repeats: int, label_a: str, label_b: str) -> tuple:
+    """Run a, b, a, b ...; prints wall and CPU seconds of each run; returns the median wall
+    seconds of each. CPU seconds that grow with the wall time mean threads spinning or
+    waiting; CPU seconds that stay put mean the command only got less of the machine."""
+    runs = {label_a: [], label_b: []}
     for _ in range(repeats):
-        a.append(run(False))
-        b.append(run(True))
-    print(f"  {label_a}: {' '.join(f'{s:.2f}' for s in a)} s; {label_b}: "
-          f"{' '.join(f'{s:.2f}' for s in b)} s")
-    return statistics.median(a), statistics.median(b)
+        for label, flag in ((label_a, False), (label_b, True)):
+            wall = run(flag)
+            runs[label].append((wall, bench.last_cpu))
+    for label, pairs in runs.items():
+        print(f"    {label}: wall {' '.join(f'{w:.2f}' for w, _ in pairs)} s, CPU "
+              f"{' '.join(f'{c:.2f}' for _, c in pairs)} s")
+    return tuple(statistics.median(w for w, _ in runs[k]) for k in (label_a, label_b))
 
 
 def hog_ratios(bench: Bench, tight: Path, repeats: int) -> None:
@@ -214,7 +239,7 @@ def hog_ratios(bench: Bench, tight: Path, repeats: int) -> None:
                 return bench.compile(boards, out)
 
         print(f"  {label}:")
-        without, beside = alternated(run, repeats, "without", "beside the hog")
+        without, beside = alternated(bench, run, repeats, "without", "beside the hog")
         ratio = beside / without
         print(f"  ratio {ratio:.2f} (target <= {TARGET_HOG}: "
               f"{'met' if ratio <= TARGET_HOG else 'MISSED'})")
@@ -227,8 +252,9 @@ def thread_ratio(bench: Bench, tight: Path, repeats: int) -> None:
     def run(two: bool):
         return bench.compile(str(tight), bench.work / "threads", threads=2 if two else 1)
 
-    one, two = alternated(run, repeats, "1 thread", "2 threads")
-    print(f"  2 threads / 1 thread: {two / one:.2f} (above 1: the second thread costs time)")
+    one, two = alternated(bench, run, repeats, "1 thread", "2 threads")
+    print(f"  2 threads / 1 thread (medians): {two / one:.2f} (above 1: the second thread costs "
+          "time; read the single runs too, a crowded machine shows in them)")
 
 
 if __name__ == "__main__":

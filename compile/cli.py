@@ -133,8 +133,8 @@ def progress_printer(quiet: bool):
     return update, stop
 
 
-THREADS_HELP = ("torch threads (default: 1, as these small networks run fastest on one; never "
-                "more than the cores not already busy).")
+THREADS_HELP = ("torch and BLAS threads (default: 1, the safe choice for these small networks on "
+                "a shared machine; see DEVELOPERS.md 'Threads').")
 
 
 @app.command()

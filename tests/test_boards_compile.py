@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import threadpoolctl
 import torch
 from scipy.stats import spearmanr
 from sklearn.metrics import f1_score
@@ -246,12 +247,20 @@ def test_the_teacher_rung_is_the_teachers_own_weights(model_dir, boards, tmp_pat
 # threads
 
 
-def record_threads(monkeypatch, module, name) -> list:
+def blas_threads() -> set:
+    """numpy's BLAS pool size(s), as threadpoolctl reports them."""
+    return {pool["num_threads"] for pool in threadpoolctl.threadpool_info()
+            if pool["user_api"] == "blas"}
+
+
+def record_threads(monkeypatch, module, name, blas: list = None) -> list:
     seen = []
     real = getattr(module, name)
 
     def wrapped(*args, **kwargs):
         seen.append(torch.get_num_threads())
+        if blas is not None:
+            blas.append(blas_threads())
         return real(*args, **kwargs)
 
     monkeypatch.setattr(module, name, wrapped)
@@ -260,9 +269,10 @@ def record_threads(monkeypatch, module, name) -> list:
 
 @pytest.mark.parametrize("asked, expected", [(["--threads", "2"], 2), ([], 1)])
 def test_train_honours_threads(tmp_path, monkeypatch, asked, expected):
-    seen = record_threads(monkeypatch, pipeline, "train")
+    blas = []
+    seen = record_threads(monkeypatch, pipeline, "train", blas)
     monkeypatch.setattr(threads, "free_cores", lambda: 2)
-    before = torch.get_num_threads()
+    before, blas_before = torch.get_num_threads(), blas_threads()
     csv = tmp_path / "d.csv"
     correlated_series(400).to_csv(csv, index=False)
     result = CliRunner().invoke(app, ["train", str(csv), "--out", str(tmp_path / "m"), "--window",
@@ -270,20 +280,25 @@ def test_train_honours_threads(tmp_path, monkeypatch, asked, expected):
                                       "--quiet", *asked])
     assert result.exit_code == 0, result.output
     assert seen == [expected]
-    assert torch.get_num_threads() == before
+    # reference: threadpoolctl.threadpool_info (numpy's BLAS pool, limited for the run too)
+    assert blas == [{expected}]
+    assert torch.get_num_threads() == before and blas_threads() == blas_before
 
 
 @pytest.mark.parametrize("asked, expected", [(["--threads", "2"], 2), ([], 1)])
 def test_compile_honours_threads(model_dir, boards, tmp_path, monkeypatch, asked, expected):
     shutil.rmtree(model_dir / CACHE_DIR, ignore_errors=True)
-    seen = record_threads(monkeypatch, distil_mod, "distil")
-    before = torch.get_num_threads()
+    blas = []
+    seen = record_threads(monkeypatch, distil_mod, "distil", blas)
+    before, blas_before = torch.get_num_threads(), blas_threads()
     result = CliRunner().invoke(app, ["compile", str(model_dir), "--out", str(tmp_path / "b"),
                                       "--board", boards["paths"]["tight"], "--distil-epochs", "1",
                                       "--quiet", *asked])
     assert result.exit_code == 0, result.output
     assert seen == [expected]
-    assert torch.get_num_threads() == before
+    # reference: threadpoolctl.threadpool_info (numpy's BLAS pool, limited for the run too)
+    assert blas == [{expected}]
+    assert torch.get_num_threads() == before and blas_threads() == blas_before
 
 
 def test_the_automatic_thread_count_never_exceeds_the_free_cores(monkeypatch):
