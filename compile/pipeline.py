@@ -70,7 +70,7 @@ class TrainOptions:
     seed: Optional[int] = None                   # None: the config's own seed
     rate: list = field(default_factory=list)     # channels watched by their change per period
     config: Optional[TeacherConfig] = None      # used as is when given (tests, demo, fleet)
-    threads: Optional[int] = None               # torch threads; None: compile/threads.py
+    threads: Optional[int] = None               # torch + BLAS threads; None: compile/threads.py
 
     def intake(self) -> IntakeOptions:
         if self.max_fill < 0:
@@ -168,7 +168,7 @@ class CompileOptions:
     sign_key: Optional[bytes] = None
     name: Optional[str] = None
     alerting: dict = field(default_factory=dict)   # overrides of the default alert settings
-    threads: Optional[int] = None                  # torch threads; None: compile/threads.py
+    threads: Optional[int] = None                  # torch + BLAS threads; None: compile/threads.py
 
 
 STUDENT_SOURCES = {"teacher": "the teacher's own networks (nothing to distil)",
