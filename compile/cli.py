@@ -142,6 +142,10 @@ def progress_printer(quiet: bool):
     return update, stop
 
 
+THREADS_HELP = ("torch and BLAS threads (default: 1, the safe choice for these small networks on "
+                "a shared machine; see DEVELOPERS.md 'Threads').")
+
+
 @app.command()
 def train(
     data: Path = typer.Argument(..., help="CSV or Parquet sensor history."),
@@ -165,6 +169,7 @@ def train(
     tz: Optional[str] = typer.Option(None, "--tz", help="Zone of times written without one: IANA name (Europe/Berlin), UTC or +hh:mm. Recorded in the bundle; the gateway reads such times in it. Default: UTC."),
     dayfirst: bool = typer.Option(False, "--dayfirst", help="Read numeric dates with the year last as day/month/year (10/11/2025 = 10 November)."),
     monthfirst: bool = typer.Option(False, "--monthfirst", help="Read them as month/day/year. Without either, such dates are refused: 03/04 cannot be read safely."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help=THREADS_HELP),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Learn one machine's normal behaviour from a sensor history."""
@@ -180,7 +185,7 @@ def train(
             max_fill=max_fill, train_until=parse_train_until(train_until),
             calibration=calibration, window=window, config_file=config,
             adversarial_epochs=adversarial_epochs, inversion_epochs=inversion_epochs, seed=seed,
-            rate=split_list(rate) or [], decimal=decimal, tz=tz,
+            rate=split_list(rate) or [], decimal=decimal, tz=tz, threads=threads,
             date_order="dayfirst" if dayfirst else "monthfirst" if monthfirst else None,
         )
         progress, stop = progress_printer(quiet)
@@ -207,8 +212,8 @@ def budgets():
 @app.command("compile")
 def compile_cmd(
     model_dir: Path = typer.Argument(..., help="Model directory written by `ganlet train`."),
-    out: Path = typer.Option(..., "--out", "-o", help="Bundle directory to write (replaced if present)."),
-    board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512)."),
+    out: Path = typer.Option(..., "--out", "-o", help="Bundle directory to write (replaced if present); with several boards, the folder of one bundle per board (OUT/BOARD)."),
+    board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512); several as a,b; 'all' for every shipped profile."),
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
     alarms_per_week: float = typer.Option(1.0, "--false-alarms-per-week", min=1e-6, help="False-alarm budget on normal data the threshold is calibrated to (pot)."),
     drift: str = typer.Option("report", "--drift", help="A channel slowly leaving its training range: 'report' it once and score it as it is, or 'recentre' it onto the range so it never holds an alert open (it can also re-centre a slow fault)."),
@@ -218,12 +223,13 @@ def compile_cmd(
     name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest and used for file and service names on the gateway: letters, digits, '.', '_', '-' (default: the model folder's name)."),
     distil_epochs: int = typer.Option(80, "--distil-epochs", min=1, help="Distillation epochs."),
     seed: int = typer.Option(0, help="Random seed of the distillation."),
+    threads: Optional[int] = typer.Option(None, "--threads", min=1, help=THREADS_HELP),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
-    """Size a student to the board, distil, quantise to int8, export ONNX and pack the bundle."""
+    """Size a network to each board, distil, quantise to int8, export ONNX and pack the bundle."""
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.pack import safe_name
-    from ganlet.compile.pipeline import CompileOptions, compile_dir
+    from ganlet.compile.pipeline import CompileOptions
 
     with user_errors(interrupted=f"compile stopped; {out} was left as it was (a bundle is "
                                  "renamed into place only when complete)"):
@@ -236,15 +242,33 @@ def compile_cmd(
                                  alarms_per_week=alarms_per_week, drift=drift,
                                  ed25519_key=private_key,
                                  name=name or safe_name(model_dir.resolve().name),
-                                 distil=DistilConfig(epochs=distil_epochs, seed=seed))
+                                 distil=DistilConfig(epochs=distil_epochs, seed=seed),
+                                 threads=threads)
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))
         try:
-            result = compile_dir(model_dir, out, options, progress=progress, echo=echo)
+            text = run_compile(model_dir, out, options, progress, echo)
         finally:
             stop()
         if not quiet:
-            typer.echo(result.describe())
+            typer.echo(text)
+
+
+def run_compile(model_dir: Path, out: Path, options, progress, echo) -> str:
+    """One board: OUT is the bundle. Several (a,b or all): OUT/BOARD per board, one table."""
+    from ganlet.compile.pipeline import (
+        ALL_BOARDS,
+        boards_named,
+        boards_table,
+        compile_boards_dir,
+        compile_dir,
+    )
+
+    if options.board is None or ("," not in options.board and options.board != ALL_BOARDS):
+        return compile_dir(model_dir, out, options, progress=progress, echo=echo).describe()
+    results = compile_boards_dir(model_dir, out, boards_named(options.board), options,
+                                 progress=progress, echo=echo)
+    return "\n\n".join([r.describe() for r in results] + [boards_table(results)])
 
 
 def read_key(path: Path) -> bytes:

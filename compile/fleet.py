@@ -20,7 +20,9 @@ The fleet file (TOML, our own format; see DEVELOPERS.md "Fleet files"):
     data = "data/p1.csv"          # relative to the fleet file
     channels = ["a", "b"]         # optional
     rate = ["temp"]               # optional: channels watched by their change per period
-    board = "a72-2g"              # optional, overrides [fleet].board
+    board = "a72-2g"              # optional, overrides [fleet].board; a list (["a53-512",
+                                  # "a72-2g"]) compiles one bundle per board, one distillation
+                                  # per distinct student (bundle/<board>/)
     incidents = "data/p1-incidents.csv"   # optional: adds a detection evaluation
     train_until = "2026-03-04T00:00:00"   # optional (row count, fraction or time)
     [asset.invented]              # optional: generate the invented demo data if `data` is missing
@@ -48,6 +50,7 @@ except ModuleNotFoundError:   # Python < 3.11
 
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.model import TeacherConfig
+from ganlet.compile.pipeline import CompileOptions
 
 ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]*$")
 TRAIN_OPTION_KEYS = ("train_until", "calibration", "period", "max_fill", "window", "seed")
@@ -62,7 +65,7 @@ class FleetError(ValueError):
 class AssetSpec:
     id: str
     data: str
-    board: str
+    board: str                     # a board name or path; several comma-separated
     channels: Optional[list] = None
     rate: list = field(default_factory=list)
     incidents: Optional[str] = None
@@ -92,6 +95,7 @@ class AssetResult:
     input_hash: str = ""
     paths: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)   # one clean line each (run_asset)
+    boards: dict = field(default_factory=dict)   # per board: network, bundle_kb, parity, f1
 
     def row(self) -> dict:
         return {"asset": self.asset, "status": self.status,
@@ -113,7 +117,7 @@ def load_fleet(path: Path) -> FleetSpec:
     if unknown:
         raise FleetError(f"{path}: unknown table(s) {', '.join(unknown)}; expected fleet, train, "
                          "distil, asset")
-    board = head.get("board", "a53-512")
+    board = board_text(head.get("board", "a53-512"), f"{path}: [fleet] board")
     assets = raw.get("asset", [])
     if not assets:
         raise FleetError(f"{path}: no [[asset]] entries")
@@ -133,7 +137,8 @@ def load_fleet(path: Path) -> FleetSpec:
             raise FleetError(f"{where}: id {a['id']!r} is used twice")
         seen.add(a["id"])
         specs.append(AssetSpec(
-            id=str(a["id"]), data=str(path.parent / a["data"]), board=str(a.get("board", board)),
+            id=str(a["id"]), data=str(path.parent / a["data"]),
+            board=board_text(a.get("board", board), f"{where}: board"),
             channels=a.get("channels"), rate=list(a.get("rate", [])),
             train_until=a.get("train_until"),
             incidents=str(path.parent / a["incidents"]) if a.get("incidents") else None,
@@ -146,6 +151,14 @@ def load_fleet(path: Path) -> FleetSpec:
     out = path.parent / head.get("out", "fleet-out")
     return FleetSpec(name=str(head.get("name", path.stem)), out=out, assets=specs, train=train,
                      distil=distil, source=str(path))
+
+
+def board_text(value, where: str) -> str:
+    """A board, or a list of boards, as the comma-separated text compile --board takes."""
+    names = value if isinstance(value, list) else [value]
+    if not names or not all(isinstance(n, str) and n.strip() for n in names):
+        raise FleetError(f"{where}: give a board name or a list of board names")
+    return ",".join(n.strip() for n in names)
 
 
 def check_keys(table: dict, allowed: set, where: str) -> None:
@@ -187,11 +200,11 @@ def input_hash(spec: AssetSpec, fleet: FleetSpec) -> str:
     """What decides whether an asset's last result still stands."""
     from ganlet.compile.boards import load_board
 
-    board = load_board(spec.board)
+    boards = [load_board(name) for name in spec.board.split(",")]
     parts = {
         "data": sha256_file(Path(spec.data)),
         "incidents": sha256_file(Path(spec.incidents)) if spec.incidents else None,
-        "board": sha256_file(Path(board.source_path)),
+        "board": [sha256_file(Path(board.source_path)) for board in boards],
         "spec": {k: v for k, v in asdict(spec).items() if k not in ("data", "incidents")},
         "train": fleet.train, "distil": fleet.distil,
         "tool": __import__("ganlet.compile", fromlist=["__version__"]).__version__,
@@ -265,10 +278,35 @@ def one_line(exc: Exception) -> str:
 
 
 def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
+    """Train, compile for the asset's board(s), then verify (and evaluate) each bundle. With
+    several boards the row reports the worst: the largest bundle, a parity failure if any,
+    the lowest F1; result.json keeps every board's figures."""
+    from ganlet.compile.pipeline import boards_named, compile_boards_dir, compile_dir
+
+    trained = train_asset(spec, fleet, out)
+    options = CompileOptions(board=spec.board, name=spec.id, distil=DistilConfig(**fleet.distil))
+    if "," in spec.board:
+        compiled = compile_boards_dir(trained.out, out / "bundle", boards_named(spec.board),
+                                      options)
+        checks = [check_bundle(spec, c, trained, out, f"-{c.board.name}") for c in compiled]
+    else:
+        compiled = [compile_dir(trained.out, out / "bundle", options)]
+        checks = [check_bundle(spec, compiled[0], trained, out, "")]
+    result = AssetResult(asset=spec.id, status="ok", paths={"model": str(trained.out)},
+                         bundle_kb=max(c["bundle_kb"] for c in checks),
+                         parity="pass" if all(c["parity"] == "pass" for c in checks) else "fail",
+                         boards={c["board"]: c for c in checks})
+    f1s = [c["f1"] for c in checks if c["f1"] is not None]
+    result.f1 = min(f1s) if f1s else None
+    for c in checks:
+        result.paths.update(c.pop("paths"))
+    return result
+
+
+def train_asset(spec: AssetSpec, fleet: FleetSpec, out: Path):
     from dataclasses import replace
 
-    from ganlet.compile import verify as verify_mod
-    from ganlet.compile.pipeline import CompileOptions, TrainOptions, compile_dir, train_from_file
+    from ganlet.compile.pipeline import TrainOptions, train_from_file
 
     train = dict(fleet.train)
     options = {k: train.pop(k) for k in TRAIN_OPTION_KEYS if k in train}
@@ -276,29 +314,33 @@ def build_asset(spec: AssetSpec, fleet: FleetSpec, out: Path) -> AssetResult:
     topts = TrainOptions(channels=spec.channels, rate=spec.rate, config=config, **options)
     if spec.train_until is not None:
         topts.train_until = spec.train_until
-    trained = train_from_file(Path(spec.data), out / "model", topts)
-    compiled = compile_dir(trained.out, out / "bundle",
-                           CompileOptions(board=spec.board, name=spec.id,
-                                          distil=DistilConfig(**fleet.distil)))
+    return train_from_file(Path(spec.data), out / "model", topts)
+
+
+def check_bundle(spec: AssetSpec, compiled, trained, out: Path, suffix: str) -> dict:
+    """Parity (and detection, when incidents are given) of one compiled bundle."""
+    from ganlet.compile import verify as verify_mod
+
     parity = verify_mod.verify(compiled.bundle, Path(spec.data), model_dir=trained.out)
-    verify_mod.write_json(parity, out / "verify.json")
-    verify_mod.write_html(parity, out / "verify.html")
-    result = AssetResult(asset=spec.id, status="ok",
-                         bundle_kb=compiled.report["bytes"]["model_and_weights"] / 1024,
-                         parity="pass" if parity.passed else "fail",
-                         paths={"model": str(trained.out), "bundle": str(compiled.bundle),
-                                "verify": str(out / "verify.html")})
+    verify_mod.write_json(parity, out / f"verify{suffix}.json")
+    verify_mod.write_html(parity, out / f"verify{suffix}.html")
+    check = {"board": compiled.board.name, "network": compiled.plan.network_text(),
+             "bundle_kb": compiled.report["bytes"]["model_and_weights"] / 1024,
+             "parity": "pass" if parity.passed else "fail", "f1": None,
+             "fidelity": compiled.report["fidelity"],
+             "paths": {f"bundle{suffix}": str(compiled.bundle),
+                       f"verify{suffix}": str(out / f"verify{suffix}.html")}}
     if spec.incidents:
         from ganlet.compile import evaluate as evaluate_mod
 
         split = trained.model.spans.calibration[1]     # evaluate after the training span
         detection = evaluate_mod.evaluate(compiled.bundle, Path(spec.data), Path(spec.incidents),
                                           eval_from=split, model_dir=trained.out)
-        evaluate_mod.write_json(detection, out / "evaluate.json")
-        evaluate_mod.write_html(detection, out / "evaluate.html")
-        result.f1 = float(detection.methods["bundle"].metrics["f1"])
-        result.paths["evaluate"] = str(out / "evaluate.html")
-    return result
+        evaluate_mod.write_json(detection, out / f"evaluate{suffix}.json")
+        evaluate_mod.write_html(detection, out / f"evaluate{suffix}.html")
+        check["f1"] = float(detection.methods["bundle"].metrics["f1"])
+        check["paths"][f"evaluate{suffix}"] = str(out / f"evaluate{suffix}.html")
+    return check
 
 
 def run_fleet(fleet: FleetSpec, scheduler: Optional[str] = None, workers: Optional[int] = None,

@@ -22,7 +22,7 @@ except ModuleNotFoundError:   # Python < 3.11
     import tomli as tomllib
 
 from ganlet.compile import __version__
-from ganlet.compile.boards import DEFAULT_BOARD, Board, load_board
+from ganlet.compile.boards import DEFAULT_BOARD, Board, list_boards, load_board
 from ganlet.compile.calibrate import (
     DEFAULT_ALARMS_PER_WEEK,
     DRIFT_ACTION,
@@ -40,13 +40,16 @@ from ganlet.compile.data import (
     split_spans,
     trending_channels,
 )
-from ganlet.compile.distil import DistilConfig, distil
+from ganlet.compile.distil import DistilConfig
 from ganlet.compile.export import build_onnx
+from ganlet.compile.fidelity import fault_set, fidelity, fidelity_text
 from ganlet.compile.model import TeacherConfig
 from ganlet.compile.pack import check_name, check_out, pack_bundle, service_unit
 from ganlet.compile.pack import install_text as install_notes
 from ganlet.compile.quantise import dequantise_weights, quantisation_report, quantise_weights
 from ganlet.compile.sizing import StudentPlan, size_student
+from ganlet.compile.student_cache import StudentStore
+from ganlet.compile.threads import torch_threads
 from ganlet.compile.train import TrainedModel, load_model, plot_training, save_model, train
 from ganlet.runtime.drift import DRIFT_ACTIONS
 from ganlet.runtime.manifest import MANIFEST_NAME, build_manifest
@@ -78,6 +81,7 @@ class TrainOptions:
     decimal: str = "."                           # input dialect, as the gateway reads it
     tz: Optional[str] = None
     date_order: Optional[str] = None             # "dayfirst" | "monthfirst"
+    threads: Optional[int] = None               # torch + BLAS threads; None: compile/threads.py
 
     def intake(self) -> IntakeOptions:
         if self.max_fill < 0:
@@ -152,8 +156,9 @@ def train_from_file(data: Path, out: Path, options: TrainOptions,
     if window != config.window:
         config = replace(config, window=window)
     rate = rate_channels(frame, spans, options.rate, echo)
-    model = train(frame, spans, config, progress=progress, max_fill_periods=options.max_fill,
-                  rate_channels=rate)
+    with torch_threads(options.threads):
+        model = train(frame, spans, config, progress=progress, max_fill_periods=options.max_fill,
+                      rate_channels=rate)
     save_model(model, out)
     plot_training(model, frame, Path(out) / "training.png")
     seconds = time.perf_counter() - started
@@ -178,6 +183,13 @@ class CompileOptions:
     alerting: dict = field(default_factory=dict)   # overrides of the default alert settings
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK   # false-alarm budget on normal data
     drift: str = DRIFT_ACTION                  # "report" a drift, or "recentre" it away
+    threads: Optional[int] = None                  # torch + BLAS threads; None: compile/threads.py
+
+
+STUDENT_SOURCES = {"teacher": "the teacher's own networks (nothing to distil)",
+                   "cache": "the student distilled earlier for this teacher, plan and config "
+                            "(reused from the model directory)",
+                   "distilled": "distilled in {seconds:.1f} s"}
 
 
 @dataclass
@@ -192,51 +204,107 @@ class CompileResult:
         r = self.report
         ts = r["teacher_vs_student"]
         qs = r["student_vs_int8"]
-        return "\n".join([
-            f"distilled in {r['seconds']['distil']:.1f} s; teacher vs student on the calibration "
-            f"span: Spearman {ts['spearman']:.4f}, max abs error {ts['max_abs_error']:.3g}",
+        source = STUDENT_SOURCES[r["student"]["source"]].format(seconds=r["seconds"]["distil"])
+        lines = [
+            f"{self.board.name}: {self.plan.network_text()}",
+            f"{source}; teacher vs student on the calibration span: Spearman "
+            f"{ts['spearman']:.4f}, max abs error {ts['max_abs_error']:.3g}",
             f"int8 vs fp32 student: Spearman {qs['spearman']:.5f}, max rel error "
             f"{qs['max_rel_error']:.2e}; weights {r['quantisation']['bytes_before']} -> "
             f"{r['quantisation']['bytes_after']} bytes",
+            f"fidelity: {fidelity_text(r['fidelity'])}",
+        ]
+        if self.plan.teacher_refused:
+            lines.append(f"price of {self.board.name}: it cannot hold the teacher itself ("
+                         + "; ".join(self.plan.teacher_refused) + "), so it runs this smaller "
+                         "student at the fidelity above")
+        lines += [
             f"score: {r['regimes']['regimes']} operating regime(s); threshold: "
             f"{r['threshold_kind']} calibrated on {r['calibration_scores']} scores for at most "
             f"{r['false_alarms']['budget_per_week']:g} false alarm(s) per week on normal data",
             f"bundle {self.bundle}: {r['bytes']['model_and_weights'] / 1024:.1f} KiB without "
             f"the runtime copy ({r['bytes']['total'] / 1024:.1f} KiB in all)"
             + (f"; archive {self.archive}" if self.archive else ""),
-        ])
+        ]
+        return "\n".join(lines)
+
+
+def plan_board(model: TrainedModel, board: Board) -> StudentPlan:
+    """The board's rung of the ladder for this teacher and the data's own period."""
+    cfg = model.teacher.config
+    return size_student(board, len(model.channels), cfg.latent, cfg.window, model.period_s,
+                        (cfg.encoder_hidden, cfg.generator_hidden))
+
+
+def check_options(options: CompileOptions) -> str:
+    """What compile can refuse before any work; returns the bundle name."""
+    if options.drift not in DRIFT_ACTIONS:
+        raise ValueError(f"--drift {options.drift!r}: choose {' or '.join(DRIFT_ACTIONS)}")
+    return check_name(options.name or "detector")
 
 
 def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
                   progress=None, echo: Echo = lambda _: None,
                   model_dir: Optional[Path] = None) -> CompileResult:
-    """One teacher -> one bundle for one board. model_dir (the teacher's folder) receives the
-    workstation's record of the bundle (the fp32 student, for `ganlet verify --model`)."""
-    name = check_name(options.name or "detector")
+    """One teacher -> one bundle for one board. model_dir (the teacher's folder) holds the
+    cache of distilled students and receives the workstation's record of the bundle (the fp32
+    student, for `ganlet verify --model`)."""
+    name = check_options(options)
     out = check_out(out)
-    if options.drift not in DRIFT_ACTIONS:
-        raise ValueError(f"--drift {options.drift!r}: choose {' or '.join(DRIFT_ACTIONS)}")
     board = load_board(options.board or DEFAULT_BOARD)
-    cfg = model.teacher.config
+    with torch_threads(options.threads):
+        plan = plan_board(model, board)
+        echo(plan.describe())
+        return compile_plan(model, out, plan, board, options, name, StudentStore(model_dir),
+                            progress, model_dir)
+
+
+def compile_boards(model: TrainedModel, out_root: Path, boards: list, options: CompileOptions,
+                   progress=None, echo: Echo = lambda _: None,
+                   model_dir: Optional[Path] = None) -> list:
+    """One teacher -> one bundle per board in OUT_ROOT/<board>/. Every board is sized (and
+    every output folder checked) before any work; boards whose plans share a student shape
+    share one distillation, and boards that share a student and hop share its calibration."""
+    name = check_options(options)
+    names = [b.name for b in boards]
+    if len(set(names)) != len(names):
+        raise ValueError(f"--board lists a board twice: {', '.join(names)}")
+    outs = [check_out(Path(out_root) / b.name) for b in boards]
+    with torch_threads(options.threads):
+        plans = [plan_board(model, b) for b in boards]
+        for plan in plans:
+            echo(plan.describe())
+        store = StudentStore(model_dir)
+        return [compile_plan(model, out, plan, board, options, name, store, progress, model_dir)
+                for out, plan, board in zip(outs, plans, boards)]
+
+
+def compile_plan(model: TrainedModel, out: Path, plan: StudentPlan, board: Board,
+                 options: CompileOptions, name: str, store: StudentStore, progress=None,
+                 model_dir: Optional[Path] = None) -> CompileResult:
+    """The stages after sizing: student (teacher, cache or distil) -> quantise -> calibrate ->
+    fidelity -> export -> pack. Work that depends on the student alone is done once per store."""
     timings = {}
-    plan = size_student(board, len(model.channels), cfg.latent, cfg.window, model.period_s)
-    echo(plan.describe())
     started = time.perf_counter()
-    student = distil(model, plan, options.distil, progress=progress)
+    student = store.student(model, plan, options.distil, progress)
     timings["distil"] = time.perf_counter() - started
     started = time.perf_counter()
-    fp32 = student.weights()
+    fp32 = student.fp32
     qweights = quantise_weights(fp32)
+    device = dequantise_weights(qweights)
+    cal = store.once(("calibrate", student.key, plan.hop, options.threshold,
+                      options.alarms_per_week, options.drift,
+                      json.dumps(options.alerting, sort_keys=True)),
+                     lambda: calibrate(model, NetworkScorer(device, "device"), plan.window,
+                                       plan.hop, options.threshold, options.alarms_per_week,
+                                       options.alerting, options.distil.seed, options.drift))
+    cal.report.update(agreement_report(model, cal.score, fp32, device))
+    fid = store.once(("fidelity", student.key),
+                     lambda: fidelity(store.once("faults", lambda: fault_set(model)),
+                                      device, plan.teacher))
     timings["quantise"] = time.perf_counter() - started
     started = time.perf_counter()
-    device = dequantise_weights(qweights)
-    cal = calibrate(model, NetworkScorer(device, "device"), plan.window, plan.hop,
-                    options.threshold, options.alarms_per_week, options.alerting,
-                    options.distil.seed, options.drift)
-    cal.report.update(agreement_report(model, cal.score, fp32, device))
-    timings["calibrate"] = time.perf_counter() - started
-    started = time.perf_counter()
-    manifest = bundle_manifest(model, plan, board, cal, name)
+    manifest = bundle_manifest(model, plan, board, cal, name, fidelity=fid)
     packed = pack_bundle(out, manifest, qweights, build_onnx(qweights, len(model.channels)),
                          install_text(model, board, name, out, signing_kinds(options)),
                          board.storage_budget_kb, options.sign_key, options.archive,
@@ -245,14 +313,17 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     timings["pack"] = time.perf_counter() - started
     report = {**cal.report, "seconds": timings, "bytes": packed.bytes,
               "quantisation": {k: v for k, v in quantisation_report(fp32, qweights).items()
-                               if k != "keys"}}
+                               if k != "keys"},
+              "fidelity": fid,
+              "student": {"source": student.source, "key": student.key,
+                          "distil_seconds": student.distil_seconds, "plan": plan.to_json()}}
     if model_dir is not None:
         record_student(Path(model_dir), out, fp32, report)
     return CompileResult(out, packed.archive, plan, board, report)
 
 
 def bundle_manifest(model: TrainedModel, plan: StudentPlan, board: Board, cal: Calibration,
-                    name: str) -> dict:
+                    name: str, fidelity: Optional[dict] = None) -> dict:
     return build_manifest(
         name=name, time_column=model.time_col, channels=list(zip(model.channels, model.units)),
         period_s=model.period_s, max_gap_periods=model.max_fill_periods,
@@ -271,7 +342,7 @@ def bundle_manifest(model: TrainedModel, plan: StudentPlan, board: Board, cal: C
                             "ram_mb": plan.ram_bytes / 2**20,
                             "storage_kb": plan.storage_bytes / 1024,
                             "weights_bytes": plan.weights_bytes}},
-        tool_version=__version__)
+        tool_version=__version__, fidelity=fidelity)
 
 
 def signing_kinds(options: CompileOptions) -> list:
@@ -309,3 +380,44 @@ def compile_dir(model_dir: Path, out: Path, options: CompileOptions, progress=No
                 echo: Echo = lambda _: None) -> CompileResult:
     return compile_model(load_model(model_dir), out, options, progress=progress, echo=echo,
                          model_dir=model_dir)
+
+
+ALL_BOARDS = "all"
+
+
+def boards_named(text: str) -> list:
+    """--board a,b (names or .toml paths) or --board all (every shipped profile)."""
+    names = [part.strip() for part in str(text).split(",") if part.strip()]
+    if names == [ALL_BOARDS]:
+        return list_boards()
+    if not names:
+        raise ValueError("--board: give a board name, a .toml path, a comma-separated list or "
+                         "'all'")
+    return [load_board(n) for n in names]
+
+
+def compile_boards_dir(model_dir: Path, out_root: Path, boards: list, options: CompileOptions,
+                       progress=None, echo: Echo = lambda _: None) -> list:
+    return compile_boards(load_model(model_dir), out_root, boards, options, progress=progress,
+                          echo=echo, model_dir=model_dir)
+
+
+def boards_table(results: list) -> str:
+    """One row per board: what it runs and what that costs against the teacher."""
+    header = ("board", "network", "params", "hop", "spearman", "max err", "F1 gap", "KiB",
+              "source", "seconds")
+    rows = [header]
+    for r in results:
+        fid, plan = r.report["fidelity"], r.plan
+        shape = f"enc {list(plan.encoder_hidden)} gen {list(plan.generator_hidden)}"
+        rows.append((r.board.name, ("teacher " if plan.teacher else "student ") + shape,
+                     str(plan.parameters), str(plan.hop), f"{fid['spearman']:.4f}",
+                     f"{fid['max_abs_error']:.3g}", f"{fid['f1_gap']:+.3f}",
+                     f"{r.report['bytes']['model_and_weights'] / 1024:.1f}",
+                     r.report["student"]["source"], f"{sum(r.report['seconds'].values()):.1f}"))
+    widths = [max(len(row[i]) for row in rows) for i in range(len(header))]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip() for row in rows]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    return "\n".join(lines + ["", "spearman, max err: device vs teacher scores on the "
+                              "calibration span; F1 gap: teacher F1 - device F1 on injected "
+                              "faults (compile/fidelity.py)"])

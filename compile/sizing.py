@@ -1,19 +1,28 @@
-"""Choose the student network for a board: weights fit flash, working set fits RAM, and one
-window's forward pass fits the share of the sample period the board allows per hop.
+"""Choose the network a board runs: weights fit flash, working set fits RAM, and one window's
+forward pass fits the share of the data's sample period the board allows per hop.
 
-The estimates are arithmetic on the architecture (parameter counts, FLOPs per window); the
-bench on the gateway measures the real figures and can replace a board's MFLOP/s estimate.
+The ladder runs from the teacher itself (its own encoder and generator, quantised: nothing to
+distil, the closest copy there is) down to the smallest useful student, so a board buys as much
+fidelity as its budgets hold and a bigger board never gets less than a smaller one. The
+estimates are arithmetic on the architecture (parameter counts, FLOPs per window); the bench on
+the gateway measures the real figures and can replace a board's MFLOP/s estimate.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 
 from ganlet.compile.boards import Board
 
-# Students from largest to smallest: (encoder widths, generator widths), widths grow to output.
-LADDER = (
+# Students below the teacher, largest first: (encoder widths, generator widths), widths grow
+# towards the output. A rung is used only when it has fewer parameters than the teacher (a
+# student as big as its teacher buys nothing the teacher itself does not give).
+STUDENT_RUNGS = (
+    ((96,), (48, 96)),
+    ((64,), (32, 64)),
+    ((48,), (24, 48)),
+    ((40,), (20, 40)),
     ((32,), (16, 32)),
     ((24,), (12, 24)),
     ((16,), (12, 16)),
@@ -60,6 +69,10 @@ class StudentPlan:
     hop_seconds_estimate: float
     hop_seconds_budget: float
     board: str
+    teacher: bool = False       # the teacher's own networks, quantised (nothing to distil)
+    # why the teacher itself does not fit the board (empty when it does): the price of a
+    # smaller board, named constraint by constraint
+    teacher_refused: list = field(default_factory=list)
 
     def to_json(self) -> dict:
         d = asdict(self)
@@ -67,14 +80,22 @@ class StudentPlan:
         d["generator_hidden"] = list(self.generator_hidden)
         return d
 
+    def network_text(self) -> str:
+        what = "the teacher itself" if self.teacher else "student"
+        return (f"{what}: enc {list(self.encoder_hidden)} latent {self.latent} gen "
+                f"{list(self.generator_hidden)}, {self.parameters} parameters")
+
     def describe(self) -> str:
-        return (f"student enc {list(self.encoder_hidden)} latent {self.latent} gen "
-                f"{list(self.generator_hidden)}, window {self.window}, hop {self.hop}: "
-                f"{self.parameters} parameters, {self.flops_per_hop / 1e3:.1f} kFLOP per hop "
+        text = (f"{self.network_text()}, window {self.window}, hop {self.hop}: "
+                f"{self.flops_per_hop / 1e3:.1f} kFLOP per hop "
                 f"(~{self.hop_seconds_estimate * 1e3:.2f} ms of {self.hop_seconds_budget * 1e3:.0f} ms "
                 f"allowed), weights {self.weights_bytes / 1024:.1f} KiB, bundle ~"
                 f"{self.storage_bytes / 1024:.1f} KiB, RAM ~{self.ram_bytes / 2**20:.1f} MiB "
                 f"on {self.board}")
+        if self.teacher_refused:
+            text += (f"; {self.board} cannot hold the teacher itself ("
+                     + "; ".join(self.teacher_refused) + ")")
+        return text
 
 
 def lstm_stack_shapes(n_in: int, hidden: tuple, n_out: int):
@@ -122,38 +143,64 @@ def plan_for(board: Board, n_channels: int, latent: int, enc: tuple, gen: tuple,
                        seconds, budget, board.name)
 
 
-def size_student(board: Board, n_channels: int, latent: int, window: int,
-                 period_s: float, max_hop: int | None = None) -> StudentPlan:
-    """The largest student on the ladder that fits, at the smallest hop that fits compute."""
+def ladder(n_channels: int, latent: int, teacher: tuple) -> list:
+    """(encoder widths, generator widths, is_teacher) from the teacher itself down to the
+    smallest student, every rung with fewer parameters than the one above."""
+    t_enc, t_gen = (tuple(int(h) for h in widths) for widths in teacher)
+    top = network_counts(n_channels, latent, t_enc, t_gen)[0]
+    below = [(enc, gen) for enc, gen in STUDENT_RUNGS
+             if network_counts(n_channels, latent, enc, gen)[0] < top]
+    below.sort(key=lambda r: -network_counts(n_channels, latent, *r)[0])
+    return [(t_enc, t_gen, True)] + [(enc, gen, False) for enc, gen in below]
+
+
+def fits(plan: StudentPlan, board: Board) -> bool:
+    return (plan.storage_bytes <= board.storage_budget_kb * 1024
+            and plan.ram_bytes <= board.ram_budget_mb * 2**20
+            and plan.hop_seconds_estimate <= plan.hop_seconds_budget)
+
+
+def size_student(board: Board, n_channels: int, latent: int, window: int, period_s: float,
+                 teacher: tuple, max_hop: int | None = None) -> StudentPlan:
+    """The largest rung of the ladder that fits, at the smallest hop that fits compute.
+    teacher = (encoder widths, generator widths) of the teacher: the top rung."""
     max_hop = max_hop or max(1, window // 4)
-    storage_limit = board.storage_budget_kb * 1024
-    ram_limit = board.ram_budget_mb * 2**20
-    tried = []
-    for enc, gen in LADDER:
+    rungs = ladder(n_channels, latent, teacher)
+    for enc, gen, is_teacher in rungs:
         for hop in range(1, max_hop + 1):
             plan = plan_for(board, n_channels, latent, enc, gen, window, hop, period_s)
-            tried.append(plan)
-            if (plan.storage_bytes <= storage_limit and plan.ram_bytes <= ram_limit
-                    and plan.hop_seconds_estimate <= plan.hop_seconds_budget):
+            if fits(plan, board):
+                plan.teacher = is_teacher
+                if not is_teacher:
+                    plan.teacher_refused = problems(board, n_channels, latent, rungs[0][:2],
+                                                    window, max_hop, period_s, "the teacher")
                 return plan
-    smallest = min(tried, key=lambda p: (p.storage_bytes, -p.hop))
-    problems = []
-    # Needs are rounded up, so a budget of the stated size does fit (rounding to nearest could
-    # name a figure just below what is needed).
-    if smallest.storage_bytes > storage_limit:
-        problems.append(f"storage: the smallest student needs {math.ceil(smallest.storage_bytes / 1024)} "
-                        f"KB of flash, the board allows {board.storage_budget_kb} KB")
-    if smallest.ram_bytes > ram_limit:
-        problems.append(f"RAM: the smallest student needs {math.ceil(smallest.ram_bytes / 2**20)} MB, "
-                        f"the board allows {board.ram_budget_mb} MB")
-    if smallest.hop_seconds_estimate > smallest.hop_seconds_budget:
-        need = smallest.flops_per_hop / (board.compute_fraction * max_hop * period_s) / 1e6
+    smallest = rungs[-1][:2]
+    raise DoesNotFit(f"nothing fits board {board.name!r}: "
+                     + "; ".join(problems(board, n_channels, latent, smallest, window, max_hop,
+                                          period_s, "the smallest student"))
+                     + f" (smallest student: enc {list(smallest[0])}, gen {list(smallest[1])}, "
+                       f"window {window})")
+
+
+def problems(board: Board, n_channels: int, latent: int, rung: tuple, window: int,
+             max_hop: int, period_s: float, who: str) -> list:
+    """Each budget a rung breaks even at its longest hop, with the figure that would fit.
+    Needs are rounded up, so a budget of the stated size does fit (rounding to nearest could
+    name a figure just below what is needed)."""
+    plan = plan_for(board, n_channels, latent, *rung, window, max_hop, period_s)
+    found = []
+    if plan.storage_bytes > board.storage_budget_kb * 1024:
+        found.append(f"storage: {who} needs {math.ceil(plan.storage_bytes / 1024)} KB of "
+                     f"flash, the board allows {board.storage_budget_kb} KB")
+    if plan.ram_bytes > board.ram_budget_mb * 2**20:
+        found.append(f"RAM: {who} needs {math.ceil(plan.ram_bytes / 2**20)} MB, the board "
+                     f"allows {board.ram_budget_mb} MB")
+    if plan.hop_seconds_estimate > plan.hop_seconds_budget:
+        need = plan.flops_per_hop / (board.compute_fraction * max_hop * period_s) / 1e6
         step = 10.0 ** (math.floor(math.log10(need)) - 2)   # round up to 3 significant digits
-        need_text = f"{math.ceil(need / step) * step:.3g}"
-        problems.append(f"compute: one window takes ~{smallest.hop_seconds_estimate * 1e3:.1f} ms "
-                        f"but the board allows {smallest.hop_seconds_budget * 1e3:.1f} ms per hop "
-                        f"at hop {max_hop}; it would need {need_text} MFLOP/s "
-                        "or a longer period")
-    raise DoesNotFit(f"nothing fits board {board.name!r}: " + "; ".join(problems)
-                     + f" (smallest student: enc {list(smallest.encoder_hidden)}, gen "
-                       f"{list(smallest.generator_hidden)}, window {window})")
+        found.append(f"compute: one window of {who} takes "
+                     f"~{plan.hop_seconds_estimate * 1e3:.1f} ms but the board allows {plan.hop_seconds_budget * 1e3:.1f} ms per hop at hop "
+                     f"{max_hop}; it would need {math.ceil(need / step) * step:.3g} MFLOP/s "
+                     "or a longer period")
+    return found

@@ -279,6 +279,8 @@ def _check_sections(manifest: dict) -> None:
     for k in ("budget", "estimate"):
         if not isinstance(board.get(k), dict):
             raise BundleError(f"manifest: board.{k} must be an object")
+    if not isinstance(manifest.get("fidelity", {}), dict):
+        raise BundleError("manifest: fidelity must be an object")
     for k in REQUIRES:
         if version_tuple(manifest["requires"].get(k)) is None:
             raise BundleError(f"manifest: requires.{k} must be a version 'MAJOR.MINOR'")
@@ -322,15 +324,18 @@ def build_manifest(
     drift: Optional[dict] = None,
     false_alarms: Optional[dict] = None,
     time_zone: str = "UTC",
+    fidelity: Optional[dict] = None,
 ) -> dict:
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
     network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
     drift: drift.drift_section(...) (optional); false_alarms: the budget the threshold was
     calibrated to and the rate it implies (optional, informative); time_zone: the zone
-    zone-less input times were read in at training (the gateway's default)."""
-    optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms))
-                if v is not None}
+    zone-less input times were read in at training (the gateway's default); fidelity
+    (optional): how the bundle's network compares with the teacher it came from
+    (compile/fidelity.py), information for people that the gateway does not read."""
+    optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms),
+                                  ("fidelity", fidelity)) if v is not None}
     return {**optional,
         "schema_version": SCHEMA_VERSION,
         "tool_version": tool_version,

@@ -141,7 +141,7 @@ def test_distilled_student_agrees_with_teacher_and_an_untrained_one_does_not(tea
     # An untrained student of the same plan: distil with zero epochs.
     plan = size_student(load_board(DEFAULT_BOARD), len(model.channels),
                         model.teacher.config.latent, model.teacher.config.window,
-                        model.period_s)
+                        model.period_s, (TINY.encoder_hidden, TINY.generator_hidden))
     untrained = agreement(teacher_scores, network_scores(
         distil(model, plan, DistilConfig(epochs=0)).weights(), x))
     print(f"\nteacher vs student on the calibration span: distilled Spearman "
@@ -198,7 +198,8 @@ def test_manifest_describes_the_detector(teacher, bundle):
     np.testing.assert_allclose(m["scaler"]["scale"], (q75 - q25) / 1.349, rtol=1e-12)
     assert 1.349 == pytest.approx(norm.ppf(0.75) - norm.ppf(0.25), abs=1e-3)
     board = load_board(DEFAULT_BOARD)
-    plan = size_student(board, 3, model.teacher.config.latent, TINY.window, 60.0)
+    plan = size_student(board, 3, model.teacher.config.latent, TINY.window, 60.0,
+                        (TINY.encoder_hidden, TINY.generator_hidden))
     assert m["window"] == TINY.window and m["hop"] == plan.hop
     assert m["network"]["encoder"] == list(plan.encoder_hidden)
     assert m["network"]["generator"] == list(plan.generator_hidden)
@@ -384,12 +385,13 @@ def test_keypair_and_compile_with_an_ed25519_signature(teacher, tmp_path):
 @pytest.mark.parametrize("kind", ["file", "folder"])
 def test_out_that_is_not_a_bundle_is_refused_before_distillation(teacher, tmp_path, kind,
                                                                  monkeypatch):
-    import ganlet.compile.pipeline as pipeline
+    import ganlet.compile.distil as distil_mod
 
     def no_distil(*_args, **_kwargs):
         raise AssertionError("distillation started before --out was checked")
 
-    monkeypatch.setattr(pipeline, "distil", no_distil)
+    # compile distils through compile/student_cache.py, which calls distil.distil
+    monkeypatch.setattr(distil_mod, "distil", no_distil)
     out = tmp_path / "out"
     if kind == "file":
         out.write_text("not a folder")

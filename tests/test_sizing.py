@@ -1,6 +1,9 @@
-"""Sizing a student to a board: every shipped board gets a plan inside each of its budgets, a
-board that cannot hold any student is refused with a message naming the constraint and a size
-that would fit, and the architecture arithmetic matches torch's own parameter count."""
+"""Sizing a network to a board: the ladder runs from the teacher itself down to the smallest
+student; every shipped board gets the largest rung inside each of its budgets, a bigger board
+never a smaller network, a board that cannot hold the teacher the largest student that fits
+(saying why), a board that cannot hold any student is refused with a message naming the
+constraint and a size that would fit, and the architecture arithmetic matches torch's own
+parameter count."""
 
 from __future__ import annotations
 
@@ -15,7 +18,15 @@ from ganlet.compile.cli import app
 from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.layout import network_weights
 from ganlet.compile.model import LSTMStack, TeacherConfig
-from ganlet.compile.sizing import LADDER, DoesNotFit, network_counts, plan_for, size_student
+from ganlet.compile.sizing import (
+    STUDENT_RUNGS,
+    DoesNotFit,
+    fits,
+    ladder,
+    network_counts,
+    plan_for,
+    size_student,
+)
 from ganlet.compile.train import save_model, train
 from ganlet.runtime.lstm import Network
 
@@ -42,10 +53,32 @@ def write_board(path, **changes):
     return path
 
 
-def fits(plan, board) -> bool:
+# The default teacher's shape (TeacherConfig): the top rung of the ladder.
+TEACHER = (TeacherConfig().encoder_hidden, TeacherConfig().generator_hidden)
+
+
+def within_budgets(plan, board) -> bool:
+    """The three budgets, written out here rather than calling sizing.fits."""
     return (plan.storage_bytes <= board.storage_budget_kb * 1024
             and plan.ram_bytes <= board.ram_budget_mb * 2**20
             and plan.hop_seconds_estimate <= plan.hop_seconds_budget)
+
+
+@pytest.mark.parametrize("channels, latent, teacher", [
+    (4, 2, TEACHER), (8, 4, TEACHER), (3, 2, ((16,), (8, 16))), (2, 2, ((200, 100), (100, 200)))])
+def test_ladder_runs_from_the_teacher_itself_down_to_the_smallest_student(channels, latent,
+                                                                          teacher):
+    rungs = ladder(channels, latent, teacher)
+    assert rungs[0] == (*teacher, True)
+    assert all(not is_teacher for *_, is_teacher in rungs[1:])
+    counts = [network_counts(channels, latent, enc, gen)[0] for enc, gen, _ in rungs]
+    # strictly fewer parameters on every step down: no rung as big as the one above it
+    assert all(a > b for a, b in zip(counts, counts[1:])), counts
+    # every student rung smaller than the teacher is on the ladder, down to the smallest
+    smaller = [r for r in STUDENT_RUNGS if network_counts(channels, latent, *r)[0] < counts[0]]
+    assert {(e, g) for e, g, _ in rungs[1:]} == set(smaller)
+    if smaller:
+        assert rungs[-1][:2] == STUDENT_RUNGS[-1]
 
 
 @pytest.mark.parametrize("channels, window", [(3, 16), (3, 32), (8, 64)])
@@ -55,7 +88,7 @@ def test_plan_respects_every_budget_of_every_shipped_board(channels, window, per
     assert {b.name for b in boards} >= {"a53-512", "a72-2g", "x86-lowpower", "workstation"}
     latent = max(2, channels // 2)
     for board in boards:
-        plan = size_student(board, channels, latent, window, period)
+        plan = size_student(board, channels, latent, window, period, TEACHER)
         assert plan.board == board.name
         assert plan.storage_bytes <= board.storage_budget_kb * 1024
         assert plan.ram_bytes <= board.ram_budget_mb * 2**20
@@ -66,15 +99,51 @@ def test_plan_respects_every_budget_of_every_shipped_board(channels, window, per
         assert plan.hop_seconds_estimate == pytest.approx(
             plan.flops_per_hop / (board.mflops_single_core * 1e6))
         # the largest rung that fits: every larger rung fails at every allowed hop
-        rung = LADDER.index((plan.encoder_hidden, plan.generator_hidden))
-        for enc, gen in LADDER[:rung]:
+        rungs = ladder(channels, latent, TEACHER)
+        rung = [r[:2] for r in rungs].index((plan.encoder_hidden, plan.generator_hidden))
+        assert plan.teacher == (rung == 0)
+        assert bool(plan.teacher_refused) == (rung > 0)
+        for enc, gen, _ in rungs[:rung]:
             for hop in range(1, max(1, window // 4) + 1):
-                assert not fits(plan_for(board, channels, latent, enc, gen, window, hop, period),
-                                board)
+                assert not within_budgets(plan_for(board, channels, latent, enc, gen, window,
+                                                   hop, period), board)
         # and the smallest hop at which this rung fits
         for hop in range(1, plan.hop):
-            assert not fits(plan_for(board, channels, latent, plan.encoder_hidden,
-                                     plan.generator_hidden, window, hop, period), board)
+            assert not within_budgets(plan_for(board, channels, latent, plan.encoder_hidden,
+                                               plan.generator_hidden, window, hop, period), board)
+
+
+@pytest.mark.parametrize("channels, window, period", [(4, 32, 60.0), (8, 64, 1.0), (3, 16, 0.1),
+                                                      (12, 32, 1.0)])
+def test_a_bigger_board_never_gets_a_smaller_network(channels, window, period):
+    # the shipped boards grow in every budget from a53-512 to workstation (boards/*.toml)
+    order = ["a53-512", "a72-2g", "x86-lowpower", "workstation"]
+    latent = max(2, channels // 2)
+    sizes = []
+    for name in order:
+        try:
+            sizes.append(size_student(load_board(name), channels, latent, window, period,
+                                      TEACHER).parameters)
+        except DoesNotFit:
+            sizes.append(0)
+    assert sizes == sorted(sizes), dict(zip(order, sizes))
+
+
+def test_a_board_that_cannot_hold_the_teacher_gets_the_largest_student_that_fits(tmp_path):
+    teacher = plan_for(load_board(write_board(tmp_path / "r.toml")), 4, 2, *TEACHER, 32, 1, 60.0)
+    # flash for everything but the teacher itself: 1 KB less than its estimate
+    kb = int(teacher.storage_bytes // 1024) - 1
+    board = load_board(write_board(tmp_path / "t.toml", storage_budget_kb=kb))
+    plan = size_student(board, 4, 2, 32, 60.0, TEACHER)
+    assert not plan.teacher
+    assert plan.storage_bytes <= kb * 1024 < teacher.storage_bytes
+    assert plan.parameters < teacher.parameters
+    # the next rung up (the teacher) is what does not fit, and the plan says why
+    assert (plan.encoder_hidden, plan.generator_hidden) == ladder(4, 2, TEACHER)[1][:2]
+    assert len(plan.teacher_refused) == 1 and plan.teacher_refused[0].startswith("storage")
+    assert f"allows {kb} KB" in plan.teacher_refused[0]
+    assert "cannot hold the teacher itself" in plan.describe()
+    assert fits(plan, board) and within_budgets(plan, board)
 
 
 @pytest.mark.parametrize("channels, latent, enc, gen", [
@@ -116,45 +185,46 @@ def _need(message: str, pattern: str) -> float:
 def test_tiny_storage_is_refused_naming_storage_and_a_size_that_fits(tmp_path):
     board = load_board(write_board(tmp_path / "tiny.toml", storage_budget_kb=4))
     with pytest.raises(DoesNotFit) as err:
-        size_student(board, 3, 2, 32, 10.0)
+        size_student(board, 3, 2, 32, 10.0, TEACHER)
     msg = str(err.value)
     assert "storage" in msg and "allows 4 KB" in msg
     assert "RAM" not in msg and "compute" not in msg
     need_kb = _need(msg, r"needs (\d+) KB")
     # the named size does fit, with the smallest student
     roomier = load_board(write_board(tmp_path / "t2.toml", storage_budget_kb=int(need_kb)))
-    plan = size_student(roomier, 3, 2, 32, 10.0)
-    assert (plan.encoder_hidden, plan.generator_hidden) == LADDER[-1]
+    plan = size_student(roomier, 3, 2, 32, 10.0, TEACHER)
+    assert (plan.encoder_hidden, plan.generator_hidden) == STUDENT_RUNGS[-1]
     # one KB less does not
     with pytest.raises(DoesNotFit, match="storage"):
         size_student(load_board(write_board(tmp_path / "t3.toml",
-                                            storage_budget_kb=int(need_kb) - 1)), 3, 2, 32, 10.0)
+                                            storage_budget_kb=int(need_kb) - 1)), 3, 2, 32, 10.0,
+                     TEACHER)
 
 
 def test_tiny_ram_is_refused_naming_ram_and_a_size_that_fits(tmp_path):
     board = load_board(write_board(tmp_path / "tiny.toml", ram_budget_mb=8))
     with pytest.raises(DoesNotFit) as err:
-        size_student(board, 3, 2, 32, 10.0)
+        size_student(board, 3, 2, 32, 10.0, TEACHER)
     msg = str(err.value)
     assert "RAM" in msg and "allows 8 MB" in msg
     assert "storage" not in msg and "compute" not in msg
     need_mb = _need(msg, r"needs (\d+) MB")
     plan = size_student(load_board(write_board(tmp_path / "t2.toml", ram_budget_mb=int(need_mb))),
-                        3, 2, 32, 10.0)
+                        3, 2, 32, 10.0, TEACHER)
     assert plan.ram_bytes <= need_mb * 2**20
 
 
 def test_tiny_compute_is_refused_naming_compute_and_the_mflops_that_fit(tmp_path):
     board = load_board(write_board(tmp_path / "tiny.toml", mflops_single_core=1e-5))
     with pytest.raises(DoesNotFit) as err:
-        size_student(board, 3, 2, 32, 10.0)
+        size_student(board, 3, 2, 32, 10.0, TEACHER)
     msg = str(err.value)
     assert "compute" in msg and "MFLOP/s" in msg
     assert "storage" not in msg and "RAM" not in msg
     need = _need(msg, r"need ([\d.]+) MFLOP/s")
     assert need > 1e-5
     plan = size_student(load_board(write_board(tmp_path / "t2.toml", mflops_single_core=need)),
-                        3, 2, 32, 10.0)
+                        3, 2, 32, 10.0, TEACHER)
     assert plan.hop == 32 // 4      # only the longest allowed hop fits at that speed
     assert plan.hop_seconds_estimate <= plan.hop_seconds_budget
 
@@ -163,7 +233,7 @@ def test_several_problems_are_all_named(tmp_path):
     board = load_board(write_board(tmp_path / "tiny.toml", storage_budget_kb=4, ram_budget_mb=8,
                                    mflops_single_core=1e-5))
     with pytest.raises(DoesNotFit) as err:
-        size_student(board, 3, 2, 32, 10.0)
+        size_student(board, 3, 2, 32, 10.0, TEACHER)
     assert all(word in str(err.value) for word in ("storage", "RAM", "compute"))
 
 
