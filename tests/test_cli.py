@@ -241,18 +241,24 @@ def test_ctrl_c_during_training_says_it_was_interrupted(tmp_path, write_csv, con
     out = tmp_path / "m"
     slow = config_file(adversarial_epochs=5000, inversion_epochs=5000, max_train_windows=2000)
     env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    # Ctrl-C as a terminal delivers it: SIGINT at its default disposition in the child, even
+    # when this test runs from a background job (which starts with SIGINT ignored, POSIX)
     proc = subprocess.Popen([str(GANLET), "train", str(data), "--out", str(out), "--config",
                              str(slow)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            text=True, env=env)
-    seen = ""
-    for line in proc.stderr:                  # the data summary: training comes next
-        seen += line
-        if line.startswith("  temp"):
-            break
-    time.sleep(3.0)                           # well inside the 5000 epochs
-    assert proc.poll() is None, seen           # precondition: still training
-    proc.send_signal(signal.SIGINT)
-    _, rest = proc.communicate(timeout=120)
+                            text=True, env=env,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+    try:
+        seen = ""
+        for line in proc.stderr:                  # the data summary: training comes next
+            seen += line
+            if line.startswith("  temp"):
+                break
+        time.sleep(3.0)                           # well inside the 5000 epochs
+        assert proc.poll() is None, seen           # precondition: still training
+        proc.send_signal(signal.SIGINT)
+        _, rest = proc.communicate(timeout=120)
+    finally:
+        proc.kill()                               # never leave a 5000-epoch run behind
     assert proc.returncode == 130, seen + rest
     assert "interrupted (Ctrl-C): training stopped" in rest and str(out) in rest
     assert "Traceback" not in rest and "Aborted" not in rest
