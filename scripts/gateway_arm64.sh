@@ -35,20 +35,7 @@ run_python() {
     qemu-aarch64-static -L "$ROOT" -cpu "$QEMU_CPU_MODEL" "$ROOT/usr/bin/python3.11" "$@"
 }
 
-# What the gateway runtime imports, plus one matmul through Debian's BLAS.
-SMOKE='
-import hashlib, hmac, json, resource, signal, sqlite3, sys, tempfile
-import numpy as np
-a = np.arange(12, dtype=np.float32).reshape(3, 4)
-assert float((a @ a.T).sum()) == 1134.0  # |column sums|^2 = 12^2+15^2+18^2+21^2
-try:
-    import paho.mqtt.client  # optional on the gateway
-    from importlib.metadata import version
-    paho = version("paho-mqtt")
-except ImportError:
-    paho = "absent"
-print("versions: python=%d.%d.%d numpy=%s paho-mqtt=%s" % (sys.version_info[:3] + (np.__version__, paho)))
-'
+SMOKE="$(cd "$(dirname "$0")" && pwd)/gateway_smoke.py"  # imports, one matmul, the versions line
 
 ensure_host_tools() {
     if ! command -v apt-get >/dev/null || ! command -v dpkg-deb >/dev/null; then
@@ -109,11 +96,11 @@ if [ "$(cat "$MARKER" 2>/dev/null)" != "$RECIPE" ]; then
     fi
     ensure_host_tools
     build_root
-    run_python -c "$SMOKE" >/dev/null || die "the arm64 python or numpy does not start under qemu"
+    run_python "$SMOKE" >/dev/null || die "the arm64 python or numpy does not start under qemu"
     echo "$RECIPE" >"$MARKER"
     rm -f "$ROOT/.ganlet-arm64-partial"
 fi
 command -v qemu-aarch64-static >/dev/null \
     || die "qemu-aarch64-static is missing (apt-get install qemu-user-static)"
 echo "gateway_arm64: $ROOT (qemu $(qemu-aarch64-static --version | head -1 | awk '{print $3}'), cpu $QEMU_CPU_MODEL)" >&2
-run_python -c "$SMOKE" || die "the arm64 python or numpy does not start under qemu"
+run_python "$SMOKE" || die "the arm64 python or numpy does not start under qemu"

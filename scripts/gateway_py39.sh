@@ -30,19 +30,7 @@ find_python39() {
     die "no Python 3.9 interpreter (looked for \$GANLET_PY39, ~/.pyenv/versions/3.9.*, python3.9 on PATH)"
 }
 
-SMOKE='
-import sys
-import numpy as np
-a = np.arange(12, dtype=np.float32).reshape(3, 4)
-assert float((a @ a.T).sum()) == 1134.0  # |column sums|^2 = 12^2+15^2+18^2+21^2
-try:
-    import paho.mqtt.client  # optional on the gateway
-    from importlib.metadata import version
-    paho = version("paho-mqtt")
-except ImportError:
-    paho = "absent"
-print("versions: python=%d.%d.%d numpy=%s paho-mqtt=%s" % (sys.version_info[:3] + (np.__version__, paho)))
-'
+SMOKE="$(cd "$(dirname "$0")" && pwd)/gateway_smoke.py"  # imports, one matmul, the versions line
 
 mkdir -p "$(dirname "$VENV")"
 exec 9>"$VENV.lock"
@@ -62,4 +50,4 @@ if [ "$(cat "$MARKER" 2>/dev/null)" != "$RECIPE" ] || ! "$VENV/bin/python" -c ""
         "${REQUIREMENTS[@]}" >&2 || die "pip install ${REQUIREMENTS[*]} failed (no network to PyPI?)"
     echo "$RECIPE" >"$MARKER"
 fi
-"$VENV/bin/python" -c "$SMOKE" || die "$VENV/bin/python cannot import numpy"
+"$VENV/bin/python" "$SMOKE" || die "$VENV/bin/python cannot import numpy"
