@@ -65,17 +65,28 @@ def run_file(args) -> dict:
                   model_dir=model_dir)
     incidents, labels, times = incidents_of(path)
     rows = grid_index(frame, times[TRAIN_ROWS:])      # protocol: score the rows after 400
+    train_rows = grid_index(frame, times[:TRAIN_ROWS])
     mask = np.zeros(len(frame.times), bool)
     mask[rows] = True
     r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir)
     return {"labels": labels[TRAIN_ROWS:],
             "alert": {m.name: m.alert[rows] for m in r.methods.values()},
-            "score": {m.name: m.scores[rows] for m in r.methods.values()}}
+            "score": {m.name: m.scores[rows] for m in r.methods.values()},
+            "train_score": {m.name: m.scores[train_rows] for m in r.methods.values()}}
+
+
+def p99_alerts(out: dict, name: str) -> np.ndarray:
+    """The reference rule of issue 11's first measurement, for comparison only: a test row is
+    flagged when its score exceeds the 99th percentile of the file's training-span scores (no
+    alert machine, no budget)."""
+    train = out["train_score"][name]
+    level = np.nanpercentile(train, 99) if np.isfinite(train).any() else np.inf
+    return out["score"][name] > level
 
 
 def pooled(outs: list) -> dict:
-    """Per method: point metrics over every file's test rows together, and the ROC AUC of its
-    score (sklearn.metrics.roc_auc_score)."""
+    """Per method: point metrics over every file's test rows together, the ROC AUC of its
+    score (sklearn.metrics.roc_auc_score), and under "p99" the point metrics of p99_alerts."""
     from sklearn.metrics import roc_auc_score
 
     from ganlet.compile.evaluate import point_metrics
@@ -87,6 +98,7 @@ def pooled(outs: list) -> dict:
         s = np.concatenate([o["score"][name] for o in outs])
         ok = np.isfinite(s)
         m["auc"] = float(roc_auc_score(y[ok], s[ok]))
+        m["p99"] = point_metrics(y, np.concatenate([p99_alerts(o, name) for o in outs]))
         metrics[name] = m
     return metrics
 
