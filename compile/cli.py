@@ -216,7 +216,7 @@ def compile_cmd(
     board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512); several as a,b; 'all' for every shipped profile."),
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
     alarms_per_week: float = typer.Option(1.0, "--false-alarms-per-week", min=1e-6, help="False-alarm budget on normal data the threshold is calibrated to (pot)."),
-    drift: str = typer.Option("report", "--drift", help="A channel slowly leaving its training range: 'report' it once and score it as it is, or 'recentre' it onto the range so it never holds an alert open (it can also re-centre a slow fault)."),
+    drift: str = typer.Option("recentre", "--drift", help="A channel slowly leaving its training range: 'recentre' it onto the range while the drift lasts, so a warming machine never holds an alert open (it can also re-centre a slow fault), or 'report' it and score it as it is. Both report it once as a drift event."),
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
     sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac); the gateway then needs the same secret."),
     sign_ed25519: Optional[Path] = typer.Option(None, "--sign-ed25519", help="PEM Ed25519 private key (`ganlet keypair`): sign the manifest (manifest.ed25519); the gateway checks it with the public key alone."),

@@ -182,7 +182,7 @@ class CompileOptions:
     name: Optional[str] = None
     alerting: dict = field(default_factory=dict)   # overrides of the default alert settings
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK   # false-alarm budget on normal data
-    drift: str = DRIFT_ACTION                  # "report" a drift, or "recentre" it away
+    drift: str = DRIFT_ACTION                  # "recentre" a drift away, or "report" it only
     threads: Optional[int] = None                  # torch + BLAS threads; None: compile/threads.py
 
 

@@ -83,8 +83,8 @@ def test_slow_ramp_is_one_drift_event_and_no_alert(drift_bundles, tmp_path):
 
 
 def test_drift_reported_only_names_the_channel_once(drift_bundles, tmp_path):
-    """The default action: the drift is scored as it is (so it alerts, as a fault of that
-    size would) and is reported once as drift, naming the channel."""
+    """--drift report: the drift is scored as it is (so it alerts, as a fault of that size
+    would) and is reported once as drift, naming the channel."""
     events = stream_events(drift_bundles["report"], ramp_with_spike(), tmp_path, "report")
     assert [d["channel"] for d in of(events, "drift")] == ["flow"]
     assert "scored as it is" in of(events, "drift")[0]["action"]
