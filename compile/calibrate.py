@@ -50,8 +50,8 @@ SCORED_FRACTION = 4
 # benchmarks/bench_normal.py, seed 0): scored as it is (`report`), the drifting channels held
 # one alert open for 98 % of the streamed time after training on 400 or 2,000 rows, which also
 # hides any real fault meanwhile; re-centred, 7.2 % and 0.5 %. The price, on SKAB valve1: some
-# faults that are slow departures get re-centred too (seed 0 before this change: F1 0.71 -> 0.64,
-# FAR 0.36 -> 0.25). `--drift report` keeps scoring them for a machine that does not drift.
+# faults that are slow departures get re-centred too (bench_skab.py, mean of 3 seeds: F1 0.70 ->
+# 0.65, FAR 0.37 -> 0.28). `--drift report` keeps scoring them for a machine that does not drift.
 DRIFT_ACTION = "recentre"
 K_MAX = 4                  # operating regimes a small pump, fan or compressor shows (off/low/high)
 MIN_REGIME_WINDOWS = 30    # common practice: ~30 samples for a stable median per channel
