@@ -28,8 +28,9 @@ from typing import Optional, Tuple
 import numpy as np
 
 COMBINE_RULES = ("mean", "rms", "max")
-RESIDUAL_TEXT = ("mean over the window of the squared reconstruction error x - G(E(x)), per "
-                 "channel, on robust-scaled inputs")
+RESIDUAL_TEXT = ("mean over the newest `steps` steps of the window (all steps without `steps`) "
+                 "of the squared reconstruction error x - G(E(x)), per channel, on robust-scaled "
+                 "inputs")
 
 
 def score_section(centres=None, scale=None, combine: str = "mean",
