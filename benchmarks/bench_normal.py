@@ -19,7 +19,6 @@ import sys
 import tempfile
 import time
 import warnings
-from dataclasses import replace
 from pathlib import Path
 
 import pandas as pd
@@ -33,19 +32,10 @@ WEEK_S = 7 * 86400.0
 
 
 def run_length(path: Path, rows: int, seed: int, out: Path, drift: str) -> dict:
-    import torch
-
-    from ganlet.compile.data import load_frame, split_spans
     from ganlet.compile.gateway import read_scores, run_bundle
-    from ganlet.compile.model import TeacherConfig
-    from ganlet.compile.pipeline import CompileOptions, compile_model
-    from ganlet.compile.train import save_model, train
+    from ganlet.compile.pipeline import CompileOptions
 
-    torch.set_num_threads(1)
-    frame = load_frame(path)
-    model = train(frame, split_spans(frame, rows, 0.2), replace(TeacherConfig(), seed=seed))
-    model_dir = save_model(model, out / "model")
-    compile_model(model, out / "bundle", CompileOptions(drift=drift), model_dir=model_dir)
+    skab_protocol.train_and_compile(path, rows, seed, out, CompileOptions(drift=drift))
     raw = pd.read_csv(path, sep=";")
     feed = out / "feed.csv"
     raw.iloc[rows:].to_csv(feed, index=False)          # only rows the model never saw

@@ -216,7 +216,7 @@ def compile_cmd(
     board: Optional[str] = typer.Option(None, help="Board profile name or TOML path (default: the smallest, a53-512); several as a,b; 'all' for every shipped profile."),
     threshold: str = typer.Option("pot", help="Threshold policy: pot (streaming peaks-over-threshold), rolling (median + k*MAD) or static."),
     alarms_per_week: float = typer.Option(1.0, "--false-alarms-per-week", min=1e-6, help="False-alarm budget on normal data the threshold is calibrated to (pot)."),
-    drift: str = typer.Option("recentre", "--drift", help="A channel slowly leaving its training range: 'recentre' it onto the range while the drift lasts, so a warming machine never holds an alert open (it can also re-centre a slow fault), or 'report' it and score it as it is. Both report it once as a drift event."),
+    drift: Optional[str] = typer.Option(None, "--drift", help="A channel slowly leaving its training range: 'recentre' it onto the range while the drift lasts, so a warming machine never holds an alert open (it can also re-centre a slow fault), or 'report' it and score it as it is. Both report it once as a drift event. Default: recentre (compile/calibrate.py says why)."),
     archive: bool = typer.Option(False, "--archive", help="Also write BUNDLE_DIR.tar.gz."),
     sign_key: Optional[Path] = typer.Option(None, "--sign-key", help="Key file: sign the manifest with HMAC-SHA256 (manifest.hmac); the gateway then needs the same secret."),
     sign_ed25519: Optional[Path] = typer.Option(None, "--sign-ed25519", help="PEM Ed25519 private key (`ganlet keypair`): sign the manifest (manifest.ed25519); the gateway checks it with the public key alone."),
@@ -227,6 +227,7 @@ def compile_cmd(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Size a network to each board, distil, quantise to int8, export ONNX and pack the bundle."""
+    from ganlet.compile.calibrate import DRIFT_ACTION
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.pack import safe_name
     from ganlet.compile.pipeline import CompileOptions
@@ -239,8 +240,8 @@ def compile_cmd(
             raise UsageProblem(f"{model_dir} is not a model directory (no model.json); "
                                "create one with `ganlet train DATA --out DIR`")
         options = CompileOptions(board=board, threshold=threshold, archive=archive, sign_key=key,
-                                 alarms_per_week=alarms_per_week, drift=drift,
-                                 ed25519_key=private_key,
+                                 alarms_per_week=alarms_per_week,
+                                 drift=drift or DRIFT_ACTION, ed25519_key=private_key,
                                  name=name or safe_name(model_dir.resolve().name),
                                  distil=DistilConfig(epochs=distil_epochs, seed=seed),
                                  threads=threads)

@@ -35,7 +35,7 @@ MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
 DRIFT_ACTIONS = ("recentre", "report")
 
 
-def drift_section(lo, hi, v_max, action: str = "recentre") -> dict:
+def drift_section(lo, hi, v_max, action: str) -> dict:
     """The manifest's `drift` section. action "recentre" feeds the network the channel
     re-centred onto its envelope while the drift lasts; "report" only reports it."""
     return {"lo": [float(v) for v in lo], "hi": [float(v) for v in hi],

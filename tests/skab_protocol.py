@@ -41,28 +41,38 @@ def incidents_of(path: Path):
     return incidents, labels, times
 
 
+def train_and_compile(path: Path, train_rows: int, seed: int, out: Path, options):
+    """`ganlet train` (defaults, the first train_rows rows, one torch thread) and `ganlet
+    compile` (CompileOptions `options`) of one file: (frame, model_dir); the bundle is out/bundle."""
+    import torch
+
+    from ganlet.compile.data import load_frame, split_spans
+    from ganlet.compile.model import TeacherConfig
+    from ganlet.compile.pipeline import compile_model
+    from ganlet.compile.train import save_model, train
+
+    torch.set_num_threads(1)
+    frame = load_frame(path)
+    model = train(frame, split_spans(frame, train_rows, 0.2), replace(TeacherConfig(), seed=seed))
+    model_dir = save_model(model, out / "model")
+    compile_model(model, out / "bundle", options, model_dir=model_dir)
+    return frame, model_dir
+
+
 def run_file(args) -> dict:
     """Train, compile and evaluate one file (in whichever process calls it): the test rows'
     labels and, per method, alerts and scores on them."""
     path, out, seed, distil_epochs = args
-    import torch
-
-    from ganlet.compile.data import grid_index, load_frame, split_spans
+    from ganlet.compile.data import grid_index
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.evaluate import evaluate
-    from ganlet.compile.model import TeacherConfig
-    from ganlet.compile.pipeline import CompileOptions, compile_model
-    from ganlet.compile.train import save_model, train
+    from ganlet.compile.pipeline import CompileOptions
 
-    torch.set_num_threads(1)
     warnings.simplefilter("ignore")
     path, out = Path(path), Path(out)
-    frame = load_frame(path)
-    model = train(frame, split_spans(frame, TRAIN_ROWS, 0.2), replace(TeacherConfig(), seed=seed))
-    model_dir = save_model(model, out / "model")
-    compile_model(model, out / "bundle",
-                  CompileOptions(distil=DistilConfig(epochs=distil_epochs, seed=seed)),
-                  model_dir=model_dir)
+    frame, model_dir = train_and_compile(
+        path, TRAIN_ROWS, seed, out,
+        CompileOptions(distil=DistilConfig(epochs=distil_epochs, seed=seed)))
     incidents, labels, times = incidents_of(path)
     rows = grid_index(frame, times[TRAIN_ROWS:])      # protocol: score the rows after 400
     train_rows = grid_index(frame, times[:TRAIN_ROWS])
