@@ -351,6 +351,8 @@ class Service:
             t.checkpoint = now
             self.checkpoint()
         self.report_errors(force=False)
+        if self.link is not None:
+            self.link.flush()  # events held while the broker was away, even if none follow
 
     # ------------------------------------------------------------------ the run
     def start_event(self) -> None:

@@ -488,8 +488,12 @@ def test_sigkill_of_the_gateway_loses_nothing(setup, broker, tmp_path, client):
 def test_unacknowledged_alert_is_resent_after_restart(setup, tmp_path):
     """The broker is down when the alert is raised and the gateway is killed: only the
     checkpoint still knows the alert. The input replay cannot raise it again (its rows are
-    behind the checkpoint), so it reaches the HMI only if the restart re-sends it."""
-    broker = Broker(tmp_path / "broker")  # port chosen, nothing listening yet
+    behind the checkpoint), so it reaches the HMI only if the restart re-sends it. The
+    restarted gateway comes up before the broker and then sees no new event: the re-send must
+    go out from the idle loop once the connection is there."""
+    broker = Broker(tmp_path / "broker").start()
+    hmi = Listener(broker.port)  # its persistent session outlives the broker's restart
+    broker.stop()
     lines = setup["csv"].read_text().splitlines()
     live = tmp_path / "live.csv"
     live.write_text("\n".join(lines[:260]) + "\n")  # through the first anomaly's opening
@@ -514,11 +518,13 @@ def test_unacknowledged_alert_is_resent_after_restart(setup, tmp_path):
     saved = json.loads((out / "state.json").read_text())["state"]["sinks"]["mqtt"]
     assert [e["alert_id"] for e in saved["unacknowledged"]] == [opened["alert_id"]]
 
-    broker.start()
+    again = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    log = []
+    reader = threading.Thread(target=lambda: log.extend(again.stderr), daemon=True)
+    reader.start()
+    wait_until(lambda: any("re-sending 1 alert event" in x for x in log), what="the re-send")
+    broker.start()  # same port: the gateway's back-off reconnects to it
     try:
-        hmi = Listener(broker.port)
-        again = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
-                                 text=True)
         wait_until(lambda: hmi.payloads("alerts"), what="the re-sent alert")
         again.send_signal(signal.SIGTERM)
         rest, _ = again.communicate(timeout=30)
@@ -527,8 +533,10 @@ def test_unacknowledged_alert_is_resent_after_restart(setup, tmp_path):
         assert not [e for e in replayed if e["event"] == "alert_opened"]  # not from the replay
         saved = json.loads((out / "state.json").read_text())["state"]["sinks"]["mqtt"]
         assert saved["unacknowledged"] == []  # acknowledged before the final checkpoint
-        hmi.close()
     finally:
+        hmi.close()
+        if again.poll() is None:
+            again.kill()
         broker.stop()
 
 
