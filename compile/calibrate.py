@@ -4,8 +4,8 @@ Everything is measured by replaying the training rows through the gateway's own 
 (runtime.detector.Detector on an in-memory bundle) with the network that will score them (the
 device's int8 student, or the teacher for `ganlet evaluate` on a model directory):
 
-1. drift envelope: per channel, the lowest / highest window mean of the training span and the
-   largest change of the window mean over one window (runtime/drift.py);
+1. drift envelope: per channel, the lowest / highest window level (median) of the training span
+   and the largest change of the window level over one window (runtime/drift.py);
 2. operating regimes: k-means on the fit span's window means; k is the largest k <= K_MAX whose
    every regime holds at least MIN_REGIME_WINDOWS calibration windows and whose silhouette is at
    least SILHOUETTE_MIN, else one regime (runtime/score.py uses the nearest centre);
@@ -28,7 +28,7 @@ from scipy.stats import spearmanr
 from ganlet.compile.train import TrainedModel
 from ganlet.runtime.alerts import default_alerting
 from ganlet.runtime.detector import Detector
-from ganlet.runtime.drift import drift_section
+from ganlet.runtime.drift import drift_section, window_level
 from ganlet.runtime.lstm import Network
 from ganlet.runtime.manifest import Bundle, build_manifest
 from ganlet.runtime.score import ScoreRule, score_section
@@ -56,6 +56,7 @@ DRIFT_ACTION = "recentre"
 K_MAX = 4                  # operating regimes a small pump, fan or compressor shows (off/low/high)
 MIN_REGIME_WINDOWS = 30    # common practice: ~30 samples for a stable median per channel
 SILHOUETTE_MIN = 0.5       # Kaufman & Rousseeuw: > 0.5 "reasonable structure" (from memory)
+LEVEL_CHUNK = 4096         # windows per median call when fitting the drift envelope
 FLOOR_FRACTION = 1e-3      # a regime's scale is at least this share of the channel's overall
                            # median error (a regime where a channel is reconstructed exactly)
 
@@ -127,10 +128,24 @@ def fit_drift(model: TrainedModel, window: int, action: str = DRIFT_ACTION) -> d
     return envelope(model.series[:model.spans.calibration[1]], window, action)
 
 
+def window_levels(series: np.ndarray, window: int) -> np.ndarray:
+    """runtime.drift.window_level of the window ending at each row [T, C] (NaN before a full
+    window and where a window holds a NaN row), in chunks so a long history stays small."""
+    x = np.asarray(series, np.float64)
+    out = np.full(x.shape, np.nan)
+    if len(x) < window:
+        return out
+    views = np.lib.stride_tricks.sliding_window_view(x, window, axis=0)  # [T-L+1, C, L]
+    for a in range(0, len(views), LEVEL_CHUNK):
+        chunk = views[a:a + LEVEL_CHUNK].swapaxes(1, 2)  # [n, L, C]
+        out[window - 1 + a: window - 1 + a + len(chunk)] = window_level(chunk)
+    return out
+
+
 def envelope(series: np.ndarray, window: int, action: str = DRIFT_ACTION) -> dict:
-    """The manifest's drift section from scaled rows [T, C]: lowest / highest window mean and
-    the largest change of the window mean over one window, per channel."""
-    m = window_means(np.asarray(series, np.float64), window)
+    """The manifest's drift section from scaled rows [T, C]: lowest / highest window level and
+    the largest change of the window level over one window, per channel."""
+    m = window_levels(series, window)
     ok = np.isfinite(m).all(axis=1)
     step = np.abs(m[window:] - m[:-window])
     step = step[np.isfinite(step).all(axis=1)]

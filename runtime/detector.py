@@ -33,7 +33,7 @@ import numpy as np
 
 from . import features
 from .alerts import ALERTING_KEYS, CLOSED, OPENED, WARMED_UP, AlertMachine
-from .drift import DriftMonitor
+from .drift import DriftMonitor, window_level
 from .intake import RowError, format_time
 from .ring import Ring
 from .score import ScoreRule, shares
@@ -299,7 +299,7 @@ class Detector:
         means = window.mean(axis=0, dtype=np.float64)
         drift_events = []
         if self.drift is not None:
-            offset, drift_events = self.drift.step(format_time(t), means,
+            offset, drift_events = self.drift.step(format_time(t), window_level(window),
                                                    self.judge.alert_channels())
             if offset.any():
                 window = (window - offset).astype(np.float32)

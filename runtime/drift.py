@@ -9,14 +9,23 @@ is told to collect fresh normal data and retrain. A channel that leaves the enve
 training ever moved it is left to the score and the alert machine (a step, a burst, a sag).
 
 Per channel c, in scaled units (robust standard deviations of the fit span), each scored hop:
-    m_c      mean of the window (the ring holds it)
-    envelope [lo_c, hi_c]: the lowest / highest window mean of the training span
+    m_c      level of the window: its median (window_level). A median, not a mean: a channel
+             with rare spikes in training (a flow meter's dropouts) would otherwise get an
+             envelope and a speed bound as wide as its spikes, and a real departure of its level
+             would pass as drift (SKAB valve1 file 1's flow: issue 11's notes)
+    envelope [lo_c, hi_c]: the lowest / highest window level of the training span
     excess   e_c = max(m_c - hi_c, lo_c - m_c, 0)
     speed    |m_c - m_c one window earlier|, against v_max_c: the largest such change of the
              training span ("normal operation can move this fast")
-A channel enters drift when e_c > MARGIN (its window mean is a full robust standard deviation
-of the channel beyond every training window: smaller excursions are the envelope's own sampling
-error), its speed <= v_max_c, and it is not among the channels of an open or pending alert; while in drift the network sees x_c - sign(m_c) * e_c (the excess
+A channel enters drift once it has been outside its envelope for one window's worth of hops, if
+it is leaving no faster than training ever moved: its average pace since it left, excess over
+windows spent outside, e_c / (hops outside / hops per window), is at most v_max_c (so a step that
+then holds still is left to the score and the alert machine until as long has passed as the
+fastest normal movement would have needed to get that far; without it any held step passed as
+drift as soon as its window had gone by), its speed is at most v_max_c, and it is not among the
+channels of an open or pending alert. The `drift` event is sent once its excess passes MARGIN (a
+full robust standard deviation beyond every training window: smaller excursions are the
+envelope's own sampling error). While in drift the network sees x_c - sign(m_c) * e_c (the excess
 removed), so neither that channel nor the others score it. The drift ends once the channel has
 been back inside its envelope for one window's worth of hops (an excursion hovering at the edge
 is one drift, not a flicker of many).
@@ -33,6 +42,11 @@ MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
 
 
 DRIFT_ACTIONS = ("recentre", "report")
+
+
+def window_level(window) -> np.ndarray:
+    """Each channel's level over a window [..., L, C]: the median of its L values."""
+    return np.median(np.asarray(window, dtype=np.float64), axis=-2)
 
 
 def drift_section(lo, hi, v_max, action: str) -> dict:
@@ -63,15 +77,16 @@ class DriftMonitor:
         self.peak = np.zeros(n)
         self.inside = np.zeros(n, dtype=np.int64)  # hops back inside, per channel in drift
         self.outside = np.zeros(n, dtype=np.int64)  # hops outside in a row, before drift
-        # window means one window earlier: hops back = ceil(window / hop)
+        # window levels one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
-    def excess(self, means: np.ndarray) -> np.ndarray:
-        return np.maximum(np.maximum(means - self.hi, self.lo - means), 0.0)
+    def excess(self, levels: np.ndarray) -> np.ndarray:
+        return np.maximum(np.maximum(levels - self.hi, self.lo - levels), 0.0)
 
-    def step(self, time_text: str, means, blocked) -> tuple:
-        """One scored hop: (offset [C] to subtract from the window, events)."""
-        m = np.asarray(means, dtype=np.float64)
+    def step(self, time_text: str, levels, blocked) -> tuple:
+        """One scored hop, given the window's levels [C]: (offset [C] to subtract from the
+        window, events)."""
+        m = np.asarray(levels, dtype=np.float64)
         full = len(self.past) == self.past.maxlen
         speed = np.abs(m - self.past[0]) if full else np.full(len(m), np.inf)
         self.past.append(m)
@@ -85,8 +100,9 @@ class DriftMonitor:
                     events += self._end(c, time_text)
             else:
                 self.outside[c] = self.outside[c] + 1 if e[c] > 0 else 0
-                if (self.outside[c] >= self.past.maxlen and not blocked[c]
-                        and speed[c] <= self.v_max[c]):
+                windows_out = self.outside[c] / self.past.maxlen
+                if (windows_out >= 1 and e[c] <= self.v_max[c] * windows_out
+                        and not blocked[c] and speed[c] <= self.v_max[c]):
                     self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
                     self.outside[c] = 0
             if self.in_drift[c] and not self.reported[c] and e[c] > MARGIN:

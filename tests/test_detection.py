@@ -127,8 +127,9 @@ def test_drift_state_survives_a_restart(drift_bundles, tmp_path):
 def test_envelope_matches_pandas_rolling():
     x = fx.scaled(fx.raw_values(300, seed=3)).astype(np.float64)
     section = envelope(x, WINDOW)
-    # reference: pandas rolling mean (window means), min / max, and their change over a window
-    m = pd.DataFrame(x).rolling(WINDOW).mean()
+    # reference: pandas rolling median (window levels), min / max, and their change over a
+    # window
+    m = pd.DataFrame(x).rolling(WINDOW).median()
     np.testing.assert_allclose(section["lo"], m.min().to_numpy(), rtol=1e-9)
     np.testing.assert_allclose(section["hi"], m.max().to_numpy(), rtol=1e-9)
     np.testing.assert_allclose(section["v_max"], m.diff(WINDOW).abs().max().to_numpy(),
@@ -204,3 +205,30 @@ def test_calibrated_score_has_one_scale_across_regimes(tmp_path):
           f"uncalibrated mean residual {uncalibrated:.2f}x")
     assert calibrated < 1.5
     assert uncalibrated > 3.0
+
+
+def _drift_entry_hop(levels, window=WINDOW, hop=1):
+    """The hop at which a one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window)
+    puts the channel in drift, or None."""
+    from ganlet.runtime.drift import DriftMonitor
+
+    mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre"},
+                       ["flow"], window, hop)
+    for k, m in enumerate(levels):
+        mon.step(f"t{k}", [m], [False])
+        if mon.in_drift[0]:
+            return k
+    return None
+
+
+def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
+    # 64 hops inside, then a step to 3.0 (excess 2.0) held still: its speed drops to 0 after
+    # one window, which alone passed it as drift; at the fastest training pace (0.5 per window
+    # of 16 hops) an excess of 2.0 takes 4 windows = 64 hops outside
+    step = [0.0] * 64 + [3.0] * 200
+    assert _drift_entry_hop(step) == 64 + 4 * WINDOW - 1
+    # a ramp leaving at 0.25 per window (half the fastest pace) is drift one window after it
+    # crossed the edge
+    ramp = [min(0.25 * k / WINDOW, 3.0) for k in range(400)]
+    crossed = next(k for k, m in enumerate(ramp) if m > 1.0)
+    assert _drift_entry_hop(ramp) == crossed + WINDOW - 1
