@@ -268,7 +268,41 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         raise IntakeError(f"{path}: no data rows")
     notes: list = []
     time_col = find_time_column(df, opts.time_col)
+    channels, excluded = pick_channels(df, time_col, opts, path)
+    times_np, values, unparsable = timed_rows(df, time_col, channels, dialect, notes)
+    times_np, values, out_of_order = sorted_by_time(times_np, values, notes)
 
+    dt = np.diff(times_np).astype("timedelta64[ns]").astype(np.int64) / 1e9
+    positive = dt[dt > 0]
+    if len(positive) == 0:
+        raise IntakeError(f"{path}: all rows share one timestamp; need a time series")
+    period = opts.period_s or snapped_period(float(np.median(positive)), notes)
+    grid, grid_times, duplicates = on_grid(times_np, values, period, float(np.median(positive)),
+                                           notes)
+    missing, filled, long_gaps = fill_short_gaps(grid, grid_times, opts.max_fill_periods)
+    for j, name in enumerate(channels):
+        if np.isnan(grid[:, j]).all():
+            raise IntakeError(f"channel {name!r} has no numeric values; drop it with --channels")
+
+    segs = runs(~np.isnan(grid).any(axis=1))
+    ranges = {name: [float(np.nanmin(grid[:, j])), float(np.nanmax(grid[:, j]))]
+              for j, name in enumerate(channels)}
+    units = [unit_for(c, opts.units) for c in channels]
+    report = IntakeReport(
+        source=str(path), rows_read=int(len(df)), time_col=str(time_col),
+        channels=[str(c) for c in channels], units=units, excluded=[str(c) for c in excluded],
+        period_s=period, start=str(grid_times[0]), end=str(grid_times[-1]),
+        grid_points=len(grid), unparsable_times=unparsable, out_of_order=out_of_order,
+        duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
+        long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
+        time_zone=dialect.zone_name,
+    )
+    return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
+
+
+def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path) -> tuple:
+    """(channels, excluded columns): --channels as named, else every numeric column that is
+    not the time, a label column or --exclude'd."""
     excluded = [c for c in df.columns if str(c).strip().lower() in LABEL_NAMES]
     excluded += [c for c in opts.exclude if c in df.columns and c not in excluded]
     missing_excl = [c for c in opts.exclude if c not in df.columns]
@@ -286,12 +320,18 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
             raise IntakeError(f"channel(s) {', '.join(not_numeric)} are not numeric")
     else:
         channels = [c for c in df.columns if c != time_col and c not in excluded
-                    and pd.api.types.is_numeric_dtype(df[c]) and not pd.api.types.is_bool_dtype(df[c])]
+                    and pd.api.types.is_numeric_dtype(df[c])
+                    and not pd.api.types.is_bool_dtype(df[c])]
     if not channels:
         refuse_decimal_commas(df, [c for c in df.columns if c != time_col], path)
         raise IntakeError(f"{path}: no numeric channel found besides the time column "
                           f"{time_col!r}; check --sep, or name channels with --channels")
+    return channels, excluded
 
+
+def timed_rows(df: pd.DataFrame, time_col, channels: list, dialect, notes: list) -> tuple:
+    """(times, values [N, C] with NaN for anything not finite, rows dropped): rows whose time
+    does not parse are dropped, unless they are more than 1 % of the file (then it is refused)."""
     raw_times = df[time_col]
     times = parse_times(raw_times, dialect)
     bad_time = times.isna().to_numpy()
@@ -302,28 +342,29 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
                           f"{time_problem(raw_times.iloc[first], dialect)}; use ISO 8601 "
                           "(2026-03-02T10:00:00) or epoch seconds, or pick another column with "
                           "--time-col")
-    values = df[channels].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64, copy=True)
+    values = df[channels].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64,
+                                                                         copy=True)
     values[~np.isfinite(values)] = np.nan
-    keep = ~bad_time
-    times_np = times.to_numpy()[keep]
-    values = values[keep]
     if bad_time.any():
         notes.append(f"{int(bad_time.sum())} rows with unparsable times dropped")
+    return times.to_numpy()[~bad_time], values[~bad_time], int(bad_time.sum())
 
+
+def sorted_by_time(times_np: np.ndarray, values: np.ndarray, notes: list) -> tuple:
+    """(times, values, rows out of order): sorted, stably, with a note and a warning."""
     out_of_order = int((np.diff(times_np) < np.timedelta64(0)).sum())
     if out_of_order:
         order = np.argsort(times_np, kind="stable")
         times_np, values = times_np[order], values[order]
         notes.append(f"{out_of_order} rows were out of time order; sorted")
-        warnings.warn(f"{out_of_order} rows were out of time order; sorted them", stacklevel=2)
+        warnings.warn(f"{out_of_order} rows were out of time order; sorted them", stacklevel=3)
+    return times_np, values, out_of_order
 
-    dt = np.diff(times_np).astype("timedelta64[ns]").astype(np.int64) / 1e9
-    positive = dt[dt > 0]
-    if len(positive) == 0:
-        raise IntakeError(f"{path}: all rows share one timestamp; need a time series")
-    period = opts.period_s or snapped_period(float(np.median(positive)), notes)
 
-    # Put every row on the grid t0 + k * period; rows sharing a slot are averaged.
+def on_grid(times_np: np.ndarray, values: np.ndarray, period: float, spacing: float,
+            notes: list) -> tuple:
+    """(grid [n_slots, C], grid times, duplicate timestamps): every row on the grid
+    t0 + k * period; rows sharing a slot are averaged; empty slots are NaN."""
     t0 = times_np[0]
     offsets = (times_np - t0).astype("timedelta64[ns]").astype(np.int64) / 1e9
     # Round half up: each slot takes [t - P/2, t + P/2). np.rint rounds half to even, which
@@ -333,7 +374,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     if n_slots > 100 * len(slot) + 1000:
         raise IntakeError(f"a period of {fmt_period(period)} puts {len(slot)} rows on {n_slots} "
                           "grid points (mostly empty); the data's median spacing is "
-                          f"{fmt_period(float(np.median(positive)))}: use a period near that")
+                          f"{fmt_period(spacing)}: use a period near that")
     # Duplicates are rows repeating a timestamp; distinct times sharing a slot (a --period
     # coarser than the data) are resampling, not duplicates.
     duplicates = len(times_np) - len(np.unique(times_np))
@@ -342,47 +383,30 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     merged = len(np.unique(times_np)) - len(np.unique(slot))
     if merged:
         notes.append(f"{merged} rows averaged onto the {fmt_period(period)} grid")
-    grid = np.full((n_slots, len(channels)), np.nan)
+    grid = np.full((n_slots, values.shape[1]), np.nan)
     grid_df = pd.DataFrame(values).groupby(slot).mean()
     grid[grid_df.index.to_numpy()] = grid_df.to_numpy()
+    grid_times = pd.DatetimeIndex(t0 + (np.arange(n_slots) * period * 1e9)
+                                  .astype("timedelta64[ns]"))
+    return grid, grid_times, duplicates
 
+
+def fill_short_gaps(grid: np.ndarray, grid_times, max_fill_periods: int) -> tuple:
+    """Interpolate, in place, inside gaps of at most max_fill_periods grid points (a row missing
+    one channel counts as a gap too); longer gaps stay NaN and split the series. Returns
+    (missing rows mask, points filled, long gaps [first, last, points])."""
     missing = np.isnan(grid).any(axis=1)
-    filled = 0
-    long_gaps = []
-    grid_times = pd.DatetimeIndex(t0 + (np.arange(n_slots) * period * 1e9).astype("timedelta64[ns]"))
+    filled, long_gaps = 0, []
+    interpolated = pd.DataFrame(grid).interpolate(method="linear",
+                                                  limit_area="inside").to_numpy()
     for b, e in runs(missing):
-        if e - b <= opts.max_fill_periods and b > 0 and e < n_slots:
+        if e - b <= max_fill_periods and b > 0 and e < len(grid):
             filled += e - b
-        else:
-            long_gaps.append([str(grid_times[b]), str(grid_times[e - 1]), e - b])
-    # Interpolate inside short gaps only (a row missing one channel counts as a gap too);
-    # long gaps stay NaN and split the series.
-    frame = pd.DataFrame(grid)
-    interpolated = frame.interpolate(method="linear", limit_area="inside").to_numpy()
-    for b, e in runs(missing):
-        if e - b <= opts.max_fill_periods and b > 0 and e < n_slots:
             grid[b:e] = interpolated[b:e]
         else:
+            long_gaps.append([str(grid_times[b]), str(grid_times[e - 1]), e - b])
             grid[b:e] = np.nan
-
-    for j, name in enumerate(channels):
-        if np.isnan(grid[:, j]).all():
-            raise IntakeError(f"channel {name!r} has no numeric values; drop it with --channels")
-
-    segs = runs(~np.isnan(grid).any(axis=1))
-    ranges = {name: [float(np.nanmin(grid[:, j])), float(np.nanmax(grid[:, j]))]
-              for j, name in enumerate(channels)}
-    units = [unit_for(c, opts.units) for c in channels]
-    report = IntakeReport(
-        source=str(path), rows_read=int(len(df)), time_col=str(time_col),
-        channels=[str(c) for c in channels], units=units, excluded=[str(c) for c in excluded],
-        period_s=period, start=str(grid_times[0]), end=str(grid_times[-1]),
-        grid_points=n_slots, unparsable_times=int(bad_time.sum()), out_of_order=out_of_order,
-        duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
-        long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
-        time_zone=dialect.zone_name,
-    )
-    return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
+    return missing, filled, long_gaps
 
 
 # ----------------------------------------------------------------------------------------------
