@@ -459,56 +459,43 @@ def calibrate_policy(kind: str, scores: np.ndarray, **options: Any) -> Dict[str,
     if not np.all(np.isfinite(s)):
         raise ValueError("calibration scores contain NaN or inf; drop them first")
 
-    if kind == "pot":
-        min_peaks = _int("min_peaks", opts["min_peaks"], 3)
-        if s.size < 2 * min_peaks:
-            raise ValueError(f"{s.size} calibration scores are too few for a tail fit (need "
-                             f"{2 * min_peaks}); train with a longer history or a larger "
-                             "calibration fraction")
-        init_q = min(_prob("init_quantile", opts["init_quantile"]), 1.0 - min_peaks / s.size)
-        t = float(np.quantile(s, init_q))
-        n_peaks = int((s > t).sum())
-        pot = make_threshold(
-            {
-                "kind": "pot",
-                "q": min(_prob("q", opts["q"]), 0.5 * n_peaks / s.size),
-                "t": t,
-                "peaks": [float(v) for v in s[s > t] - t],
-                "n": int(s.size),
-                "max_peaks": opts["max_peaks"],
-                "refit_every": opts["refit_every"],
-            }
-        )
-        return {
+    return _calibrate_pot(s, opts) if kind == "pot" else _calibrate_level(kind, s, opts)
+
+
+def _calibrate_pot(s: np.ndarray, opts: Dict[str, Any]) -> Dict[str, Any]:
+    min_peaks = _int("min_peaks", opts["min_peaks"], 3)
+    if s.size < 2 * min_peaks:
+        raise ValueError(f"{s.size} calibration scores are too few for a tail fit (need "
+                         f"{2 * min_peaks}); train with a longer history or a larger "
+                         "calibration fraction")
+    init_q = min(_prob("init_quantile", opts["init_quantile"]), 1.0 - min_peaks / s.size)
+    t = float(np.quantile(s, init_q))
+    n_peaks = int((s > t).sum())
+    pot = make_threshold(
+        {
             "kind": "pot",
-            "q": pot.q,
-            "t": pot.t,
-            "peaks": pot.peaks,
-            "n": pot.n,
-            "max_peaks": pot.max_peaks,
-            "refit_every": pot.refit_every,
-            "n_peaks": pot.n_peaks,
+            "q": min(_prob("q", opts["q"]), 0.5 * n_peaks / s.size),
+            "t": t,
+            "peaks": [float(v) for v in s[s > t] - t],
+            "n": int(s.size),
+            "max_peaks": opts["max_peaks"],
+            "refit_every": opts["refit_every"],
         }
+    )
+    # plain Python numbers from the validated instance, so the policy is JSON as it stands
+    return {"kind": "pot", "q": pot.q, "t": pot.t, "peaks": pot.peaks, "n": pot.n,
+            "max_peaks": pot.max_peaks, "refit_every": pot.refit_every,
+            "n_peaks": pot.n_peaks}
+
+
+def _calibrate_level(kind: str, s: np.ndarray, opts: Dict[str, Any]) -> Dict[str, Any]:
+    """static, or rolling (whose starting level is the static one)."""
     quant = _prob("quantile", opts["quantile"])
     level = float(np.quantile(s, quant)) * _num("margin", opts["margin"], 0.0, lo_open=True)
     if kind == "static":
         return {"kind": "static", "level": make_threshold({"kind": "static", "level": level}).level}
-    rolling = make_threshold(
-        {
-            "kind": "rolling",
-            "level0": level,
-            "window": opts["window"],
-            "k": opts["k"],
-            "min_count": opts["min_count"],
-            "floor": opts["floor"],
-        }
-    )
-    # plain Python numbers from the validated instance, so the policy is JSON as it stands
-    return {
-        "kind": "rolling",
-        "level0": rolling.level0,
-        "window": rolling.window,
-        "k": rolling.k,
-        "min_count": rolling.min_count,
-        "floor": rolling.floor,
-    }
+    rolling = make_threshold({"kind": "rolling", "level0": level, "window": opts["window"],
+                              "k": opts["k"], "min_count": opts["min_count"],
+                              "floor": opts["floor"]})
+    return {"kind": "rolling", "level0": rolling.level0, "window": rolling.window,
+            "k": rolling.k, "min_count": rolling.min_count, "floor": rolling.floor}
