@@ -105,23 +105,35 @@ def batches(n: int, size: int, generator: torch.Generator):
 
 
 def fit_teacher(det: Teacher, x: torch.Tensor, cfg: TeacherConfig,
-                 progress: Optional[Progress] = None) -> dict:
-    g, e, d = det.generator, det.encoder, det.discriminator
+                progress: Optional[Progress] = None) -> dict:
+    """The adversarial phase (G against D), then encoder inversion (E, with G refined); one
+    seeded generator draws every batch and noise of both, in that order."""
     rng = torch.Generator().manual_seed(cfg.seed)
+    history = {"wall_s": {}}
+    for phase in (adversarial_phase, inversion_phase):
+        started = time.perf_counter()
+        name, rows = phase(det, x, cfg, rng, progress)
+        history[name] = rows
+        history["wall_s"][name] = time.perf_counter() - started
+    history["wall_s"]["total"] = sum(history["wall_s"].values())
+    history["train_windows"] = len(x)
+    history["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return history
+
+
+def adversarial_phase(det: Teacher, x: torch.Tensor, cfg: TeacherConfig, rng,
+                      progress: Optional[Progress]) -> tuple:
+    """G learns to fool D on windows of noise: ("adversarial", per-epoch mean losses)."""
+    g, d = det.generator, det.discriminator
     bce = nn.BCEWithLogitsLoss()
     opt_g = torch.optim.Adam(g.parameters(), lr=cfg.lr_generator, betas=(0.5, 0.9))
     opt_d = torch.optim.Adam(d.parameters(), lr=cfg.lr_discriminator, betas=(0.5, 0.9))
-    history = {"adversarial": [], "inversion": [], "wall_s": {}}
-    n, window = len(x), x.shape[1]
-
-    started = time.perf_counter()
+    rows = []
     for epoch in range(cfg.adversarial_epochs):
-        sums = {"d_loss": 0.0, "g_loss": 0.0}
-        count = 0
-        for idx in batches(n, cfg.batch_size, rng):
+        sums, count = {"d_loss": 0.0, "g_loss": 0.0}, 0
+        for idx in batches(len(x), cfg.batch_size, rng):
             real = x[idx]
-            z = torch.randn(len(idx), window, cfg.latent, generator=rng)
-            fake = g(z)
+            fake = g(torch.randn(len(idx), x.shape[1], cfg.latent, generator=rng))
             d_loss = (bce(d(real), torch.full((len(idx),), cfg.label_smoothing))
                       + bce(d(fake.detach()), torch.zeros(len(idx))))
             opt_d.zero_grad()
@@ -134,25 +146,28 @@ def fit_teacher(det: Teacher, x: torch.Tensor, cfg: TeacherConfig,
             sums["d_loss"] += float(d_loss.detach()) * len(idx)
             sums["g_loss"] += float(g_loss.detach()) * len(idx)
             count += len(idx)
-        row = {k: v / count for k, v in sums.items()}
-        history["adversarial"].append(row)
+        rows.append({k: v / count for k, v in sums.items()})
         if progress:
-            progress("adversarial", epoch + 1, cfg.adversarial_epochs, row)
-    history["wall_s"]["adversarial"] = time.perf_counter() - started
+            progress("adversarial", epoch + 1, cfg.adversarial_epochs, rows[-1])
+    return "adversarial", rows
 
-    started = time.perf_counter()
+
+def inversion_phase(det: Teacher, x: torch.Tensor, cfg: TeacherConfig, rng,
+                    progress: Optional[Progress]) -> tuple:
+    """E learns to invert G on noisy real windows (reconstruction + D's features + a latent
+    prior), G refined at a lower rate, D frozen: ("inversion", per-epoch mean losses)."""
+    g, e, d = det.generator, det.encoder, det.discriminator
     opt_e = torch.optim.Adam(
         [{"params": e.parameters(), "lr": cfg.lr_encoder},
          {"params": g.parameters(), "lr": cfg.lr_generator * cfg.refine_generator_lr_factor}])
     d.requires_grad_(False)
     sched = torch.optim.lr_scheduler.CosineAnnealingLR(opt_e, T_max=max(1, cfg.inversion_epochs))
+    rows = []
     for epoch in range(cfg.inversion_epochs):
-        sums = {"recon": 0.0, "feature": 0.0}
-        count = 0
-        for idx in batches(n, cfg.batch_size, rng):
+        sums, count = {"recon": 0.0, "feature": 0.0}, 0
+        for idx in batches(len(x), cfg.batch_size, rng):
             real = x[idx]
-            noisy = real + cfg.train_noise * torch.randn(real.shape, generator=rng)
-            z = e(noisy)
+            z = e(real + cfg.train_noise * torch.randn(real.shape, generator=rng))
             recon = g(z)
             rec_loss = ((recon - real) ** 2).mean()
             feat_loss = ((d.features(recon) - d.features(real)) ** 2).mean()
@@ -164,16 +179,11 @@ def fit_teacher(det: Teacher, x: torch.Tensor, cfg: TeacherConfig,
             sums["feature"] += float(feat_loss.detach()) * len(idx)
             count += len(idx)
         sched.step()
-        row = {k: v / count for k, v in sums.items()}
-        history["inversion"].append(row)
+        rows.append({k: v / count for k, v in sums.items()})
         if progress:
-            progress("inversion", epoch + 1, cfg.inversion_epochs, row)
+            progress("inversion", epoch + 1, cfg.inversion_epochs, rows[-1])
     d.requires_grad_(True)
-    history["wall_s"]["inversion"] = time.perf_counter() - started
-    history["wall_s"]["total"] = sum(history["wall_s"].values())
-    history["train_windows"] = n
-    history["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    return history
+    return "inversion", rows
 
 
 # ----------------------------------------------------------------------------------------------
