@@ -565,12 +565,22 @@ def plot_traces(result: EvalResult) -> bytes:
     return rep.figure_png(fig)
 
 
+DRIFT_TEXT = {"recentre": "a channel drifting out of its training range is reported once and "
+                          "re-centred onto it while the drift lasts",
+              "report": "a drifting channel is reported once and scored as it is"}
+
+
 def rule_html(result: EvalResult) -> str:
     steps = result.step_s
     step_s = steps.get("bundle hop", steps["point"])
     table = rep.html_table(["setting", "value", "meaning", "as time"],
                            [["threshold policy", result.rule.kind,
-                             rep.POLICY_TEXT.get(result.rule.kind, ""), "-"]]
+                             rep.POLICY_TEXT.get(result.rule.kind, ""), "-"],
+                            ["false-alarm budget", f"{result.rule.alarms_per_week:g} a week",
+                             "alarms a week on normal data the threshold is calibrated to",
+                             "-"],
+                            ["drift", result.rule.drift,
+                             DRIFT_TEXT.get(result.rule.drift, ""), "-"]]
                            + rep.alert_settings_rows(result.rule.alerting, step_s))
     note = (f"One step is one score: for the bundle one hop = {rep.duration(step_s)}; "
             if "bundle hop" in steps else "One step is one score: ")

@@ -240,10 +240,28 @@ def _check(bundle, args) -> int:
     print(f"  channels: {chans}")
     print(f"  window {summary['window']} x {summary['period_s']} s, hop {summary['hop']}, "
           f"threshold {summary['threshold']}, board {summary['board']}")
+    print("  " + detector_line(summary))
     mqtt = summary["mqtt"]
     print(f"  MQTT: available ({mqtt['client']})" if mqtt["available"]
           else f"  MQTT: not available. {mqtt['detail']}")
     return EXIT_OK
+
+
+def detector_line(summary: dict) -> str:
+    """The settings an operator asks about: budget, alert machine, what a drift does."""
+    a, budget = summary["alerting"], summary.get("false_alarms") or {}
+    parts = []
+    if budget.get("budget_per_week") is not None:
+        text = f"false-alarm budget {budget['budget_per_week']:g} a week on normal data"
+        if budget.get("expected_per_week_at_most") is not None:
+            text += f" (threshold expects at most {budget['expected_per_week_at_most']:.3g})"
+        parts.append(text)
+    parts.append(f"alert after {a['min_hops']} hops above, closed below "
+                 f"{a['close_ratio']:g} x threshold, cooldown {a['cooldown_hops']} hops")
+    drift = summary.get("drift")
+    parts.append("drift: " + ({"recentre": "reported and re-centred", "report":
+                               "reported, scored as it is"}.get(drift, "not watched")))
+    return "; ".join(parts)
 
 
 def trust_argv(args) -> List[str]:

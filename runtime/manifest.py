@@ -458,6 +458,10 @@ class Bundle:
             "window": self.window,
             "hop": self.hop,
             "threshold": self.threshold_policy.get("kind"),
+            "false_alarms": m.get("false_alarms"),
+            "alerting": dict(self.alerting),
+            "drift": (m["drift"].get("action", "report") if m.get("drift") is not None
+                      else None),
             "board": m["board"].get("name"),
             "files": len(m["files"]),
         }

@@ -316,6 +316,13 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
     assert ok.returncode == 0, ok.stderr
     assert "bundle OK" in ok.stdout and "signed" in ok.stdout
     assert DEFAULT_BOARD in ok.stdout
+    # the settings an operator asks about, as the manifest states them
+    manifest = json.loads((bundle["dir"] / "manifest.json").read_text())
+    budget = manifest["false_alarms"]["budget_per_week"]
+    assert f"false-alarm budget {budget:g} a week" in ok.stdout
+    assert (f"closed below {manifest['alerting']['close_ratio']:g} x threshold"
+            in ok.stdout)
+    assert "drift: reported and re-centred" in ok.stdout
 
     copy = tmp_path / "B"
     shutil.copytree(bundle["dir"], copy)

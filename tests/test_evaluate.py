@@ -2,6 +2,7 @@
 SKAB valve1 benchmark protocol (bundle through the gateway path vs teacher vs baselines)."""
 
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -117,6 +118,11 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
     assert (f'<tr><td class="short">min_hops</td><td class="num short">{alerting["min_hops"]}'
             '</td>') in page
     assert summary["rule"]["step_s"]["point"] == 60.0
+    # the budget and the drift action the bundle was compiled with, beside the alert machine
+    manifest = json.loads((synthetic["bundle"] / "manifest.json").read_text())
+    budget = manifest["false_alarms"]["budget_per_week"]
+    assert re.search(rf"false-alarm budget</td><td[^>]*>{budget:g} a week</td>", page)
+    assert re.search(rf"drift</td><td[^>]*>{manifest['drift']['action']}</td>", page)
     # what was tested
     said = summary["provenance"]
     from ganlet.runtime.manifest import load_bundle
