@@ -83,7 +83,8 @@ def evaluate_cmd(
 
     eval_from = int(start) if start is not None and start.isdigit() else start
     result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
-                                     threshold=threshold, baselines=not no_baselines,
+                                     threshold=threshold,
+                                     baselines=() if no_baselines else e.BASELINES,
                                      model_dir=model, alarms_per_week=alarms_per_week))
     typer.echo(result.summary())
     if json_out:

@@ -30,7 +30,7 @@ import json
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Optional
+from typing import Optional, Sequence
 
 import numpy as np
 import pandas as pd
@@ -352,12 +352,13 @@ def source_kind(path: Path) -> str:
 
 def evaluate(source: Path, data: Path, incidents, eval_from=None,
              eval_mask: Optional[np.ndarray] = None, threshold: str = "pot",
-             baselines: bool = True, teacher: bool = True,
+             baselines: Sequence[str] = BASELINES, teacher: bool = True,
              model_dir: Optional[Path] = None,
              alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK) -> EvalResult:
     """source: a model directory or a bundle (then model_dir, its teacher's folder, adds the
     teacher and the baselines). eval_from: first evaluated row (int) or time (str); eval_mask:
-    explicit grid points to evaluate (overrides eval_from). threshold and alarms_per_week are
+    explicit grid points to evaluate (overrides eval_from); baselines: which of BASELINES to
+    run (none: ()). threshold and alarms_per_week are
     for a model directory (a bundle uses its own)."""
     bundle, model, rule, notes = _source(source, model_dir, threshold, alarms_per_week)
     contract = bundle if bundle is not None else model
@@ -380,7 +381,7 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
             hop = bundle.hop if bundle is not None else 1
             methods["teacher"] = _teacher_method(model, feed, frame, rule, hop)
     if model is not None and baselines:
-        methods.update(_baseline_methods(model, frame, rule))
+        methods.update(_baseline_methods(model, frame, rule, baselines))
     if not methods:
         raise UnusableInput("nothing to evaluate")
     t = frame.times.values[evaluated]
@@ -492,7 +493,7 @@ def _teacher_method(model, feed: Path, frame: Frame, rule: Rule, hop: int) -> Me
                     bundle.threshold_policy["kind"], int(bundle.alerting["min_hops"]))
 
 
-def _baseline_methods(model, frame: Frame, rule: Rule) -> dict:
+def _baseline_methods(model, frame: Frame, rule: Rule, names: Sequence[str]) -> dict:
     train_levels, data_levels = level_views(model, frame)
     (f0, f1), (c0, c1) = model.spans.fit, model.spans.calibration
     fit = train_levels[f0:f1]
@@ -503,7 +504,7 @@ def _baseline_methods(model, frame: Frame, rule: Rule) -> dict:
     base_cal["rolling z-score"] = rolling_z(train_levels[:c1])[c0:c1]
     base_all["rolling z-score"] = rolling_z(data_levels)
     methods = {}
-    for name in BASELINES:
+    for name in names:
         pol, levels, alert = rule.apply(base_cal[name], base_all[name], frame.period_s)
         methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
     return methods

@@ -62,7 +62,7 @@ def train_and_compile(path: Path, train_rows: int, seed: int, out: Path, options
 def run_file(args) -> dict:
     """Train, compile and evaluate one file (in whichever process calls it): the test rows'
     labels and, per method, alerts and scores on them."""
-    path, out, seed, distil_epochs = args
+    path, out, seed, distil_epochs, baselines = args
     from ganlet.compile.data import grid_index
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.evaluate import evaluate
@@ -78,7 +78,8 @@ def run_file(args) -> dict:
     train_rows = grid_index(frame, times[:TRAIN_ROWS])
     mask = np.zeros(len(frame.times), bool)
     mask[rows] = True
-    r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir)
+    r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir,
+                 baselines=baselines)
     return {"labels": labels[TRAIN_ROWS:],
             "alert": {m.name: m.alert[rows] for m in r.methods.values()},
             "score": {m.name: m.scores[rows] for m in r.methods.values()},
@@ -114,13 +115,17 @@ def pooled(outs: list) -> dict:
 
 
 def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
-        files=None) -> dict:
-    """Every valve1 file at one seed, `workers` processes; pooled metrics per method."""
+        files=None, baselines=None) -> dict:
+    """Every valve1 file at one seed, `workers` processes; pooled metrics per method (the
+    baselines named, all of evaluate.BASELINES by default)."""
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
+    from ganlet.compile.evaluate import BASELINES
+
     files = files or valve1_files()
-    jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs)
+    baselines = BASELINES if baselines is None else tuple(baselines)
+    jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs, baselines)
             for f in files]
     ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
