@@ -63,24 +63,9 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
          f"events in {replay['events']}")
 
-    echo("== 5. parity: the gateway's scores and alerts (step 4) vs the workstation's")
     reports = out / "reports"
-    reports.mkdir(exist_ok=True)
-    # The replay's scores CSV is what a device would hand the integrator: verify takes it as
-    # the device's side rather than running the gateway a second time.
-    parity = verify_mod.verify(compiled.bundle, test_csv, device_scores=Path(replay["scores"]),
-                               model_dir=result.out)
-    verify_mod.write_json(parity, reports / "parity.json")
-    verify_mod.write_html(parity, reports / "parity.html")
-    echo(indent(parity.summary()))
-
-    echo("== 6. detection on the test span against the invented incidents")
-    detection = evaluate_mod.evaluate(compiled.bundle, Path(info["data"]),
-                                      Path(info["incidents"]), eval_from=info["test_start"],
-                                      model_dir=result.out)
-    evaluate_mod.write_json(detection, reports / "detection.json")
-    evaluate_mod.write_html(detection, reports / "detection.html")
-    echo(indent(detection.summary()))
+    parity, detection = write_reports(compiled.bundle, result.out, info, test_csv, replay,
+                                      reports, echo)
 
     paths = {"data": info["data"], "incidents": info["incidents"],
              "model": str(result.out), "training_plot": str(result.out / "training.png"),
@@ -96,6 +81,29 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
                "seconds": time.perf_counter() - started}
     (out / "demo_summary.json").write_text(json.dumps(summary, indent=2, default=str))
     return summary
+
+
+def write_reports(bundle: Path, model_dir: Path, info: dict, test_csv: Path, replay: dict,
+                  reports: Path, echo: Callable[[str], None]) -> tuple:
+    """Steps 5 and 6: the parity report (the replay's scores as the device's side) and the
+    detection report against the invented incidents; returns (parity, detection)."""
+    echo("== 5. parity: the gateway's scores and alerts (step 4) vs the workstation's")
+    reports.mkdir(exist_ok=True)
+    # The replay's scores CSV is what a device would hand the integrator: verify takes it as
+    # the device's side rather than running the gateway a second time.
+    parity = verify_mod.verify(bundle, test_csv, device_scores=Path(replay["scores"]),
+                               model_dir=model_dir)
+    verify_mod.write_json(parity, reports / "parity.json")
+    verify_mod.write_html(parity, reports / "parity.html")
+    echo(indent(parity.summary()))
+
+    echo("== 6. detection on the test span against the invented incidents")
+    detection = evaluate_mod.evaluate(bundle, Path(info["data"]), Path(info["incidents"]),
+                                      eval_from=info["test_start"], model_dir=model_dir)
+    evaluate_mod.write_json(detection, reports / "detection.json")
+    evaluate_mod.write_html(detection, reports / "detection.html")
+    echo(indent(detection.summary()))
+    return parity, detection
 
 
 def indent(text: str) -> str:

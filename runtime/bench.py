@@ -154,52 +154,9 @@ def bundle_kb(bundle, runtime_copy: bool = True) -> float:
 def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
               cold_start_run: bool = True, run_args: Sequence[str] = ()) -> Dict:
     """run_args: the signature options the child stream needs (cli.trust_argv)."""
-    backends = backends or available_backends(bundle)
-    results = {}
-    for name in backends:
-        scorer = make_scorer(bundle, name)
-        rule = ScoreRule(bundle.manifest["score"])
-        ms = np.asarray(time_hops(scorer, rule, bundle.window, len(bundle.channels), hops))
-        start_s, rss, how = (cold_start(bundle, scorer.name, run_args=run_args)
-                             if cold_start_run else (None, None, "this process's ru_maxrss"))
-        flops = Network(bundle.weights).flops_per_window(bundle.window)
-        m = {
-            "latency_ms_p50": float(np.percentile(ms, 50)),
-            "latency_ms_p99": float(np.percentile(ms, 99)),
-            "hops_per_s": float(1000.0 / ms.mean()),
-            "cold_start_s": start_s,
-            "peak_rss_mb": rss if rss is not None else _peak_rss_mb(),
-            "peak_rss_how": how,
-            "bench_rss_mb": _peak_rss_mb(),
-            "bundle_kb": bundle_kb(bundle),
-        }
-        m.update({
-            "hop_ms": m["latency_ms_p99"],
-            "ram_mb": m["peak_rss_mb"],
-            "storage_kb": bundle_kb(bundle, runtime_copy=False),
-            "flops_per_hop": flops,
-            "mflops_single_core": flops / (ms.mean() * 1e-3) / 1e6,
-            "onnxruntime": onnxruntime_available(),
-        })
-        results[scorer.name] = m
+    results = dict(measure_backend(bundle, name, hops, cold_start_run, run_args)
+                   for name in backends or available_backends(bundle))
     board = bundle.manifest.get("board", {})
-    budget = board.get("budget", {}) or {}
-    estimate = board.get("estimate", {}) or {}
-    comparison = {}
-    for name, measured in results.items():
-        rows = []
-        for key in sorted(set(budget) | set(estimate)):
-            m = measured.get(key)
-            b = budget.get(key)
-            ok = None
-            if m is not None and isinstance(b, (int, float)) and not isinstance(b, bool):
-                if key in HIGHER_IS_BETTER:
-                    ok = m >= b
-                elif key in LOWER_IS_BETTER:
-                    ok = m <= b
-            rows.append({"key": key, "budget": b, "estimate": estimate.get(key),
-                         "measured": m, "within_budget": ok})
-        comparison[name] = rows
     return {
         "bundle": bundle.manifest.get("name"),
         "bundle_id": bundle.bundle_id,
@@ -210,8 +167,59 @@ def run_bench(bundle, backends: Optional[List[str]] = None, hops: int = 200,
         "hops_timed": hops,
         "python": sys.version.split()[0],
         "backends": results,
-        "comparison": comparison,
+        "comparison": {name: against_board(measured, board)
+                       for name, measured in results.items()},
     }
+
+
+def measure_backend(bundle, name: str, hops: int, cold_start_run: bool,
+                    run_args: Sequence[str]) -> tuple:
+    """(backend name, its figures): per-hop latency, cold start, memory, size, throughput."""
+    scorer = make_scorer(bundle, name)
+    rule = ScoreRule(bundle.manifest["score"])
+    ms = np.asarray(time_hops(scorer, rule, bundle.window, len(bundle.channels), hops))
+    start_s, rss, how = (cold_start(bundle, scorer.name, run_args=run_args)
+                         if cold_start_run else (None, None, "this process's ru_maxrss"))
+    flops = Network(bundle.weights).flops_per_window(bundle.window)
+    m = {
+        "latency_ms_p50": float(np.percentile(ms, 50)),
+        "latency_ms_p99": float(np.percentile(ms, 99)),
+        "hops_per_s": float(1000.0 / ms.mean()),
+        "cold_start_s": start_s,
+        "peak_rss_mb": rss if rss is not None else _peak_rss_mb(),
+        "peak_rss_how": how,
+        "bench_rss_mb": _peak_rss_mb(),
+        "bundle_kb": bundle_kb(bundle),
+    }
+    m.update({
+        "hop_ms": m["latency_ms_p99"],
+        "ram_mb": m["peak_rss_mb"],
+        "storage_kb": bundle_kb(bundle, runtime_copy=False),
+        "flops_per_hop": flops,
+        "mflops_single_core": flops / (ms.mean() * 1e-3) / 1e6,
+        "onnxruntime": onnxruntime_available(),
+    })
+    return scorer.name, m
+
+
+def against_board(measured: dict, board: dict) -> list:
+    """One row per key the board budgets or estimates: budget, estimate, measured, and
+    whether the measured figure is within the budget (None when it cannot be judged)."""
+    budget = board.get("budget", {}) or {}
+    estimate = board.get("estimate", {}) or {}
+    rows = []
+    for key in sorted(set(budget) | set(estimate)):
+        m = measured.get(key)
+        b = budget.get(key)
+        ok = None
+        if m is not None and isinstance(b, (int, float)) and not isinstance(b, bool):
+            if key in HIGHER_IS_BETTER:
+                ok = m >= b
+            elif key in LOWER_IS_BETTER:
+                ok = m <= b
+        rows.append({"key": key, "budget": b, "estimate": estimate.get(key),
+                     "measured": m, "within_budget": ok})
+    return rows
 
 
 def _fmt(v) -> str:
