@@ -233,7 +233,8 @@ def plan_board(model: TrainedModel, board: Board) -> StudentPlan:
     """The board's rung of the ladder for this teacher and the data's own period."""
     cfg = model.teacher.config
     return size_student(board, len(model.channels), cfg.latent, cfg.window, model.period_s,
-                        (cfg.encoder_hidden, cfg.generator_hidden))
+                        (cfg.encoder_hidden, cfg.generator_hidden),
+                        history_rows=model.spans.calibration[1])
 
 
 def check_options(options: CompileOptions) -> str:

@@ -14,6 +14,7 @@ import math
 from dataclasses import asdict, dataclass, field
 
 from ganlet.compile.boards import Board
+from ganlet.runtime.thresholds import pot_peaks_at_most
 
 # Students below the teacher, largest first: (encoder widths, generator widths), widths grow
 # towards the output. A rung is used only when it has fewer parameters than the teacher (a
@@ -45,9 +46,9 @@ PACKING_OVERHEAD_BYTES = 30_000
 PER_ARRAY_BYTES = 400
 # Per channel: its name, unit, scaler centre and scale in the manifest and INSTALL.txt.
 PER_CHANNEL_BYTES = 200
-# The POT threshold carries up to max_peaks = 1000 calibration peaks (runtime/thresholds.py
-# default) as indented JSON lines of at most ~32 bytes each.
-THRESHOLD_PEAKS_BYTES = 1000 * 32
+# The POT threshold carries its calibration peaks (runtime/thresholds.pot_peaks_at_most of the
+# training hops, 1000 at most) as indented JSON lines of at most ~32 bytes each.
+BYTES_PER_PEAK = 32
 
 
 class DoesNotFit(ValueError):
@@ -121,8 +122,16 @@ def network_counts(n_channels: int, latent: int, enc: tuple, gen: tuple):
     return params, rows, biases, macs
 
 
+def threshold_bytes(history_rows: int | None, hop: int) -> int:
+    """The POT peaks' share of the manifest: the training rows give one score a hop (no
+    history given: the most a policy keeps)."""
+    rows = 10**9 if history_rows is None else history_rows
+    return BYTES_PER_PEAK * pot_peaks_at_most(math.ceil(rows / hop))
+
+
 def plan_for(board: Board, n_channels: int, latent: int, enc: tuple, gen: tuple,
-             window: int, hop: int, period_s: float) -> StudentPlan:
+             window: int, hop: int, period_s: float,
+             history_rows: int | None = None) -> StudentPlan:
     params, rows, biases, macs = network_counts(n_channels, latent, enc, gen)
     matrix_params = params - biases
     weights_bytes = matrix_params + 4 * rows + 4 * biases
@@ -130,7 +139,7 @@ def plan_for(board: Board, n_channels: int, latent: int, enc: tuple, gen: tuple,
     # Arrays: W, R, B, W.scale, R.scale per LSTM layer; W, b, W.scale per head.
     arrays = 5 * (len(enc) + len(gen)) + 2 * 3
     storage = (2 * weights_bytes + PACKING_OVERHEAD_BYTES + PER_ARRAY_BYTES * arrays
-               + PER_CHANNEL_BYTES * n_channels + THRESHOLD_PEAKS_BYTES)
+               + PER_CHANNEL_BYTES * n_channels + threshold_bytes(history_rows, hop))
     widest = max((*enc, *gen, n_channels, latent))
     # float32 dequantised weights + per-step gate activations of one window + ring buffer
     activations = 4 * window * (4 * widest + 2 * widest + 2 * n_channels) * 2
@@ -161,34 +170,38 @@ def fits(plan: StudentPlan, board: Board) -> bool:
 
 
 def size_student(board: Board, n_channels: int, latent: int, window: int, period_s: float,
-                 teacher: tuple, max_hop: int | None = None) -> StudentPlan:
+                 teacher: tuple, max_hop: int | None = None,
+                 history_rows: int | None = None) -> StudentPlan:
     """The largest rung of the ladder that fits, at the smallest hop that fits compute.
-    teacher = (encoder widths, generator widths) of the teacher: the top rung."""
+    teacher = (encoder widths, generator widths) of the teacher: the top rung; history_rows =
+    the training rows the threshold is calibrated on (None: the largest threshold there is)."""
     max_hop = max_hop or max(1, window // 4)
     rungs = ladder(n_channels, latent, teacher)
     for enc, gen, is_teacher in rungs:
         for hop in range(1, max_hop + 1):
-            plan = plan_for(board, n_channels, latent, enc, gen, window, hop, period_s)
+            plan = plan_for(board, n_channels, latent, enc, gen, window, hop, period_s,
+                            history_rows)
             if fits(plan, board):
                 plan.teacher = is_teacher
                 if not is_teacher:
                     plan.teacher_refused = problems(board, n_channels, latent, rungs[0][:2],
-                                                    window, max_hop, period_s, "the teacher")
+                                                    window, max_hop, period_s, "the teacher",
+                                                    history_rows)
                 return plan
     smallest = rungs[-1][:2]
     raise DoesNotFit(f"nothing fits board {board.name!r}: "
                      + "; ".join(problems(board, n_channels, latent, smallest, window, max_hop,
-                                          period_s, "the smallest student"))
+                                          period_s, "the smallest student", history_rows))
                      + f" (smallest student: enc {list(smallest[0])}, gen {list(smallest[1])}, "
                        f"window {window})")
 
 
 def problems(board: Board, n_channels: int, latent: int, rung: tuple, window: int,
-             max_hop: int, period_s: float, who: str) -> list:
+             max_hop: int, period_s: float, who: str, history_rows: int | None = None) -> list:
     """Each budget a rung breaks even at its longest hop, with the figure that would fit.
     Needs are rounded up, so a budget of the stated size does fit (rounding to nearest could
     name a figure just below what is needed)."""
-    plan = plan_for(board, n_channels, latent, *rung, window, max_hop, period_s)
+    plan = plan_for(board, n_channels, latent, *rung, window, max_hop, period_s, history_rows)
     found = []
     if plan.storage_bytes > board.storage_budget_kb * 1024:
         found.append(f"storage: {who} needs {math.ceil(plan.storage_bytes / 1024)} KB of "

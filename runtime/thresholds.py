@@ -462,6 +462,17 @@ def calibrate_policy(kind: str, scores: np.ndarray, **options: Any) -> Dict[str,
     return _calibrate_pot(s, opts) if kind == "pot" else _calibrate_level(kind, s, opts)
 
 
+def pot_peaks_at_most(n_scores: int) -> int:
+    """At most how many peaks calibrate_policy("pot", ...) keeps from n_scores scores at its
+    default options (what the manifest carries): np.quantile's linear interpolation puts t at
+    or above the sorted score number floor(p (n - 1)), so at most n - 1 - floor(p (n - 1))
+    scores lie above it, p being the quantile _calibrate_pot uses."""
+    opts = _CALIBRATION_DEFAULTS["pot"]
+    n = max(int(n_scores), 2 * opts["min_peaks"])
+    p = min(opts["init_quantile"], 1.0 - opts["min_peaks"] / n)
+    return int(min(opts["max_peaks"], n - 1 - math.floor(p * (n - 1))))
+
+
 def _calibrate_pot(s: np.ndarray, opts: Dict[str, Any]) -> Dict[str, Any]:
     min_peaks = _int("min_peaks", opts["min_peaks"], 3)
     if s.size < 2 * min_peaks:

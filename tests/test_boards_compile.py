@@ -64,7 +64,7 @@ def boards(model_dir, tmp_path_factory):
 
     def storage_kb(rung):
         return plan_for(roomy, 3, cfg.latent, *rungs[rung][:2], cfg.window, 1,
-                        model.period_s).storage_bytes / 1024
+                        model.period_s, model.spans.calibration[1]).storage_bytes / 1024
 
     paths = {"roomy": root / "roomy.toml"}
     for name, rung in (("tight", 0), ("tight-twin", 0), ("tighter", 1)):

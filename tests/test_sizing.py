@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import re
 
+import numpy as np
 import pytest
 from synthetic import correlated_series
 from typer.testing import CliRunner
@@ -19,6 +20,7 @@ from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.layout import network_weights
 from ganlet.compile.model import LSTMStack, TeacherConfig
 from ganlet.compile.sizing import (
+    BYTES_PER_PEAK,
     STUDENT_RUNGS,
     DoesNotFit,
     fits,
@@ -29,6 +31,7 @@ from ganlet.compile.sizing import (
 )
 from ganlet.compile.train import save_model, train
 from ganlet.runtime.lstm import Network
+from ganlet.runtime.thresholds import calibrate_policy, pot_peaks_at_most
 
 # A board that holds everything; tests shrink one budget at a time.
 ROOMY = {
@@ -275,3 +278,25 @@ def test_cli_budgets_lists_every_shipped_board_and_the_default():
     smallest = min(list_boards(), key=lambda b: (b.storage_budget_kb, b.ram_budget_mb))
     assert smallest.name == DEFAULT_BOARD
 
+
+
+@pytest.mark.parametrize("n", [20, 21, 57, 400, 499, 500, 501, 6017, 49_999, 60_000])
+def test_the_peak_bound_holds_for_what_pot_calibration_keeps(n):
+    """pot_peaks_at_most bounds the peaks calibrate_policy("pot") writes into the manifest,
+    for any score distribution with ties or without (t from numpy.quantile's interpolation)."""
+    rng = np.random.default_rng(n)
+    for scores in (rng.exponential(size=n), np.round(rng.exponential(size=n), 1),
+                   np.sort(rng.normal(size=n))):
+        kept = len(calibrate_policy("pot", scores)["peaks"])
+        assert kept <= pot_peaks_at_most(n)
+    assert pot_peaks_at_most(n) <= 1000
+
+
+def test_the_threshold_share_of_flash_follows_the_training_history(tmp_path):
+    """A short history calibrates few peaks; no history counts the most a policy keeps."""
+    board = load_board(write_board(tmp_path / "r.toml"))
+    unknown = plan_for(board, 4, 2, *TEACHER, 32, 1, 60.0)
+    short = plan_for(board, 4, 2, *TEACHER, 32, 1, 60.0, history_rows=400)
+    hop4 = plan_for(board, 4, 2, *TEACHER, 32, 4, 60.0, history_rows=20_000)
+    assert unknown.storage_bytes - short.storage_bytes == BYTES_PER_PEAK * (1000 - 10)
+    assert unknown.storage_bytes - hop4.storage_bytes == BYTES_PER_PEAK * (1000 - 100)
