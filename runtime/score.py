@@ -5,9 +5,16 @@ each window's reconstruction r = G(E(x)). This module is the one place that turn
 score every backend reports, so teacher, student, ONNX and numpy can only differ by their
 network arithmetic:
 
-    res[c] = mean over the newest `steps` steps of (x - r)^2     (manifest score.steps; all
-             steps when absent). The LSTMs are causal: the newest steps are reconstructed with
-             the most context, and a fault that has left them no longer holds the score up.
+    e      = x - r over the newest k = `steps` steps (manifest score.steps; all steps when
+             absent). The LSTMs are causal: the newest steps are reconstructed with the most
+             context, and a fault that has left them no longer holds the score up.
+    res[c] = mean_t e^2                        statistic "mse" (bundles without the key)
+    res[c] = mean_t e^2 + k (mean_t e)^2       statistic "mse+offset"
+The second adds the matched filter for an error that holds one sign over the k steps (a
+channel off its reconstruction, as a stuck, sagging or blocked sensor is) to the energy
+detector: on white error of variance s^2 both terms have expectation s^2, so noise and a single
+spike a (2 a^2 / k) count twice, while a held offset b counts (k + 1) b^2: against the noise
+it stands out (k + 1) / 2 times more than under "mse", a spike as much as before.
 
 Uncalibrated (manifest score = {"combine": "mean"}): parts[c] = res[c], score = mean of parts.
 
@@ -15,7 +22,7 @@ Calibrated (the manifest's score section carries "regimes"): each channel's erro
 units of its own normal error in the window's operating regime, so a quiet channel's departure
 counts as much as a noisy one's and the score has one scale in every regime:
 
-    u[c]   = sqrt(res[c])                       RMS error of channel c, scaled units
+    u[c]   = sqrt(res[c])                       channel c's error (RMS under "mse"), scaled units
     g      = the regime whose centre is nearest to the window's per-channel means
     parts[c] = u[c] / scale[g][c]               "times the channel's normal error in regime g"
     score  = combine(parts): rms (default), mean or max over channels
@@ -28,15 +35,22 @@ from typing import Optional, Tuple
 import numpy as np
 
 COMBINE_RULES = ("mean", "rms", "max")
-RESIDUAL_TEXT = ("mean over the newest `steps` steps of the window (all steps without `steps`) "
-                 "of the squared reconstruction error x - G(E(x)), per channel, on robust-scaled "
-                 "inputs")
+STATISTICS = ("mse", "mse+offset")
+RESIDUAL_TEXT = {
+    "mse": ("mean over the newest `steps` steps of the window (all steps without `steps`) of the "
+            "squared reconstruction error e = x - G(E(x)), per channel, on robust-scaled inputs"),
+    "mse+offset": ("mean over the newest k = `steps` steps of the window of e^2, plus k times "
+                   "the square of e's mean over those steps, where e = x - G(E(x)), per channel, "
+                   "on robust-scaled inputs"),
+}
 
 
 def score_section(centres=None, scale=None, combine: str = "mean",
-                  steps: Optional[int] = None) -> dict:
+                  steps: Optional[int] = None, statistic: str = "mse") -> dict:
     """The manifest's `score` section: uncalibrated, or with regime centres and scales."""
-    section = {"residual": RESIDUAL_TEXT, "combine": combine}
+    section = {"residual": RESIDUAL_TEXT[statistic], "combine": combine}
+    if statistic != "mse":
+        section["statistic"] = statistic
     if steps is not None:
         section["steps"] = int(steps)
     if centres is not None:
@@ -54,6 +68,10 @@ class ScoreRule:
             raise ValueError(f"score.combine {combine!r} unknown; this runtime knows "
                              f"{', '.join(COMBINE_RULES)}")
         self.combine = combine
+        self.statistic = section.get("statistic", "mse")
+        if self.statistic not in STATISTICS:
+            raise ValueError(f"score.statistic {self.statistic!r} unknown; this runtime knows "
+                             f"{', '.join(STATISTICS)}")
         self.steps = section.get("steps")
         if self.steps is not None and not (isinstance(self.steps, int) and self.steps >= 1):
             raise ValueError(f"score.steps must be an integer >= 1, got {self.steps!r}")
@@ -73,14 +91,18 @@ class ScoreRule:
         return self.scale is not None
 
     def residuals(self, windows, recon) -> np.ndarray:
-        """[N, L, C] windows and reconstructions -> [N, C] mean squared error of the newest
+        """[N, L, C] windows and reconstructions -> [N, C] residual statistic of the newest
         `steps` steps (float32, as the ONNX graph's ReduceMean)."""
         x = np.asarray(windows, dtype=np.float32)
         r = np.asarray(recon, dtype=np.float32)
         if self.steps is not None:
             x, r = x[:, -self.steps:], r[:, -self.steps:]
         err = x - r
-        return np.mean(err * err, axis=1, dtype=np.float32)
+        res = np.mean(err * err, axis=1, dtype=np.float32)
+        if self.statistic == "mse+offset":
+            offset = np.mean(err, axis=1, dtype=np.float32)
+            res = res + np.float32(err.shape[1]) * offset * offset
+        return res
 
     def score(self, windows, recon) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(scores [N], parts [N, C], residuals [N, C]) of windows and their reconstructions;

@@ -242,6 +242,42 @@ def test_network_shapes_residuals_and_score():
     np.testing.assert_allclose(net.reconstruct(x[2:3]), recon[2:3], atol=1e-6)
 
 
+def test_offset_statistic_against_pandas_and_its_white_noise_expectation():
+    """score.statistic "mse+offset" (runtime/score.py): per channel, the newest k steps' mean
+    squared error plus k times their mean error squared. Reference: pandas' population variance
+    and mean (mean e^2 = var + mean^2, so the statistic is var + (k + 1) mean^2)."""
+    import pandas as pd
+
+    rng = np.random.default_rng(7)
+    x = rng.normal(size=(4, 12, 3)).astype(np.float32)
+    r = (x + rng.normal(0.3, 0.5, size=x.shape)).astype(np.float32)
+    k = 5
+    rule = ScoreRule(score_section(steps=k, statistic="mse+offset"))
+    got = rule.residuals(x, r)
+    for n in range(4):
+        e = pd.DataFrame((x[n, -k:] - r[n, -k:]).astype(np.float64))
+        np.testing.assert_allclose(got[n], e.var(ddof=0) + (k + 1) * e.mean() ** 2, rtol=1e-5)
+    # white error of variance s^2: both terms have expectation s^2 (the noise counts twice)
+    s, k = 0.5, 8
+    e = rng.normal(0.0, s, size=(20000, k, 1)).astype(np.float32)
+    zero = np.zeros_like(e)
+    plain = ScoreRule(score_section(steps=k)).residuals(e, zero)
+    both = ScoreRule(score_section(steps=k, statistic="mse+offset")).residuals(e, zero)
+    assert abs(plain.mean() / s**2 - 1) < 0.03 and abs(both.mean() / (2 * s**2) - 1) < 0.03
+    # a held offset b counts (k + 1) b^2, against b^2 without the offset term
+    held = np.full((1, k, 1), 0.25, np.float32)
+    np.testing.assert_allclose(ScoreRule(score_section(steps=k, statistic="mse+offset"))
+                               .residuals(held, np.zeros_like(held)), [[(k + 1) * 0.0625]],
+                               rtol=1e-6)
+
+
+def test_a_score_section_without_a_statistic_is_the_mse_of_older_bundles():
+    section = score_section(steps=4)
+    assert "statistic" not in section and ScoreRule(section).statistic == "mse"
+    with pytest.raises(ValueError, match="mse, mse\\+offset"):
+        ScoreRule({**section, "statistic": "median"})
+
+
 def test_network_flops_estimate():
     w = random_weights(np.random.default_rng(4))
     net = Network(w)
