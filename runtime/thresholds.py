@@ -429,8 +429,14 @@ _CALIBRATION_DEFAULTS: Dict[str, Dict[str, Any]] = {
         "min_count": 32,
         "floor": 0.0,
     },
+    # refit_every = max_peaks: the tail is refitted once the stream has brought as many new
+    # peaks as the fit holds. Each peak moved the fit before, and a calibration of a few hundred
+    # scores gives a dozen peaks, whose shape estimate is mostly sampling noise (its standard
+    # error ~ (1 + xi) / sqrt(peaks), about 0.3 at ten): the first few stream peaks, often a
+    # fault's onset still below the level, then swung the level by several times (SKAB valve1
+    # file 13: from 2.6 to 10.8 before the fault began, which it then missed).
     "pot": {"q": 1e-3, "init_quantile": 0.98, "min_peaks": 10, "max_peaks": 1000,
-            "refit_every": 1},
+            "refit_every": 1000},
 }
 
 
@@ -444,7 +450,7 @@ def calibrate_policy(kind: str, scores: np.ndarray, **options: Any) -> Dict[str,
              for the tail fit (a GPD fit on fewer is not worth having: common practice, from
              memory); peaks = scores above t minus t; n = len(scores); q (1e-3) is capped at
              half the exceedance rate over t, so the level lies in the fitted tail;
-             max_peaks (1000), refit_every (1). Needs n >= 2 * min_peaks.
+             max_peaks (1000), refit_every (1000). Needs n >= 2 * min_peaks.
     """
     if kind not in _CALIBRATION_DEFAULTS:
         raise ValueError(f"unknown threshold kind {kind!r}; choose one of {sorted(_KINDS)}")

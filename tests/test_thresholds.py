@@ -146,6 +146,28 @@ def test_pot_absorbs_peaks_and_not_flagged_scores():
     assert thr.peaks[-2:] == pytest.approx([0.1, 0.2])
 
 
+def test_a_short_calibration_tail_is_not_refitted_on_a_few_stream_peaks():
+    """A few hundred calibration scores give about ten peaks; under the default policy the
+    stream's first peaks (here 40 scores between t and the level: a fault's onset still below
+    it) are counted (the exceedance rate) but leave the tail's fitted shape and scale as
+    calibrated, until as many new peaks as the fit holds have come. With a refit on every peak
+    (refit_every=1, the old default) the shape swings (here from about 0.3 to the bounded
+    limit -1, the level halving)."""
+    rng = np.random.default_rng(5)
+    cal = rng.exponential(size=370)
+    default, every = (make_threshold(calibrate_policy("pot", cal, q=1e-4, **o))
+                      for o in ({}, {"refit_every": 1}))
+    assert default.refit_every == default.max_peaks == 1000 and len(default.peaks) <= 11
+    level0, peaks0, fit0 = default.level, default.n_peaks, (default.xi, default.sigma)
+    assert fit0 == fit_gpd(np.array(cal[cal > default.t] - default.t))
+    for s in np.linspace(default.t + 0.05, level0 - 0.01, 40):
+        default.update(s)
+        every.update(s)
+    assert default.n_peaks == peaks0 + 40   # every onset score absorbed, none flagged
+    assert (default.xi, default.sigma) == fit0
+    assert abs(every.xi - fit0[0]) > 0.5 and every.level < 0.6 * level0
+
+
 def test_pot_max_peaks_keeps_most_recent():
     peaks = [float(v) for v in np.arange(1, 21)]
     thr = PotThreshold(q=1e-3, t=0.0, peaks=peaks, n=1000, max_peaks=5)
