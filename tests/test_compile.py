@@ -204,6 +204,7 @@ def test_manifest_describes_the_detector(teacher, bundle):
     assert m["network"]["encoder"] == list(plan.encoder_hidden)
     assert m["network"]["generator"] == list(plan.generator_hidden)
     assert m["score"]["combine"] == "rms" and "residual" in m["score"]
+    assert m["score"]["statistic"] == "mse+offset"
     regimes = m["score"]["regimes"]
     assert np.shape(regimes["centres"]) == np.shape(regimes["scale"])
     assert np.shape(regimes["centres"])[1] == 3 and (np.asarray(regimes["scale"]) > 0).all()

@@ -93,11 +93,15 @@ def test_parity_passes_and_reports(built, tmp_path):
 
 
 def written_out_score(section: dict, windows: np.ndarray, recon: np.ndarray) -> np.ndarray:
-    """The score definition of runtime/score.py, written out here in float64 numpy: mean
-    squared error of the newest `steps` steps, RMS error in units of the nearest regime's
-    scale, root mean square over channels."""
+    """The score definition of runtime/score.py, written out here in float64 numpy: over the
+    newest k = `steps` steps, the mean squared error (+ k times the mean error squared under
+    statistic "mse+offset"), its root in units of the nearest regime's scale, root mean square
+    over channels."""
     steps = section["steps"]
-    res = ((windows[:, -steps:].astype(np.float64) - recon[:, -steps:]) ** 2).mean(axis=1)
+    err = windows[:, -steps:].astype(np.float64) - recon[:, -steps:]
+    res = (err ** 2).mean(axis=1)
+    if section.get("statistic") == "mse+offset":
+        res = res + steps * err.mean(axis=1) ** 2
     centres = np.asarray(section["regimes"]["centres"])
     scale = np.asarray(section["regimes"]["scale"])
     means = windows.astype(np.float64).mean(axis=1)
