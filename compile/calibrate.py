@@ -18,7 +18,6 @@ device's int8 student, or the teacher for `ganlet evaluate` on a model directory
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Optional
 
@@ -75,6 +74,21 @@ def risk_per_hop(alarms_per_week: float, period_s: float, hop: int) -> float:
     if not alarms_per_week > 0:
         raise ValueError(f"--false-alarms-per-week must be > 0, got {alarms_per_week}")
     return float(alarms_per_week) * period_s * hop / SECONDS_PER_WEEK
+
+
+def budget_record(alarms_per_week: float, risk: float, policy: dict, hop_s: float) -> dict:
+    """The manifest's false_alarms section. `measurable_per_week`: the rarest alarm rate the
+    calibration scores can show, one in n + 1 hops (the chance that a new score from the same
+    distribution beats all n); a budget below it rests on the tail model's extrapolation alone,
+    which a short history cannot check (SKAB's 400-row files: 369 scores, so a budget of 1 a
+    week at one score a second is 1,600 times finer than they show)."""
+    hops_per_week = SECONDS_PER_WEEK / hop_s
+    pot = policy["kind"] == "pot"
+    n = int(policy["n"]) if pot else None
+    return {"budget_per_week": float(alarms_per_week), "risk_per_hop": risk,
+            "expected_per_week_at_most": policy["q"] * hops_per_week if pot else None,
+            "calibration_scores": n,
+            "measurable_per_week": hops_per_week / (n + 1) if pot else None}
 
 
 def policy_for(kind: str, scores: np.ndarray, risk: Optional[float] = None) -> dict:
@@ -259,10 +273,7 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
     policy = policy_for(kind, tail_scores(scores, res[~cal], hop_means[~cal], centres, steps),
                         risk if kind == "pot" else None)
-    hops_per_week = SECONDS_PER_WEEK / (model.period_s * hop)
-    false_alarms = {"budget_per_week": float(alarms_per_week), "risk_per_hop": risk,
-                    "expected_per_week_at_most": (policy.get("q", math.nan) * hops_per_week
-                                                  if policy["kind"] == "pot" else None)}
+    false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
     report = {"regimes": regimes, "threshold_kind": policy["kind"],
               "calibration_scores": int(cal.sum()), "false_alarms": false_alarms}
     return Calibration(score, drift, policy, {**default_alerting(window, hop), **(alerting or {})},

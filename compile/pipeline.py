@@ -51,6 +51,7 @@ from ganlet.compile.sizing import StudentPlan, size_student
 from ganlet.compile.student_cache import StudentStore
 from ganlet.compile.threads import torch_threads
 from ganlet.compile.train import TrainedModel, load_model, plot_training, save_model, train
+from ganlet.runtime.cli import extrapolation_note
 from ganlet.runtime.drift import DRIFT_ACTIONS
 from ganlet.runtime.manifest import MANIFEST_NAME, build_manifest
 from ganlet.runtime.scorer import NetworkScorer
@@ -221,7 +222,8 @@ class CompileResult:
         lines += [
             f"score: {r['regimes']['regimes']} operating regime(s); threshold: "
             f"{r['threshold_kind']} calibrated on {r['calibration_scores']} scores for at most "
-            f"{r['false_alarms']['budget_per_week']:g} false alarm(s) per week on normal data",
+            f"{r['false_alarms']['budget_per_week']:g} false alarm(s) per week on normal data"
+            + extrapolation_note(r["false_alarms"]),
             f"bundle {self.bundle}: {r['bytes']['model_and_weights'] / 1024:.1f} KiB without "
             f"the runtime copy ({r['bytes']['total'] / 1024:.1f} KiB in all)"
             + (f"; archive {self.archive}" if self.archive else ""),

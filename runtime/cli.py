@@ -255,13 +255,24 @@ def detector_line(summary: dict) -> str:
         text = f"false-alarm budget {budget['budget_per_week']:g} a week on normal data"
         if budget.get("expected_per_week_at_most") is not None:
             text += f" (threshold expects at most {budget['expected_per_week_at_most']:.3g})"
-        parts.append(text)
+        parts.append(text + extrapolation_note(budget))
     parts.append(f"alert after {a['min_hops']} hops above, closed below "
                  f"{a['close_ratio']:g} x threshold, cooldown {a['cooldown_hops']} hops")
     drift = summary.get("drift")
     parts.append("drift: " + ({"recentre": "reported and re-centred", "report":
                                "reported, scored as it is"}.get(drift, "not watched")))
     return "; ".join(parts)
+
+
+def extrapolation_note(budget: dict) -> str:
+    """Said when the budget is finer than the calibration scores can show (compile/calibrate's
+    measurable_per_week): the threshold then rests on its tail model alone."""
+    shown = budget.get("measurable_per_week")
+    if shown is None or not shown > budget["budget_per_week"]:
+        return ""
+    return (f"; the {budget['calibration_scores']} calibration scores show rates down to "
+            f"{shown:.3g} a week only: below that the level is extrapolated, so expect more "
+            "alarms than budgeted until compiled from a longer normal history")
 
 
 def trust_argv(args) -> List[str]:

@@ -145,6 +145,22 @@ def test_false_alarm_budget_to_risk_per_hop():
         risk_per_hop(0.0, 1.0, 1)
 
 
+def test_a_budget_finer_than_the_calibration_can_show_is_said_to_be_extrapolated():
+    from ganlet.compile.calibrate import budget_record
+    from ganlet.runtime.cli import extrapolation_note
+
+    # worked by hand: 60-s hops, 10,080 a week; 369 scores show rates down to 10080 / 370
+    short = budget_record(1.0, 1 / 10080, {"kind": "pot", "q": 1 / 10080, "n": 369}, 60.0)
+    assert short["measurable_per_week"] == pytest.approx(10080 / 370)
+    assert "369 calibration scores show rates down to 27.2 a week" in extrapolation_note(short)
+    # a year of minutes shows rates down to 10080 / 525601 a week: no note
+    year = budget_record(1.0, 1 / 10080, {"kind": "pot", "q": 1 / 10080, "n": 525600}, 60.0)
+    assert extrapolation_note(year) == ""
+    # static and rolling policies have no tail model to extrapolate with
+    assert budget_record(1.0, 1 / 10080, {"kind": "static", "level": 2.0}, 60.0)[
+        "measurable_per_week"] is None
+
+
 def two_regimes(n: int, seed: int, block: int = 240) -> tuple:
     """Three channels following one slow signal; alternate blocks of a quiet regime (noise sd
     0.05) and a busy one (level +6, noise sd 0.5: ten times the quiet noise). Returns
