@@ -143,8 +143,8 @@ def skab(tmp_path_factory):
     if not (skab_protocol.SKAB / "valve1").is_dir():
         pytest.skip("SKAB data not found at ../shared/data/skab (test data beside the repo, "
                     "not part of it)")
-    # every default a user gets, the 80 distillation epochs included (with 20 the student's F1
-    # fell 0.025 short of the teacher's at seed 0, with 80 it is 0.004 short);
+    # every default a user gets: the default board holds these files' teacher itself (int8,
+    # nothing distilled; the 80 distillation epochs would serve a smaller board);
     # benchmarks/bench_skab.py runs the same over three seeds and every baseline; here only
     # the one the tests compare with (the others cost about a minute of POT refits)
     metrics = skab_protocol.run(0, tmp_path_factory.mktemp("skab"), workers=2,
@@ -159,7 +159,7 @@ BUNDLE = skab_protocol.BUNDLE
 
 
 def test_skab_bundle_f1_within_002_of_teacher(skab):
-    # issue 11: the int8 student through the gateway path tracks the teacher
+    # issue 11: the int8 bundle through the gateway path tracks the teacher
     assert abs(skab[BUNDLE]["f1"] - skab["teacher"]["f1"]) <= 0.02, skab
 
 
