@@ -129,12 +129,17 @@ def replay_through_bundle(bundle: Path, data: Path, out: Path) -> dict:
             "alert_db": str(out / "alerts.sqlite")}
 
 
+def moved_channel(alert: dict) -> str:
+    """The alert's `moved` channel (the gateway's counterfactual), else its top share."""
+    return (alert.get("moved") or alert["channels"][0])["name"]
+
+
 def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:
     """A plain table: each incident with the alerts that overlap it, then the other alerts."""
     with open(incidents_csv, newline="") as fh:
         incidents = list(csv.DictReader(fh))
     used = set()
-    lines = [f"   {'incident':<14} {'start':<17} {'end':<17} alert(s) [top channel, delay]"]
+    lines = [f"   {'incident':<14} {'start':<17} {'end':<17} alert(s) [moved channel, delay]"]
     for inc in incidents:
         start, end = pd.Timestamp(inc["start"]), pd.Timestamp(inc["end"])
         hits = []
@@ -144,7 +149,7 @@ def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:
             if opened <= end and closed >= start:
                 used.add(a["alert_id"])
                 delay = max(0.0, (opened - start).total_seconds() / 60)
-                hits.append(f"{opened:%m-%d %H:%M} [{a['channels'][0]['name']}, +{delay:.0f} min]")
+                hits.append(f"{opened:%m-%d %H:%M} [{moved_channel(a)}, +{delay:.0f} min]")
         lines.append(f"   {inc['kind']:<14} {start:%m-%d %H:%M}      {end:%m-%d %H:%M}      "
                      + ("; ".join(hits) if hits else "MISSED"))
     others = [a for a in alerts if a["alert_id"] not in used]
@@ -152,5 +157,5 @@ def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:
     for a in others:
         opened = pd.Timestamp(a["opened"]).tz_localize(None)
         lines.append(f"     {opened:%m-%d %H:%M}  peak {a['peak_score']:.3g}  "
-                     f"top channel {a['channels'][0]['name']}")
+                     f"moved channel {moved_channel(a)}")
     return "\n".join(lines)

@@ -272,7 +272,8 @@ class AlertDbSink:
         " peak_score REAL NOT NULL,"
         " threshold REAL NOT NULL,"
         " channels TEXT NOT NULL,"  # JSON list of {name, unit, share}
-        " hops INTEGER NOT NULL"
+        " hops INTEGER NOT NULL,"
+        " moved TEXT"  # JSON {name, unit, score_without, score}, or NULL
         ")"
     )
 
@@ -285,6 +286,9 @@ class AlertDbSink:
             self.db.execute("PRAGMA journal_mode=WAL")
             self.db.execute("PRAGMA synchronous=FULL")  # an alert change survives a power cut
             self.db.execute(self.SCHEMA)
+            columns = [r[1] for r in self.db.execute("PRAGMA table_info(alerts)")]
+            if "moved" not in columns:  # a database from before alerts named the moved channel
+                self.db.execute("ALTER TABLE alerts ADD COLUMN moved TEXT")
         except BaseException:
             self.db.close()
             raise
@@ -302,12 +306,14 @@ class AlertDbSink:
             event["opened"], event.get("closed"), float(event["peak_score"]),
             float(event["threshold"]), json.dumps(event["channels"], sort_keys=True),
             int(event["hops"]),
+            json.dumps(event["moved"], sort_keys=True) if event.get("moved") else None,
         )
         self.db.execute("BEGIN IMMEDIATE")
         try:
             self.db.execute(
                 "INSERT OR REPLACE INTO alerts (id, bundle_id, status, opened, closed, "
-                "peak_score, threshold, channels, hops) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "peak_score, threshold, channels, hops, moved) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 row,
             )
             self.db.execute("COMMIT")

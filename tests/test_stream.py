@@ -206,6 +206,58 @@ def test_alert_event_names_the_channel_that_moved(bundle_dir, tmp_path):
     assert closed[0]["peak_score"] == pytest.approx(df.score.max(), rel=1e-6)
     # the alert column marks the open span
     assert df.alert.sum() > 0
+    # the counterfactual: pressure's newest steps put back on their reconstruction lower the
+    # score most; the closing event and the alert database carry the opening's answer
+    moved = opened[0]["moved"]
+    assert moved["name"] == "pressure" and moved["score_without"] < moved["score"]
+    assert closed[0]["moved"] == moved
+    import sqlite3
+    with sqlite3.connect(str(tmp_path / "alerts.db")) as db:
+        (stored,) = db.execute("SELECT moved FROM alerts").fetchone()
+    assert json.loads(stored) == moved
+
+
+def test_moved_is_the_written_out_counterfactual(bundle_dir, tmp_path):
+    """Detector.moved against the rule written out here: for each channel, the score of the
+    window with that channel's newest `steps` steps replaced by the network's reconstruction
+    of the original window; the channel with the lowest such score."""
+    from ganlet.runtime.detector import Detector
+
+    b = load_bundle(bundle_dir)
+    det = Detector(b, make_scorer(b, "numpy"))
+    rule = ScoreRule(b.manifest["score"])
+    window = fx.scaled(fx.raw_values(WINDOW, seed=2)).astype(np.float32)
+    window[-3:, 1] += 6.0  # flow jumps in the newest steps
+    net = make_scorer(b, "numpy")
+    recon = net.reconstruct(window[None])
+    score = float(rule.score(window[None], recon)[0][0])
+    got = det.moved(window, recon, score)
+    steps = rule.steps or WINDOW
+    without = []
+    for c in range(window.shape[1]):
+        w = window.copy()
+        w[-steps:, c] = recon[0, -steps:, c]
+        without.append(float(rule.score(w[None], net.reconstruct(w[None]))[0][0]))
+    assert got["name"] == b.channels[int(np.argmin(without))]
+    assert got["score_without"] == pytest.approx(min(without), rel=1e-5)
+    assert got["score"] == score
+
+
+def test_an_alert_database_from_before_moved_gains_the_column(tmp_path):
+    import sqlite3
+
+    from ganlet.runtime.events import AlertDbSink
+
+    path = tmp_path / "old.db"
+    with sqlite3.connect(str(path)) as db:
+        db.execute(AlertDbSink.SCHEMA.replace(" hops INTEGER NOT NULL,", " hops INTEGER NOT NULL")
+                   .replace(" moved TEXT", ""))
+        db.execute("INSERT INTO alerts VALUES ('a', 'b', 'closed', 't0', 't1', 2.0, 1.0, '[]', 3)")
+    sink = AlertDbSink(path)
+    sink.close()
+    with sqlite3.connect(str(path)) as db:
+        rows = db.execute("SELECT id, hops, moved FROM alerts").fetchall()
+    assert rows == [("a", 3, None)]
 
 
 def test_onnxruntime_asked_but_missing(bundle_dir, monkeypatch):
