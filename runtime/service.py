@@ -479,8 +479,19 @@ def _check_judge(judge, n: int) -> None:
                 and type(a.get("opened_hop")) is int and type(a.get("hops")) is int
                 and isinstance(a.get("threshold"), (int, float))
                 and isinstance(a.get("parts_sum"), list) and len(a["parts_sum"]) == n
-                and all(isinstance(v, (int, float)) for v in a["parts_sum"])):
+                and all(isinstance(v, (int, float)) for v in a["parts_sum"])
+                and _moved_ok(a.get("moved"))):
             raise ValueError("open alert record is malformed")
+
+
+def _moved_ok(moved) -> bool:
+    """The open alert's `moved` (Detector.moved), or None (states from before it existed)."""
+    if moved is None:
+        return True
+    return (isinstance(moved, dict) and isinstance(moved.get("name"), str)
+            and isinstance(moved.get("unit"), str)
+            and all(moved.get(k) is None or isinstance(moved.get(k), (int, float))
+                    for k in ("score_without", "score")))
 
 
 def _clock_bounds(bundle, opts: StreamOptions) -> ClockBounds:
