@@ -327,8 +327,8 @@ class Detector:
         of them, lower the score most (one forward pass per channel, at an alert's opening).
         A reconstruction error spreads to the channels the latent can no longer explain, so
         the channel with the largest error is often not the one that moved: on the demo's
-        bearing wear motor current held 57 % of the error, and putting vibration back on its
-        reconstruction took away most of the score."""
+        stuck pressure sensor vibration held 40 % of the error, and putting discharge pressure
+        back on its reconstruction took the score from 14.9 to 8.1."""
         steps = self.rule.steps or window.shape[0]
         trial = np.repeat(window[None], window.shape[1], axis=0)
         for c in range(window.shape[1]):
