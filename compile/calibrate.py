@@ -77,17 +77,18 @@ def risk_per_hop(alarms_per_week: float, period_s: float, hop: int) -> float:
 
 
 def budget_record(alarms_per_week: float, risk: float, policy: dict, hop_s: float) -> dict:
-    """The manifest's false_alarms section. `measurable_per_week`: the rarest alarm rate the
-    calibration scores can show, one in n + 1 hops (the chance that a new score from the same
-    distribution beats all n); a budget below it rests on the tail model's extrapolation alone,
-    which a short history cannot check (SKAB's 400-row files: 369 scores, so a budget of 1 a
-    week at one score a second is 1,600 times finer than they show)."""
+    """The manifest's false_alarms section. `measurable_per_week`: the rarest alarm rate the n
+    scores the threshold was fitted on (`tail_scores`: calibration and fit spans) can show, one
+    in n + 1 hops (the chance that a new score from the same distribution beats all n); a
+    budget below it rests on the tail model's extrapolation alone, which a short history cannot
+    check (SKAB's 400-row files: 369 scores, so a budget of 1 a week at one score a second is
+    1,600 times finer than they show)."""
     hops_per_week = SECONDS_PER_WEEK / hop_s
     pot = policy["kind"] == "pot"
     n = int(policy["n"]) if pot else None
     return {"budget_per_week": float(alarms_per_week), "risk_per_hop": risk,
             "expected_per_week_at_most": policy["q"] * hops_per_week if pot else None,
-            "calibration_scores": n,
+            "tail_scores": n,
             "measurable_per_week": hops_per_week / (n + 1) if pot else None}
 
 

@@ -215,8 +215,8 @@ def test_manifest_describes_the_detector(teacher, bundle):
     assert fa["budget_per_week"] == 1.0
     assert fa["risk_per_hop"] == pytest.approx(60.0 * m["hop"] / (7 * 86400))
     assert m["threshold"]["q"] <= fa["risk_per_hop"]
-    # the rarest rate the calibration scores can show: one in n + 1 hops
-    assert fa["calibration_scores"] == m["threshold"]["n"]
+    # the rarest rate the threshold's n scores can show: one in n + 1 hops
+    assert fa["tail_scores"] == m["threshold"]["n"]
     hops_per_week = 7 * 86400 / (60.0 * m["hop"])
     assert fa["measurable_per_week"] == pytest.approx(hops_per_week / (m["threshold"]["n"] + 1))
     for key in ("lo", "hi", "v_max"):
@@ -328,7 +328,7 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
     # this fixture's short history cannot show a rate of 1 a week, and check says so
     fa = manifest["false_alarms"]
     assert fa["measurable_per_week"] > budget
-    assert (f"the {fa['calibration_scores']} calibration scores show rates down to "
+    assert (f"the {fa['tail_scores']} scores the threshold was fitted on show rates down to "
             f"{fa['measurable_per_week']:.3g} a week only" in ok.stdout)
     assert (f"closed below {manifest['alerting']['close_ratio']:g} x threshold"
             in ok.stdout)

@@ -152,7 +152,8 @@ def test_a_budget_finer_than_the_calibration_can_show_is_said_to_be_extrapolated
     # worked by hand: 60-s hops, 10,080 a week; 369 scores show rates down to 10080 / 370
     short = budget_record(1.0, 1 / 10080, {"kind": "pot", "q": 1 / 10080, "n": 369}, 60.0)
     assert short["measurable_per_week"] == pytest.approx(10080 / 370)
-    assert "369 calibration scores show rates down to 27.2 a week" in extrapolation_note(short)
+    assert ("369 scores the threshold was fitted on show rates down to 27.2 a week"
+            in extrapolation_note(short))
     # a year of minutes shows rates down to 10080 / 525601 a week: no note
     year = budget_record(1.0, 1 / 10080, {"kind": "pot", "q": 1 / 10080, "n": 525600}, 60.0)
     assert extrapolation_note(year) == ""
