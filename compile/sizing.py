@@ -125,8 +125,8 @@ def network_counts(n_channels: int, latent: int, enc: tuple, gen: tuple):
 def threshold_bytes(history_rows: int | None, hop: int) -> int:
     """The POT peaks' share of the manifest: the training rows give one score a hop (no
     history given: the most a policy keeps)."""
-    rows = 10**9 if history_rows is None else history_rows
-    return BYTES_PER_PEAK * pot_peaks_at_most(math.ceil(rows / hop))
+    hops = None if history_rows is None else math.ceil(history_rows / hop)
+    return BYTES_PER_PEAK * pot_peaks_at_most(hops)
 
 
 def plan_for(board: Board, n_channels: int, latent: int, enc: tuple, gen: tuple,

@@ -333,9 +333,7 @@ class Detector:
         trial = np.repeat(window[None], window.shape[1], axis=0)
         for c in range(window.shape[1]):
             trial[c, -steps:, c] = recon[0, -steps:, c]
-        means = trial.astype(np.float64).mean(axis=1)
-        without = self.rule.apply(self.rule.residuals(trial, self.scorer.reconstruct(trial)),
-                                  means)[0]
+        without = self.rule.score(trial, self.scorer.reconstruct(trial))[0]
         c = int(np.argmin(without))
         return {"name": self.judge.channels[c], "unit": self.judge.units[c],
                 "score_without": finite_or_none(float(without[c])),

@@ -468,15 +468,23 @@ def calibrate_policy(kind: str, scores: np.ndarray, **options: Any) -> Dict[str,
     return _calibrate_pot(s, opts) if kind == "pot" else _calibrate_level(kind, s, opts)
 
 
-def pot_peaks_at_most(n_scores: int) -> int:
+def pot_peaks_at_most(n_scores: Optional[int]) -> int:
     """At most how many peaks calibrate_policy("pot", ...) keeps from n_scores scores at its
-    default options (what the manifest carries): np.quantile's linear interpolation puts t at
-    or above the sorted score number floor(p (n - 1)), so at most n - 1 - floor(p (n - 1))
-    scores lie above it, p being the quantile _calibrate_pot uses."""
+    default options (what the manifest carries; None: any number of scores): np.quantile's
+    linear interpolation puts t at or above the sorted score number floor(p (n - 1)), so at
+    most n - 1 - floor(p (n - 1)) scores lie above it, p being _tail_quantile's."""
     opts = _CALIBRATION_DEFAULTS["pot"]
+    if n_scores is None:
+        return int(opts["max_peaks"])
     n = max(int(n_scores), 2 * opts["min_peaks"])
-    p = min(opts["init_quantile"], 1.0 - opts["min_peaks"] / n)
+    p = _tail_quantile(n, opts["init_quantile"], opts["min_peaks"])
     return int(min(opts["max_peaks"], n - 1 - math.floor(p * (n - 1))))
+
+
+def _tail_quantile(n: int, init_quantile: float, min_peaks: int) -> float:
+    """The quantile of n calibration scores that sets pot's t: init_quantile, lowered on a
+    short span so that min_peaks scores still lie above it."""
+    return min(init_quantile, 1.0 - min_peaks / n)
 
 
 def _calibrate_pot(s: np.ndarray, opts: Dict[str, Any]) -> Dict[str, Any]:
@@ -485,7 +493,7 @@ def _calibrate_pot(s: np.ndarray, opts: Dict[str, Any]) -> Dict[str, Any]:
         raise ValueError(f"{s.size} calibration scores are too few for a tail fit (need "
                          f"{2 * min_peaks}); train with a longer history or a larger "
                          "calibration fraction")
-    init_q = min(_prob("init_quantile", opts["init_quantile"]), 1.0 - min_peaks / s.size)
+    init_q = _tail_quantile(s.size, _prob("init_quantile", opts["init_quantile"]), min_peaks)
     t = float(np.quantile(s, init_q))
     n_peaks = int((s > t).sum())
     pot = make_threshold(
