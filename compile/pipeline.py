@@ -51,10 +51,10 @@ from ganlet.compile.sizing import StudentPlan, size_student
 from ganlet.compile.student_cache import StudentStore
 from ganlet.compile.threads import torch_threads
 from ganlet.compile.train import TrainedModel, load_model, plot_training, save_model, train
-from ganlet.runtime.cli import extrapolation_note
 from ganlet.runtime.drift import DRIFT_ACTIONS
 from ganlet.runtime.manifest import MANIFEST_NAME, build_manifest
 from ganlet.runtime.scorer import NetworkScorer
+from ganlet.runtime.thresholds import extrapolation_note
 
 STUDENTS_DIR = "students"   # in a model directory: the fp32 students of its bundles
 

@@ -24,9 +24,11 @@ from typing import List, Optional
 
 from .checkpoint import CheckpointError
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, MAX_AHEAD_S
+from .drift import ACTION_TEXT
 from .intake import DECIMALS, Dialect
 from .manifest import BundleError, load_bundle
 from .scorer import BACKENDS, make_scorer
+from .thresholds import extrapolation_note
 from .trust import read_keys
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_STATE, EXIT_INTERNAL = 0, 1, 2, 3, 4
@@ -259,20 +261,9 @@ def detector_line(summary: dict) -> str:
     parts.append(f"alert after {a['min_hops']} hops above, closed below "
                  f"{a['close_ratio']:g} x threshold, cooldown {a['cooldown_hops']} hops")
     drift = summary.get("drift")
-    parts.append("drift: " + ({"recentre": "reported and re-centred", "report":
-                               "reported, scored as it is"}.get(drift, "not watched")))
+    parts.append("drift: " + (f"reported once, {ACTION_TEXT[drift]}" if drift in ACTION_TEXT
+                              else "not watched"))
     return "; ".join(parts)
-
-
-def extrapolation_note(budget: dict) -> str:
-    """Said when the budget is finer than the threshold's fitted scores can show (compile/calibrate's
-    measurable_per_week): the threshold then rests on its tail model alone."""
-    shown = budget.get("measurable_per_week")
-    if shown is None or not shown > budget["budget_per_week"]:
-        return ""
-    return (f"; the {budget['tail_scores']} scores the threshold was fitted on show rates down to "
-            f"{shown:.3g} a week only: below that the level is extrapolated, so expect more "
-            "alarms than budgeted until compiled from a longer normal history")
 
 
 def trust_argv(args) -> List[str]:

@@ -42,6 +42,11 @@ MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
 
 
 DRIFT_ACTIONS = ("recentre", "report")
+# What each action does to a drifting channel: the drift event's words, and the words of
+# `run.py check` and the evaluation report (stated here once).
+ACTION_TEXT = {"recentre": "re-centred onto the training range while the drift lasts",
+               "report": "scored as it is"}
+OPERATOR_ACTION = "collect fresh normal data and retrain"
 
 
 def window_level(window) -> np.ndarray:
@@ -111,9 +116,8 @@ class DriftMonitor:
                                "time": time_text, "since": self.since[c],
                                "excess": round(float(e[c]), 6),
                                "side": "above" if m[c] > self.hi[c] else "below",
-                               "action": ("re-centred onto the training range" if self.recentre
-                                          else "scored as it is") + "; collect fresh normal "
-                                         "data and retrain"})
+                               "action": ACTION_TEXT["recentre" if self.recentre else "report"]
+                               + "; " + OPERATOR_ACTION})
         offset = np.where(self.in_drift & self.recentre, np.where(m > self.hi, e, -e), 0.0)
         return offset, events
 

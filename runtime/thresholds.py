@@ -524,3 +524,14 @@ def _calibrate_level(kind: str, s: np.ndarray, opts: Dict[str, Any]) -> Dict[str
                               "floor": opts["floor"]})
     return {"kind": "rolling", "level0": rolling.level0, "window": rolling.window,
             "k": rolling.k, "min_count": rolling.min_count, "floor": rolling.floor}
+
+
+def extrapolation_note(budget: dict) -> str:
+    """Said when the budget is finer than the threshold's fitted scores can show (compile/calibrate's
+    measurable_per_week): the threshold then rests on its tail model alone."""
+    shown = budget.get("measurable_per_week")
+    if shown is None or not shown > budget["budget_per_week"]:
+        return ""
+    return (f"; the {budget['tail_scores']} scores the threshold was fitted on show rates down to "
+            f"{shown:.3g} a week only: below that the level is extrapolated, so expect more "
+            "alarms than budgeted until compiled from a longer normal history")

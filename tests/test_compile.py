@@ -332,7 +332,7 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
             f"{fa['measurable_per_week']:.3g} a week only" in ok.stdout)
     assert (f"closed below {manifest['alerting']['close_ratio']:g} x threshold"
             in ok.stdout)
-    assert "drift: reported and re-centred" in ok.stdout
+    assert "drift: reported once, re-centred onto the training range" in ok.stdout
 
     copy = tmp_path / "B"
     shutil.copytree(bundle["dir"], copy)

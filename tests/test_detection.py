@@ -147,7 +147,7 @@ def test_false_alarm_budget_to_risk_per_hop():
 
 def test_a_budget_finer_than_the_calibration_can_show_is_said_to_be_extrapolated():
     from ganlet.compile.calibrate import budget_record
-    from ganlet.runtime.cli import extrapolation_note
+    from ganlet.runtime.thresholds import extrapolation_note
 
     # worked by hand: 60-s hops, 10,080 a week; 369 scores show rates down to 10080 / 370
     short = budget_record(1.0, 1 / 10080, {"kind": "pot", "q": 1 / 10080, "n": 369}, 60.0)
