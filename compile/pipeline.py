@@ -220,10 +220,10 @@ class CompileResult:
                          + "; ".join(self.plan.teacher_refused) + "), so it runs this smaller "
                          "student at the fidelity above")
         lines += [
-            f"score: {r['regimes']['regimes']} operating regime(s); threshold: "
-            f"{r['threshold_kind']} calibrated on {r['calibration_scores']} scores for at most "
-            f"{r['false_alarms']['budget_per_week']:g} false alarm(s) per week on normal data"
-            + extrapolation_note(r["false_alarms"]),
+            f"score: {r['regimes']['regimes']} operating regime(s), each channel's normal "
+            f"error from the {r['calibration_scores']} calibration-span windows; threshold: "
+            f"{r['threshold_kind']} for at most {r['false_alarms']['budget_per_week']:g} false "
+            "alarm(s) per week on normal data" + extrapolation_note(r["false_alarms"]),
             f"bundle {self.bundle}: {r['bytes']['model_and_weights'] / 1024:.1f} KiB without "
             f"the runtime copy ({r['bytes']['total'] / 1024:.1f} KiB in all)"
             + (f"; archive {self.archive}" if self.archive else ""),
