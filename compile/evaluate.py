@@ -55,7 +55,7 @@ from ganlet.compile.data import (
 from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
 from ganlet.compile.verify import alert_events, clean_json, replay_alerts, replay_feed
 from ganlet.runtime.alerts import default_alerting
-from ganlet.runtime.drift import ACTION_TEXT
+from ganlet.runtime.drift import action_summary
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
 BASELINES = ("IsolationForest", "GaussianMixture", "OneClassSVM", "rolling z-score")
@@ -567,13 +567,6 @@ def plot_traces(result: EvalResult) -> bytes:
     return rep.figure_png(fig)
 
 
-def drift_text(action: str) -> str:
-    """The report's words for a drift action (runtime/drift.py's, in a sentence)."""
-    if action not in ACTION_TEXT:
-        return ""
-    return f"a channel drifting out of its training range is reported once and {ACTION_TEXT[action]}"
-
-
 def rule_html(result: EvalResult) -> str:
     steps = result.step_s
     step_s = steps.get("bundle hop", steps["point"])
@@ -584,7 +577,8 @@ def rule_html(result: EvalResult) -> str:
                              "alarms a week on normal data the threshold is calibrated to",
                              "-"],
                             ["drift", result.rule.drift,
-                             drift_text(result.rule.drift), "-"]]
+                             "a channel drifting out of its training range: "
+                             + action_summary(result.rule.drift), "-"]]
                            + rep.alert_settings_rows(result.rule.alerting, step_s))
     note = (f"One step is one score: for the bundle one hop = {rep.duration(step_s)}; "
             if "bundle hop" in steps else "One step is one score: ")

@@ -24,7 +24,7 @@ from typing import List, Optional
 
 from .checkpoint import CheckpointError
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, MAX_AHEAD_S
-from .drift import ACTION_TEXT
+from .drift import action_summary
 from .intake import DECIMALS, Dialect
 from .manifest import BundleError, load_bundle
 from .scorer import BACKENDS, make_scorer
@@ -261,8 +261,7 @@ def detector_line(summary: dict) -> str:
     parts.append(f"alert after {a['min_hops']} hops above, closed below "
                  f"{a['close_ratio']:g} x threshold, cooldown {a['cooldown_hops']} hops")
     drift = summary.get("drift")
-    parts.append("drift: " + (f"reported once, {ACTION_TEXT[drift]}" if drift in ACTION_TEXT
-                              else "not watched"))
+    parts.append("drift: " + action_summary(drift))
     return "; ".join(parts)
 
 

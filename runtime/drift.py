@@ -34,7 +34,7 @@ side), `drift_ended` when it is over (with the largest excess seen).
 """
 
 from collections import deque
-from typing import Sequence
+from typing import Optional, Sequence
 
 import numpy as np
 
@@ -47,6 +47,13 @@ DRIFT_ACTIONS = ("recentre", "report")
 ACTION_TEXT = {"recentre": "re-centred onto the training range while the drift lasts",
                "report": "scored as it is"}
 OPERATOR_ACTION = "collect fresh normal data and retrain"
+
+
+def action_summary(action: Optional[str]) -> str:
+    """What a drift does, in a phrase (`run.py check`, the evaluation report)."""
+    if action not in ACTION_TEXT:
+        return "not watched"
+    return f"reported once, {ACTION_TEXT[action]}"
 
 
 def window_level(window) -> np.ndarray:
@@ -72,9 +79,10 @@ class DriftMonitor:
         if not (np.all(np.isfinite(self.lo)) and np.all(self.hi >= self.lo)
                 and np.all(self.v_max >= 0)):
             raise ValueError("drift: need finite lo <= hi and v_max >= 0 per channel")
-        self.recentre = section.get("action", "report") == "recentre"
-        if section.get("action", "report") not in DRIFT_ACTIONS:
+        self.action = section.get("action", "report")
+        if self.action not in DRIFT_ACTIONS:
             raise ValueError(f"drift.action must be one of {', '.join(DRIFT_ACTIONS)}")
+        self.recentre = self.action == "recentre"
         self.channels = list(channels)
         self.in_drift = np.zeros(n, dtype=bool)
         self.reported = np.zeros(n, dtype=bool)
@@ -116,8 +124,7 @@ class DriftMonitor:
                                "time": time_text, "since": self.since[c],
                                "excess": round(float(e[c]), 6),
                                "side": "above" if m[c] > self.hi[c] else "below",
-                               "action": ACTION_TEXT["recentre" if self.recentre else "report"]
-                               + "; " + OPERATOR_ACTION})
+                               "action": ACTION_TEXT[self.action] + "; " + OPERATOR_ACTION})
         offset = np.where(self.in_drift & self.recentre, np.where(m > self.hi, e, -e), 0.0)
         return offset, events
 
