@@ -53,7 +53,7 @@ EVENTS = (
     "alert_closed",
     "gap",  # a long gap reset the window
     "drift",  # a channel slowly left its training range and is re-centred (drift.py)
-    "drift_ended",  # a reported drift is back inside the range
+    "drift_ended",  # a reported drift is over: back inside the range, or moving too fast
     "time_jump",  # the feed's times jumped and enough rows confirmed it (clock.py): from, to
     "clock_suspect",  # the gateway's own clock reads earlier than any plausible row
     "header_changed",  # a header line mid-stream: columns remapped, or rows refused

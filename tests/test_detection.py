@@ -249,3 +249,50 @@ def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
     ramp = [min(0.25 * k / WINDOW, 3.0) for k in range(400)]
     crossed = next(k for k, m in enumerate(ramp) if m > 1.0)
     assert _drift_entry_hop(ramp) == crossed + WINDOW - 1
+
+
+def _drift_trace(levels, window=WINDOW, hop=1):
+    """A one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window) over `levels`:
+    (in_drift per hop, every event, the offset per hop)."""
+    from ganlet.runtime.drift import DriftMonitor
+
+    mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre"},
+                       ["flow"], window, hop)
+    state, events, offsets = [], [], []
+    for k, m in enumerate(levels):
+        offset, ev = mon.step(f"t{k}", [m], [False])
+        state.append(bool(mon.in_drift[0]))
+        events += ev
+        offsets.append(float(offset[0]))
+    return state, events, offsets
+
+
+def test_a_drift_that_runs_away_faster_than_training_moved_is_scored_again():
+    # the channel slips a hair past its edge (1.02, excess 0.02) and sits there: a slow pace,
+    # so drift (not reported: 0.02 is within the envelope's own sampling error); then a step to
+    # 5.0 (excess 4.0) in one hop, 8 times what the fastest training pace covers in the window
+    # since it left (SKAB valve1 file 7's flow meter, issue 11's notes)
+    slip = [0.0] * 64 + [1.02] * 40
+    state, events, offsets = _drift_trace(slip + [5.0] * 200)
+    assert state[len(slip) - 1] and offsets[len(slip) - 1] == pytest.approx(0.02)
+    # the step ends the drift on the hop it comes: the network sees the step as it is
+    assert not state[len(slip)] and offsets[len(slip)] == 0.0
+    # the held step re-enters drift only when the fastest pace could have got there, counted
+    # from when the channel first left: 4.0 / 0.5 = 8 windows of 16 hops after hop 64
+    assert state.index(True, len(slip)) == 64 + 8 * WINDOW - 1
+    # the slip was never reported, so ending it sends nothing; nothing else was sent either
+    # until the re-entered drift passed the margin
+    assert [e["event"] for e in events] == ["drift"]
+    assert events[0]["time"] == f"t{64 + 8 * WINDOW - 1}"
+
+
+def test_a_reported_drift_says_why_it_ended():
+    ramp = [min(0.02 * k, 3.0) for k in range(200)]  # 0.32 per window: a drift, reported
+    _, events, _ = _drift_trace(ramp + [9.0] * 10)  # then 6 sigmas in one hop
+    assert [(e["event"], e.get("reason")) for e in events] == [("drift", None),
+                                                               ("drift_ended", "faster")]
+    assert events[1]["peak_excess"] == pytest.approx(8.0)
+    _, events, _ = _drift_trace(ramp + [0.0] * 60)  # back inside for a window
+    assert [(e["event"], e.get("reason")) for e in events] == [("drift", None),
+                                                               ("drift_ended", "back")]
+    assert events[1]["peak_excess"] == pytest.approx(2.0)
