@@ -465,6 +465,21 @@ def _check_restored(det: Detector, bundle) -> None:
         if not all(isinstance(k, str) and type(v) is int and v >= 0 for k, v in table.items()):
             raise ValueError(f"{name} are not counts")
     _check_judge(det.judge, n)
+    if det.drift is not None:
+        _check_drift(det.drift, n)
+
+
+def _check_drift(drift, n: int) -> None:
+    arrays = (drift.in_drift, drift.reported, drift.peak, drift.inside, drift.outside, drift.away)
+    if any(a.shape != (n,) for a in arrays) or len(drift.since) != n:
+        raise ValueError("drift state does not fit this bundle")
+    if not (np.isfinite(drift.peak).all() and (drift.peak >= 0).all()
+            and all((a >= 0).all() for a in (drift.inside, drift.outside, drift.away))):
+        raise ValueError("drift state holds impossible counts or excesses")
+    if not all(s is None or isinstance(s, str) for s in drift.since):
+        raise ValueError("drift state's `since` are not times")
+    if any(m.shape != (n,) or not np.isfinite(m).all() for m in drift.past):
+        raise ValueError("drift state's past levels do not fit this bundle")
 
 
 def _check_judge(judge, n: int) -> None:

@@ -330,6 +330,40 @@ def test_a_malformed_state_file_exits_3_never_a_traceback(bundle_dir, tmp_path):
     assert codes[3] > 100  # most damage is refused, the rest was harmless and ran
 
 
+def test_a_malformed_drift_state_exits_3_never_a_traceback(tmp_path):
+    """The same damage to the drift monitor's part of the state, on a bundle that watches
+    drift (compiled bundles do by default): refused at start, not a crash mid-stream."""
+    n = len(fx.CHANNELS)
+    drift = {"lo": [-1.0] * n, "hi": [1.0] * n, "v_max": [3.0] * n, "action": "recentre"}
+    bundle = fx.build_bundle(tmp_path / "bundle", window=WINDOW, hop=HOP, drift=drift,
+                             threshold={"kind": "static", "level": 1e9})  # no alert blocks it
+    values = fx.raw_values(120, seed=41)
+    values[:, 0] += fx.SCALE[0] * np.linspace(0.0, 4.0, 120)  # leaves its range slowly
+    feed = write_lines(tmp_path / "feed.csv",
+                       [HEADER] + rows_text(values[:80], fx.T0 + np.arange(80.0)))
+    state = tmp_path / "state.json"
+    assert stream(bundle, feed, "--state", str(state)).code == 0
+    doc = json.loads(state.read_text())
+    assert any(doc["state"]["detector"]["drift"]["in_drift"])  # precondition: a drift under way
+    more = write_lines(tmp_path / "more.csv",
+                       [HEADER] + rows_text(values[80:], fx.T0 + 80 + np.arange(40.0)))
+    codes = {}
+    for path in _state_paths(doc["state"]["detector"]["drift"]):
+        for bad in (None, "x", -1, 1e308, [], {}, [[1, 2]], [True] * (n + 1)):
+            damaged = _replace(doc["state"], ("detector", "drift") + path, bad)
+            state.write_text(json.dumps(dict(doc, state=damaged)))
+            try:
+                run = stream(bundle, more, "--state", str(state))
+            except Exception as exc:  # noqa: BLE001 - any escape is the failure under test
+                pytest.fail(f"drift{list(path)} = {bad!r}: {type(exc).__name__}: {exc}")
+            assert run.code in (0, 3), (path, bad, run.err)
+            if run.code == 3:
+                assert "state cannot be restored" in run.err
+            codes[run.code] = codes.get(run.code, 0) + 1
+    print(f"malformed drift states: {codes}")
+    assert codes[3] > 50
+
+
 # ----------------------------------------------------- issue 13 section 3: dialects and zones
 def _berlin_local(t: float) -> str:
     # reference: pandas converts UTC to Europe/Berlin wall-clock time
