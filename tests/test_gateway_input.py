@@ -305,6 +305,27 @@ def _replace(tree, path, value):
     return tree
 
 
+def _damaged_state_codes(bundle, feed, state, doc, under, last_bad) -> dict:
+    """Each place under `under` in the saved state replaced by each bad value in turn, streamed
+    on: exit codes counted; only 0 (harmless) or 3 (refused, saying so) are allowed."""
+    node = doc["state"]
+    for key in under:
+        node = node[key]
+    codes = {}
+    for path in _state_paths(node):
+        for bad in (None, "x", -1, 1e308, [], {}, [[1, 2]], last_bad):
+            state.write_text(json.dumps(dict(doc, state=_replace(doc["state"], under + path, bad))))
+            try:
+                run = stream(bundle, feed, "--state", str(state))
+            except Exception as exc:  # noqa: BLE001 - any escape is the failure under test
+                pytest.fail(f"state{list(under + path)} = {bad!r}: {type(exc).__name__}: {exc}")
+            assert run.code in (0, 3), (under + path, bad, run.err)
+            if run.code == 3:
+                assert "state cannot be restored" in run.err or "malformed" in run.err
+            codes[run.code] = codes.get(run.code, 0) + 1
+    return codes
+
+
 def test_a_malformed_state_file_exits_3_never_a_traceback(bundle_dir, tmp_path):
     values = fx.raw_values(80, seed=39, anomalies=[(50, 30, 1, 9.0)])  # an alert open at the end
     feed = write_lines(tmp_path / "feed.csv", [HEADER] + rows_text(values, fx.T0 + np.arange(80.0)))
@@ -314,18 +335,7 @@ def test_a_malformed_state_file_exits_3_never_a_traceback(bundle_dir, tmp_path):
     assert doc["state"]["detector"]["judge"]["alert"] is not None  # precondition: an open alert
     more = write_lines(tmp_path / "more.csv", [HEADER] + rows_text(
         fx.raw_values(120, seed=39)[80:], fx.T0 + 80 + np.arange(40.0)))
-    codes = {}
-    for path in _state_paths(doc["state"]):
-        for bad in (None, "x", -1, 1e308, [], {}, [[1, 2]], True):
-            state.write_text(json.dumps(dict(doc, state=_replace(doc["state"], path, bad))))
-            try:
-                run = stream(bundle_dir, more, "--state", str(state))
-            except Exception as exc:  # noqa: BLE001 - any escape is the failure under test
-                pytest.fail(f"state{list(path)} = {bad!r}: {type(exc).__name__}: {exc}")
-            assert run.code in (0, 3), (path, bad, run.err)
-            if run.code == 3:
-                assert "state cannot be restored" in run.err or "malformed" in run.err
-            codes[run.code] = codes.get(run.code, 0) + 1
+    codes = _damaged_state_codes(bundle_dir, more, state, doc, (), True)
     print(f"malformed states: {codes}")
     assert codes[3] > 100  # most damage is refused, the rest was harmless and ran
 
@@ -347,19 +357,7 @@ def test_a_malformed_drift_state_exits_3_never_a_traceback(tmp_path):
     assert any(doc["state"]["detector"]["drift"]["in_drift"])  # precondition: a drift under way
     more = write_lines(tmp_path / "more.csv",
                        [HEADER] + rows_text(values[80:], fx.T0 + 80 + np.arange(40.0)))
-    codes = {}
-    for path in _state_paths(doc["state"]["detector"]["drift"]):
-        for bad in (None, "x", -1, 1e308, [], {}, [[1, 2]], [True] * (n + 1)):
-            damaged = _replace(doc["state"], ("detector", "drift") + path, bad)
-            state.write_text(json.dumps(dict(doc, state=damaged)))
-            try:
-                run = stream(bundle, more, "--state", str(state))
-            except Exception as exc:  # noqa: BLE001 - any escape is the failure under test
-                pytest.fail(f"drift{list(path)} = {bad!r}: {type(exc).__name__}: {exc}")
-            assert run.code in (0, 3), (path, bad, run.err)
-            if run.code == 3:
-                assert "state cannot be restored" in run.err
-            codes[run.code] = codes.get(run.code, 0) + 1
+    codes = _damaged_state_codes(bundle, more, state, doc, ("detector", "drift"), [True] * (n + 1))
     print(f"malformed drift states: {codes}")
     assert codes[3] > 50
 
