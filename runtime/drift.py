@@ -23,15 +23,15 @@ windows spent outside, e_c / (hops outside / hops per window), is at most v_max_
 then holds still is left to the score and the alert machine until as long has passed as the
 fastest normal movement would have needed to get that far; without it any held step passed as
 drift as soon as its window had gone by), its speed is at most v_max_c, and it is not among the
-channels of an open or pending alert. The pace is checked again on every hop of the drift, over
-the hops since the channel left: a channel in drift that then runs away faster than training
-ever moved is no longer drifting, its drift ends (`drift_ended`, reason "faster") and the score
-sees it; the pace check above decides whether it re-enters. Without this, a channel that had
-slipped a hair past its envelope's edge (SKAB valve1 file 7: a flow meter's zero reading 0.02
-robust sigmas below its training range for one window) was in drift when its fault came, and
-the fault's step of 4 sigmas was re-centred away. The `drift` event is sent once its excess passes MARGIN (a
-full robust standard deviation beyond every training window: smaller excursions are the
-envelope's own sampling error). While in drift the network sees x_c - sign(m_c) * e_c (the excess
+channels of an open or pending alert. The pace is checked again on every hop of the drift,
+over all the hops since the channel left: a channel in drift that then runs away faster than
+training ever moved is no longer drifting, its drift ends (`drift_ended`, reason "faster") and
+the score sees it; the entry check, still counting from when it left, decides whether it
+re-enters. Without this, a channel that had slipped a hair past its envelope's edge (SKAB
+valve1 file 7: a flow meter's zero reading 0.02 robust sigmas below its training range for one
+window) was in drift when its fault came, and the fault's 4-sigma step was re-centred away.
+The `drift` event is sent once its excess passes MARGIN (a full robust standard deviation
+beyond every training window: smaller excursions are the envelope's own sampling error). While in drift the network sees x_c - sign(m_c) * e_c (the excess
 removed), so neither that channel nor the others score it. The drift ends once the channel has
 been back inside its envelope for one window's worth of hops (an excursion hovering at the edge
 is one drift, not a flicker of many).
@@ -96,8 +96,9 @@ class DriftMonitor:
         self.since = [None] * n  # type: List[Optional[str]]
         self.peak = np.zeros(n)
         self.inside = np.zeros(n, dtype=np.int64)  # hops back inside, per channel in drift
-        self.outside = np.zeros(n, dtype=np.int64)  # hops outside in a row, before drift
-        self.away = np.zeros(n, dtype=np.int64)  # hops since it left, per channel in drift
+        # hops since the channel left its envelope: outside in a row before a drift, every hop
+        # (inside or out) during one, so the pace is always measured over the whole departure
+        self.outside = np.zeros(n, dtype=np.int64)
         # window levels one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -115,13 +116,13 @@ class DriftMonitor:
         events = []
         for c in range(len(m)):
             if self.in_drift[c]:
-                self.away[c] += 1
+                self.outside[c] += 1
                 self.inside[c] = self.inside[c] + 1 if e[c] <= 0 else 0
                 self.peak[c] = max(self.peak[c], e[c])
                 if self.inside[c] >= self.past.maxlen:
                     events += self._end(c, time_text, "back")
-                elif e[c] > self.v_max[c] * self.away[c] / self.past.maxlen:
-                    self.outside[c] = self.away[c]  # the re-entry check sees the whole departure
+                    self.outside[c] = 0
+                elif e[c] > self.v_max[c] * self.outside[c] / self.past.maxlen:
                     events += self._end(c, time_text, "faster")
             else:
                 self.outside[c] = self.outside[c] + 1 if e[c] > 0 else 0
@@ -129,7 +130,6 @@ class DriftMonitor:
                 if (windows_out >= 1 and e[c] <= self.v_max[c] * windows_out
                         and not blocked[c] and speed[c] <= self.v_max[c]):
                     self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
-                    self.away[c], self.outside[c] = self.outside[c], 0
             if self.in_drift[c] and not self.reported[c] and e[c] > MARGIN:
                 self.reported[c] = True
                 events.append({"event": "drift", "channel": self.channels[c],
@@ -147,7 +147,7 @@ class DriftMonitor:
                            "time": time_text, "since": self.since[c],
                            "peak_excess": round(float(self.peak[c]), 6), "reason": reason})
         self.in_drift[c], self.reported[c] = False, False
-        self.since[c], self.inside[c], self.away[c] = None, 0, 0
+        self.since[c], self.inside[c] = None, 0
         return events
 
     def reset(self) -> None:
@@ -159,7 +159,6 @@ class DriftMonitor:
                 "reported": [bool(v) for v in self.reported], "since": list(self.since),
                 "peak": [float(v) for v in self.peak], "inside": [int(v) for v in self.inside],
                 "outside": [int(v) for v in self.outside],
-                "away": [int(v) for v in self.away],
                 "past": [[float(v) for v in m] for m in self.past]}
 
     def restore(self, d: dict) -> None:
@@ -169,6 +168,5 @@ class DriftMonitor:
         self.peak = np.asarray(d["peak"], dtype=np.float64)
         self.inside = np.asarray(d["inside"], dtype=np.int64)
         self.outside = np.asarray(d["outside"], dtype=np.int64)
-        self.away = np.asarray(d["away"], dtype=np.int64)
         self.past.clear()
         self.past.extend(np.asarray(m, dtype=np.float64) for m in d["past"])
