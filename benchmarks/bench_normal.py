@@ -7,7 +7,9 @@ test rig, see its README) is normal operation from start to end. Per training le
 rows train with `ganlet train`'s defaults, `ganlet compile` packs a bundle for the default board
 (budget: one false alarm per week), and every later row goes through `run.py stream` as a
 gateway would see it. Prints the alerts raised, the streamed hours, alarms per week, the share
-of streamed time inside an open alert, the hops above the threshold and the drift events. Every alert here is a false alarm; the budget is a
+of streamed time inside an open alert, the hops above the threshold, the drift events and how
+many alerts the CUSUM opened ("off" where the history was too short to arm it). Every alert
+here is a false alarm; the budget is a
 promise about data like the training span, so the gap between the two is what a short history
 costs. The SKAB folder is test data beside the repository, not part of it.
 """
@@ -15,6 +17,7 @@ costs. The SKAB folder is test data beside the repository, not part of it.
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 import tempfile
 import time
@@ -43,7 +46,10 @@ def run_length(path: Path, rows: int, seed: int, out: Path, drift: str) -> dict:
     scores = read_scores(run.scores)
     hours = (scores["time"].iloc[-1] - scores["time"].iloc[0]).total_seconds() / 3600
     opened = [e for e in run.events if e["event"] == "alert_opened"]
+    manifest = json.loads((out / "bundle" / "manifest.json").read_text())
     return {"rows": rows, "hours": hours, "alerts": len(opened),
+            "by_cusum": sum(e.get("opened_by") == "cusum" for e in opened)
+            if "cusum" in manifest["threshold"] else None,
             "per_week": len(opened) / (hours * 3600) * WEEK_S,
             "in_alert": float(scores["alert"].mean()),
             "hops_above": float((scores["score"] > scores["threshold"]).mean()),
@@ -68,7 +74,7 @@ def main() -> None:
     print(f"SKAB anomaly-free, seed {a.seed}, defaults (budget 1 false alarm per week), "
           f"--drift {drift}")
     print(f"{'train rows':>10}  {'streamed h':>10}  {'alerts':>6}  {'per week':>9}  "
-          f"{'in alert':>8}  {'hops above':>10}  {'drifts':>6}  {'s':>5}")
+          f"{'in alert':>8}  {'hops above':>10}  {'drifts':>6}  {'by cusum':>8}  {'s':>5}")
     with tempfile.TemporaryDirectory(prefix="ganlet-normal-") as tmp:
         for rows in a.train_rows:
             started = time.perf_counter()
@@ -76,6 +82,7 @@ def main() -> None:
             print(f"{r['rows']:>10}  {r['hours']:>10.2f}  {r['alerts']:>6}  "
                   f"{r['per_week']:>9.0f}  {r['in_alert']:>8.3f}  {r['hops_above']:>10.3f}  "
                   f"{r['drifts']:>6}  "
+                  f"{'off' if r['by_cusum'] is None else r['by_cusum']:>8}  "
                   f"{time.perf_counter() - started:>5.0f}")
 
 

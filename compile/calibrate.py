@@ -12,8 +12,9 @@ device's int8 student, or the teacher for `ganlet evaluate` on a model directory
 3. score scale: per regime and channel, the median RMS error over the calibration span's hops
    (a channel's error then reads "times its normal error in this regime");
 4. threshold: the policy fitted to the calibration span's scores; `pot` takes the risk per hop
-   from the engineer's false-alarm budget (alarms per week on normal data).
-`policy_for` is also the rule `ganlet evaluate` gives every method.
+   from the engineer's false-alarm budget (alarms per week on normal data); with a history long
+   enough, a CUSUM of the log score beside it (runtime/cusum.py), the budget shared.
+`threshold_policy` is also the rule `ganlet evaluate` gives every method.
 """
 
 from __future__ import annotations
@@ -26,12 +27,13 @@ from scipy.stats import spearmanr
 
 from ganlet.compile.train import TrainedModel
 from ganlet.runtime.alerts import default_alerting
+from ganlet.runtime.cusum import calibrate_cusum
 from ganlet.runtime.detector import Detector
 from ganlet.runtime.drift import drift_section, window_level
 from ganlet.runtime.lstm import Network
 from ganlet.runtime.manifest import Bundle, build_manifest
 from ganlet.runtime.score import ScoreRule, score_section
-from ganlet.runtime.thresholds import KINDS, calibrate_policy
+from ganlet.runtime.thresholds import CUSUM_KEY, KINDS, calibrate_policy
 
 SECONDS_PER_WEEK = 7 * 86400.0
 # The engineer's false-alarm budget on normal data when none is given: one alarm per week per
@@ -86,10 +88,41 @@ def budget_record(alarms_per_week: float, risk: float, policy: dict, hop_s: floa
     hops_per_week = SECONDS_PER_WEEK / hop_s
     pot = policy["kind"] == "pot"
     n = int(policy["n"]) if pot else None
+    cusum_risk = risk / 2 if CUSUM_KEY in policy else 0.0  # the CUSUM's half of the budget
     return {"budget_per_week": float(alarms_per_week), "risk_per_hop": risk,
-            "expected_per_week_at_most": policy["q"] * hops_per_week if pot else None,
+            "expected_per_week_at_most": (policy["q"] + cusum_risk) * hops_per_week
+            if pot else None,
             "tail_scores": n,
             "measurable_per_week": hops_per_week / (n + 1) if pot else None}
+
+
+def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
+    """(the threshold section, its CUSUM report): `policy_for` on all the scores of `pieces`
+    (normal scores, each piece in hop order), and for `pot` the CUSUM beside it
+    (runtime/cusum.py) when the pieces show enough excursions to fit its limit. The two then
+    share the risk, half each, so together they stay within the budget (an alarm needs one of
+    them past its level: at most the sum of the two rates)."""
+    scores = np.concatenate([np.asarray(p, np.float64) for p in pieces])
+    if kind != "pot" or risk is None:
+        return policy_for(kind, scores, risk), {"section": None, "excursions": 0,
+                                                "why_off": "it needs the pot threshold"}
+    cusum = calibrate_cusum(pieces, risk / 2)
+    if cusum["section"] is None:
+        return policy_for(kind, scores, risk), cusum
+    policy = policy_for(kind, scores, risk / 2)
+    if policy["kind"] != "pot":  # too few scores for the tail: the static fallback, alone
+        return policy_for(kind, scores, risk), {**cusum, "section": None,
+                                                "why_off": "it needs the pot threshold"}
+    return {**policy, CUSUM_KEY: cusum["section"]}, cusum
+
+
+def cusum_line(report: dict) -> str:
+    """compile's line on the CUSUM (threshold_policy's report)."""
+    if report["section"] is not None:
+        return (f"cusum: a rise held over many hops also alerts (evidence limit "
+                f"{report['section']['limit']:.3g}, fitted on {report['excursions']} "
+                "excursions of the normal history); it shares the budget")
+    return f"cusum: off; {report['why_off']}"
 
 
 def policy_for(kind: str, scores: np.ndarray, risk: Optional[float] = None) -> dict:
@@ -272,10 +305,10 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
                           steps, STATISTIC)
     scores = ScoreRule(score).apply(res[cal], hop_means[cal])[0]
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
-    policy = policy_for(kind, tail_scores(scores, res[~cal], hop_means[~cal], centres, steps),
-                        risk if kind == "pot" else None)
+    pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, steps)
+    policy, cusum = threshold_policy(kind, pieces, risk if kind == "pot" else None)
     false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
-    report = {"regimes": regimes, "threshold_kind": policy["kind"],
+    report = {"regimes": regimes, "threshold_kind": policy["kind"], "cusum": cusum,
               "calibration_scores": int(cal.sum()), "false_alarms": false_alarms}
     return Calibration(score, drift, policy, {**default_alerting(window, hop), **(alerting or {})},
                        false_alarms, scores, report)
@@ -293,18 +326,19 @@ def calibrated_bundle(model: TrainedModel, scorer, window: int, hop: int, kind: 
 
 
 def tail_scores(cal_scores: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarray,
-                centres: np.ndarray, steps: int) -> np.ndarray:
+                centres: np.ndarray, steps: int) -> list:
     """The scores the threshold's tail is fitted on: the calibration span's, and the fit span's
     each relative to the fit span's own per-regime median error. The normal level (the score's
     scale) stays the calibration span's, which the network never trained on; the shape of the
     tail gets every training window, since a short calibration span alone holds too few,
     strongly correlated scores to show it (issue 11's notes: on 400-row SKAB files the
-    calibration span alone put the level barely above the median)."""
+    calibration span alone put the level barely above the median). Two pieces, each in hop
+    order (the CUSUM's excursions are counted within each)."""
     if len(fit_res) < 2:
-        return cal_scores
+        return [cal_scores]
     fit_rule = ScoreRule(score_section(centres, regime_scale(fit_res, fit_means, centres),
                                        COMBINE, steps, STATISTIC))
-    return np.concatenate([cal_scores, fit_rule.apply(fit_res, fit_means)[0]])
+    return [cal_scores, fit_rule.apply(fit_res, fit_means)[0]]
 
 
 def regime_scale(res: np.ndarray, means: np.ndarray, centres: np.ndarray) -> np.ndarray:

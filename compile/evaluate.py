@@ -11,7 +11,7 @@ Scores per grid point:
               rate (an off-the-shelf method is run that way; DEVELOPERS.md has both figures)
 One rule for every method, the one the gateway ships: the bundle's threshold policy kind and
 false-alarm budget (for a model directory, the kind and budget asked for), calibrated on the
-method's own calibration-span scores (compile/calibrate.py policy_for), then the gateway's own
+method's own calibration-span scores (compile/calibrate.py threshold_policy), then the gateway's own
 Judge (threshold + alert machine, runtime/detector.py) hop by hop. The bundle's alerts are the
 gateway's own (`run.py stream`); the teacher runs through the gateway's Detector on the same
 feed with its own calibration (drift envelope, regimes, score scale, threshold), as if it were
@@ -40,8 +40,8 @@ from ganlet.compile.calibrate import (
     DEFAULT_ALARMS_PER_WEEK,
     DRIFT_ACTION,
     calibrated_bundle,
-    policy_for,
     risk_per_hop,
+    threshold_policy,
 )
 from ganlet.compile.data import (
     Frame,
@@ -55,6 +55,7 @@ from ganlet.compile.data import (
 from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
 from ganlet.compile.verify import alert_events, clean_json, replay_alerts, replay_feed
 from ganlet.runtime.alerts import default_alerting
+from ganlet.runtime.cusum import MIN_EXCURSIONS
 from ganlet.runtime.drift import action_summary
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
@@ -143,8 +144,8 @@ class Rule:
     drift: str = DRIFT_ACTION
 
     def policy(self, calibration_scores: np.ndarray, period_s: float) -> dict:
-        return policy_for(self.kind, calibration_scores,
-                          risk_per_hop(self.alarms_per_week, period_s, 1))
+        return threshold_policy(self.kind, [calibration_scores],
+                                risk_per_hop(self.alarms_per_week, period_s, 1))[0]
 
     def apply(self, calibration_scores: np.ndarray, scores: np.ndarray, period_s: float):
         policy = self.policy(calibration_scores, period_s)
@@ -578,7 +579,12 @@ def rule_html(result: EvalResult) -> str:
                              "-"],
                             ["drift", result.rule.drift,
                              "a channel drifting out of its training range: "
-                             + action_summary(result.rule.drift), "-"]]
+                             + action_summary(result.rule.drift), "-"],
+                            ["cusum", "with pot",
+                             "a CUSUM of the log score also alerts on a rise held over many "
+                             "steps, fitted for the same budget (shared), where a method's "
+                             f"calibration scores are positive and show {MIN_EXCURSIONS} "
+                             "excursions of its evidence", "-"]]
                            + rep.alert_settings_rows(result.rule.alerting, step_s))
     note = (f"One step is one score: for the bundle one hop = {rep.duration(step_s)}; "
             if "bundle hop" in steps else "One step is one score: ")

@@ -71,6 +71,11 @@ class AlertMachine:
         return self._run_len
 
     @property
+    def cooling(self) -> bool:
+        """In the cooldown after an alert closed (no alert opens)."""
+        return self._cooldown_left > 0
+
+    @property
     def is_warm(self) -> bool:
         return self.hop >= self.warmup_hops
 

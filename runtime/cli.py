@@ -260,6 +260,9 @@ def detector_line(summary: dict) -> str:
         parts.append(text + extrapolation_note(budget))
     parts.append(f"alert after {a['min_hops']} hops above, closed below "
                  f"{a['close_ratio']:g} x threshold, cooldown {a['cooldown_hops']} hops")
+    if summary.get("cusum"):
+        parts.append("or while a CUSUM of the log score holds a rise above "
+                     f"{summary['cusum']['limit']:.3g}")
     drift = summary.get("drift")
     parts.append("drift: " + action_summary(drift))
     return "; ".join(parts)

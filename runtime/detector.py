@@ -33,6 +33,7 @@ import numpy as np
 
 from . import features
 from .alerts import ALERTING_KEYS, CLOSED, OPENED, WARMED_UP, AlertMachine
+from .cusum import Cusum
 from .drift import DriftMonitor, window_level
 from .intake import RowError, format_time
 from .ring import Ring
@@ -75,6 +76,7 @@ class Judge:
         self.channels = list(channels)
         self.units = list(units)
         self.threshold = make_threshold(dict(policy))
+        self.cusum = Cusum.from_policy(policy)  # None: single hops only
         self.machine = AlertMachine(**{k: alerting[k] for k in ALERTING_KEYS})
         # the last min_hops hops: an alert opens at the first of them (open_since_hop)
         self.recent = deque(maxlen=self.machine.min_hops)  # (hop, time, parts)
@@ -90,8 +92,9 @@ class Judge:
         self.level = float(self.threshold.level)
         hop = self.machine.hop
         was_open = self.machine.is_open
-        transition = self.machine.step(score, self.level)
-        if not was_open and not self.machine.is_open and score <= self.level:
+        judged = self._judged(score)
+        transition = self.machine.step(judged, self.level)
+        if not was_open and not self.machine.is_open and judged <= self.level:
             self.threshold.absorb(score)  # only what it judged normal, never inside an alert
         self.recent.append((hop, t, parts))
         if self.alert is not None:  # an open alert (its closing hop included) collects parts
@@ -102,15 +105,30 @@ class Judge:
         if transition == WARMED_UP:
             events.append({"event": "warmed_up", "time": format_time(t), "hop": hop})
         elif transition == OPENED:
-            events.append(self._open())
+            events.append(self._open("score" if score > self.level else "cusum"))
         elif transition == CLOSED:
             events.append(self._alert_event("alert_closed", closed=format_time(t)))
             self.alert = None
+            if self.cusum is not None:  # its evidence belongs to the alert, not to what follows
+                self.cusum.clear()
         return events
+
+    def _judged(self, score: float) -> float:
+        """What the alert machine compares with the level: the score, or the CUSUM's evidence
+        in the score's units (cusum.py), which gathers none while the machine cools down."""
+        if self.cusum is None:
+            return score
+        if not self.machine.cooling:
+            self.cusum.add(score)
+        if self.alert is not None and self.alert.get("opened_by") == "score":
+            return score  # an alert the score opened closes when the score falls back
+        return self.cusum.judged(score, self.level)
 
     def reset_run(self) -> None:
         """After a long gap the hops before it no longer lead up to the hops after it."""
         self.recent.clear()
+        if self.cusum is not None:
+            self.cusum.clear()
 
     def alert_channels(self) -> np.ndarray:
         """Channels of an open or pending alert: those whose contribution to the last hop is
@@ -125,12 +143,12 @@ class Judge:
         self.alert["parts_sum"] = [a + float(b) for a, b in zip(self.alert["parts_sum"], parts)]
         self.alert["hops"] += 1
 
-    def _open(self) -> dict:
+    def _open(self, opened_by: str) -> dict:
         since = self.machine.open_since_hop
         run = [(h, t, p) for h, t, p in self.recent if h >= since]
         opened = format_time(run[0][1])
         self.alert = {"alert_id": alert_id(self.bundle_id, opened), "opened": opened,
-                      "opened_hop": since, "threshold": self.level,
+                      "opened_hop": since, "threshold": self.level, "opened_by": opened_by,
                       "parts_sum": [0.0] * len(self.channels), "hops": 0}
         for _, _, p in run:
             self._add(p)
@@ -145,6 +163,8 @@ class Judge:
                  "channels": self._top_channels()}
         if a.get("moved") is not None:  # set at the opening (Detector.moved); older states lack it
             event["moved"] = a["moved"]
+        if a.get("opened_by") is not None:  # older states lack it
+            event["opened_by"] = a["opened_by"]
         return event
 
     def _top_channels(self) -> List[Dict]:
@@ -156,7 +176,8 @@ class Judge:
     def state(self) -> dict:
         return {"threshold": self.threshold.state(), "machine": self.machine.state(),
                 "recent": [[h, t, [float(v) for v in p]] for h, t, p in self.recent],
-                "alert": self.alert}
+                "alert": self.alert,
+                "cusum": None if self.cusum is None else self.cusum.state()}
 
     def restore(self, d: dict) -> None:
         self.threshold = threshold_from_state(d["threshold"])
@@ -166,6 +187,9 @@ class Judge:
             maxlen=self.machine.min_hops,
         )
         self.alert = d["alert"]
+        if self.cusum is not None:  # a state from before the CUSUM existed starts it at 0
+            saved = d.get("cusum")
+            self.cusum.restore(0.0 if saved is None else saved)
 
 
 class Detector:

@@ -37,6 +37,7 @@ from typing import Dict, List, Optional, Sequence, Tuple
 import numpy as np
 
 from .alerts import AlertMachine
+from .cusum import Cusum
 from .drift import DriftMonitor
 from .features import FEATURE_KINDS, rate_mask
 from .lstm import contract_shapes
@@ -260,7 +261,8 @@ def _check_network(net: dict) -> None:
 
 def _check_sections(manifest: dict) -> None:
     """score, threshold and alerting are checked by building them, as the gateway will."""
-    builders = [("score", ScoreRule), ("threshold", make_threshold),
+    builders = [("score", ScoreRule),
+                ("threshold", lambda d: (make_threshold(d), Cusum.from_policy(d))),
                 ("alerting", lambda d: AlertMachine(**d))]
     if "drift" in manifest:
         builders.append(("drift", lambda d: DriftMonitor(d, [c["name"] for c in
@@ -329,8 +331,10 @@ def build_manifest(
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
     network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
-    drift: drift.drift_section(...) (optional); false_alarms: the budget the threshold was
-    calibrated to and the rate it implies (optional, informative); time_zone: the zone
+    threshold: a policy (thresholds.make_threshold), optionally with "cusum" (cusum.Cusum; an
+    older runtime refuses such a manifest); drift: drift.drift_section(...) (optional);
+    false_alarms: the budget the threshold was calibrated to and the rate it implies
+    (optional, informative); time_zone: the zone
     zone-less input times were read in at training (the gateway's default); fidelity
     (optional): how the bundle's network compares with the teacher it came from
     (compile/fidelity.py), information for people that the gateway does not read."""
@@ -458,6 +462,7 @@ class Bundle:
             "window": self.window,
             "hop": self.hop,
             "threshold": self.threshold_policy.get("kind"),
+            "cusum": self.threshold_policy.get("cusum"),
             "false_alarms": m.get("false_alarms"),
             "alerting": dict(self.alerting),
             "drift": (m["drift"].get("action", "report") if m.get("drift") is not None

@@ -41,6 +41,7 @@ import numpy as np
 
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, FEED, JUMP, MAX_AHEAD_S, ClockBounds, Timeline
+from .cusum import OPENED_BY
 from .detector import Detector
 from .events import (
     ALERT_EVENTS,
@@ -495,7 +496,8 @@ def _check_judge(judge, n: int) -> None:
                 and isinstance(a.get("threshold"), (int, float))
                 and isinstance(a.get("parts_sum"), list) and len(a["parts_sum"]) == n
                 and all(isinstance(v, (int, float)) for v in a["parts_sum"])
-                and _moved_ok(a.get("moved"))):
+                and _moved_ok(a.get("moved"))
+                and a.get("opened_by") in (None,) + OPENED_BY):
             raise ValueError("open alert record is malformed")
 
 

@@ -20,6 +20,9 @@ long fault cannot raise the level it is judged against.
   gives the level z_q exceeded with probability q.
 
 Non-finite scores are never absorbed; they get the threshold in force and change nothing.
+
+Beside a pot policy, optionally, a CUSUM of the log score (cusum.py, the policy's "cusum" key)
+for faults that hold the score a little above normal for a long time.
 """
 
 import math
@@ -390,6 +393,10 @@ def _check_kind(cls, d: Dict[str, Any]) -> None:
         raise ValueError(f"not a {cls.kind!r} threshold state: {d!r:.80}")
 
 
+# The policy's optional CUSUM beside the threshold (cusum.py): {"median", "allowance", "limit"}.
+CUSUM_KEY = "cusum"
+
+
 def make_threshold(policy: Dict[str, Any]):
     """{"kind": "static" | "rolling" | "pot", **params} -> a threshold instance."""
     if not isinstance(policy, dict):
@@ -398,7 +405,7 @@ def make_threshold(policy: Dict[str, Any]):
     if kind not in _KINDS:
         raise ValueError(f"unknown threshold kind {kind!r}; choose one of {sorted(_KINDS)}")
     cls = _KINDS[kind]
-    params = {k: v for k, v in policy.items() if k != "kind"}
+    params = {k: v for k, v in policy.items() if k not in ("kind", CUSUM_KEY)}
     missing = [k for k in cls._required if k not in params]
     if missing:
         raise ValueError(f"{kind!r} threshold policy is missing {missing}")

@@ -219,6 +219,9 @@ def test_manifest_describes_the_detector(teacher, bundle):
     assert fa["tail_scores"] == m["threshold"]["n"]
     hops_per_week = 7 * 86400 / (60.0 * m["hop"])
     assert fa["measurable_per_week"] == pytest.approx(hops_per_week / (m["threshold"]["n"] + 1))
+    # with or without the CUSUM (which takes half the risk), within the budget
+    assert fa["expected_per_week_at_most"] <= fa["budget_per_week"] * (1 + 1e-9)
+    assert "cusum: " in bundle["stdout"]
     for key in ("lo", "hi", "v_max"):
         assert len(m["drift"][key]) == 3
     # the default board when --board is omitted
@@ -333,6 +336,9 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
     assert (f"closed below {manifest['alerting']['close_ratio']:g} x threshold"
             in ok.stdout)
     assert "drift: reported once, re-centred onto the training range" in ok.stdout
+    cusum = manifest["threshold"].get("cusum")
+    said = f"holds a rise above {cusum['limit']:.3g}" if cusum else "CUSUM"
+    assert (said in ok.stdout) if cusum else (said not in ok.stdout)
 
     copy = tmp_path / "B"
     shutil.copytree(bundle["dir"], copy)

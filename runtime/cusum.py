@@ -1,0 +1,137 @@
+"""CUSUM of the log score beside the threshold: faults that hold the score a little high for long.
+
+A sagging pressure or a slowly blocking filter can hold the score at two or three times its
+normal level for an hour without one hop passing a level set for one rare hop a week. Page's
+CUSUM (Page, Biometrika 1954) accumulates the evidence of such a hold:
+
+    S_t = min(CAP x limit, max(0, S_{t-1} + log(score_t / median) - allowance))
+
+- median: the normal score's median (the history's); log(score / median) puts the score on the
+  ratio scale it lives on (multiples of normal error), where a spike and a hold of the same
+  factor weigh the same;
+- allowance = log(q90 / median), q90 the history's 90th percentile: a hop in the normal top
+  decile adds evidence, any lower hop takes it away, so on normal data S returns to 0 within a
+  few hops of every excursion;
+- limit: the evidence passed once per the budget's share of alarms, fitted by POT (a GPD on
+  the history's excursion peaks above their median, as the threshold's own tail, thresholds.py);
+- CAP = 2: a long fault's evidence stops at twice the limit, so the alert it holds open closes
+  within about a limit's worth of normal hops after the fault ends (without a cap, an hours
+  long fault's evidence held its alert open over the next fault).
+
+The Judge (detector.py) hands the alert machine max(score, level x S / limit): the score, or the
+evidence in the score's units, so one machine opens, holds and closes on either. Evidence is not
+gathered while the machine cools down after an alert (those windows still hold the alert's
+data), it restarts at 0 when an alert closes or after a gap, and an alert the score opened is
+judged on the score alone. The median, allowance and limit are fixed: the CUSUM never learns
+from the stream. Its settings sit in the threshold policy under CUSUM_KEY.
+"""
+
+import math
+from typing import Any, Dict, List, Optional, Sequence
+
+import numpy as np
+
+from .thresholds import CUSUM_KEY, _num, fit_gpd, pot_quantile
+
+CAP = 2.0                    # evidence stops at CAP x limit (see above)
+ALLOWANCE_QUANTILE = 0.9     # the normal score quantile a hop must pass to add evidence
+# The limit is a GPD fit on the excursion peaks above their median: at least 20 excursions, so
+# at least 10 peaks for the fit, the pot threshold's own minimum (thresholds.py, from memory:
+# a GPD fit on fewer is not worth having). Fewer: compile leaves the CUSUM out.
+MIN_EXCURSIONS = 20
+OPENED_BY = ("score", "cusum")  # what opened an alert (the alert events' `opened_by`)
+
+
+class Cusum:
+    """The evidence S of a held rise; see the module docstring."""
+
+    def __init__(self, median: float, allowance: float, limit: float):
+        self.median = _num("threshold.cusum.median", median, 0.0, lo_open=True)
+        self.allowance = _num("threshold.cusum.allowance", allowance, 0.0)
+        self.limit = _num("threshold.cusum.limit", limit, 0.0, lo_open=True)
+        self.evidence = 0.0
+
+    @classmethod
+    def from_policy(cls, policy: Dict[str, Any]) -> "Optional[Cusum]":
+        section = policy.get(CUSUM_KEY)
+        if section is None:
+            return None
+        if not isinstance(section, dict) or sorted(section) != ["allowance", "limit", "median"]:
+            raise ValueError('threshold.cusum must be {"median": m, "allowance": a, '
+                             '"limit": h}')
+        return cls(section["median"], section["allowance"], section["limit"])
+
+    def add(self, score: float) -> None:
+        """Take one hop's score (non-finite scores change nothing)."""
+        if math.isfinite(score):
+            step = math.log(max(score, 1e-300) / self.median) - self.allowance
+            self.evidence = min(CAP * self.limit, max(0.0, self.evidence + step))
+
+    def judged(self, score: float, level: float) -> float:
+        """What the alert machine compares with `level`: the score or the evidence, scaled."""
+        if not (math.isfinite(score) and math.isfinite(level)):
+            return score  # compares false both ways, as without the CUSUM
+        return max(score, level * self.evidence / self.limit)
+
+    def clear(self) -> None:
+        self.evidence = 0.0
+
+    def state(self) -> float:
+        return self.evidence
+
+    def restore(self, evidence: Any) -> None:
+        ok = (isinstance(evidence, (int, float)) and not isinstance(evidence, bool)
+              and 0.0 <= evidence <= CAP * self.limit)
+        if not ok:
+            raise ValueError("the CUSUM's evidence is malformed")
+        self.evidence = float(evidence)
+
+
+# ---------------------------------------------------------------- fitted on the workstation
+
+def excursion_peaks(scores: np.ndarray, median: float, allowance: float) -> List[float]:
+    """The peak evidence of each excursion (a run of S > 0 that returned to 0) of the uncapped
+    CUSUM over `scores`, in order; a run still open at the end is left out (its peak is not
+    known)."""
+    peaks, s, top = [], 0.0, 0.0
+    steps = np.log(np.maximum(np.asarray(scores, np.float64), 1e-300) / median) - allowance
+    for step in steps:
+        s = max(0.0, s + float(step))
+        if s > 0:
+            top = max(top, s)
+        elif top > 0:
+            peaks.append(top)
+            top = 0.0
+    return peaks
+
+
+def calibrate_cusum(pieces: Sequence[np.ndarray], risk: float) -> Dict[str, Any]:
+    """The CUSUM section for a risk per hop (its share of the false-alarm budget), from normal
+    scores in `pieces` (each a stretch in hop order), and what it was fitted on:
+    {"section": {...} or None, "excursions": n, "why_off": text or None}.
+
+    With N scores showing n excursions, a risk per hop q allows q N / n exceedances per
+    excursion: the limit is the GPD tail quantile of the peaks at that probability."""
+    finite = [np.asarray(p, np.float64)[np.isfinite(p)] for p in pieces]
+    scores = np.concatenate(finite) if finite else np.zeros(0)
+    if scores.size == 0 or not (scores > 0).all():
+        return {"section": None, "excursions": 0,
+                "why_off": "its scores must be positive (a ratio scale)"}
+    median = float(np.median(scores))
+    allowance = max(0.0, math.log(float(np.quantile(scores, ALLOWANCE_QUANTILE)) / median))
+    peaks = np.asarray([v for p in finite for v in excursion_peaks(p, median, allowance)])
+    if peaks.size < MIN_EXCURSIONS:
+        return {"section": None, "excursions": int(peaks.size),
+                "why_off": f"the history shows {peaks.size} excursions of the evidence and "
+                           f"its limit needs {MIN_EXCURSIONS}: compile from a longer normal "
+                           "history to arm it"}
+    u = float(np.median(peaks))
+    excesses = peaks[peaks > u] - u
+    if excesses.size == 0:
+        return {"section": None, "excursions": int(peaks.size),
+                "why_off": "every excursion of the evidence peaks alike"}
+    xi, sigma = fit_gpd(excesses)
+    chance = risk * scores.size / peaks.size  # exceedances allowed per excursion
+    limit = pot_quantile(u, xi, sigma, chance, int(peaks.size), int(excesses.size))
+    return {"section": {"median": median, "allowance": allowance, "limit": max(limit, u)},
+            "excursions": int(peaks.size), "why_off": None}
