@@ -6,17 +6,18 @@ CUSUM (Page, Biometrika 1954) accumulates the evidence of such a hold:
 
     S_t = min(CAP x limit, max(0, S_{t-1} + log(score_t / median) - allowance))
 
-- median: the normal score's median (the history's); log(score / median) puts the score on the
-  ratio scale it lives on (multiples of normal error), where a spike and a hold of the same
-  factor weigh the same;
+- median: the normal score's median (the history's); log(score / median) reads the score on the
+  ratio scale it lives on (multiples of normal error), where one wild hop adds only the log of
+  its ratio: a single spike cannot carry the evidence, a held rise does;
 - allowance = log(q90 / median), q90 the history's 90th percentile: a hop in the normal top
   decile adds evidence, any lower hop takes it away, so on normal data S returns to 0 within a
   few hops of every excursion;
 - limit: the evidence passed once per the budget's share of alarms, fitted by POT (a GPD on
   the history's excursion peaks above their median, as the threshold's own tail, thresholds.py);
 - CAP = 2: a long fault's evidence stops at twice the limit, so the alert it holds open closes
-  within about a limit's worth of normal hops after the fault ends (without a cap, an hours
-  long fault's evidence held its alert open over the next fault).
+  about limit / allowance normal hops after the fault ends (a normal hop takes the allowance
+  away on average); without a cap the demo's hours-long bearing wear held its alert open over
+  the cavitation that followed it.
 
 The Judge (detector.py) hands the alert machine max(score, level x S / limit): the score, or the
 evidence in the score's units, so one machine opens, holds and closes on either. Evidence is not

@@ -362,6 +362,28 @@ def test_a_malformed_drift_state_exits_3_never_a_traceback(tmp_path):
     assert codes[3] > 50
 
 
+def test_a_malformed_cusum_state_exits_3_never_a_traceback(tmp_path):
+    """The CUSUM's evidence in a saved state (runtime/cusum.py), damaged: refused at start."""
+    calibration = fx.direct_scores(fx.build_bundle(tmp_path / "probe", onnx_model=False),
+                                   fx.scaled(fx.raw_values(600, seed=99)), WINDOW, HOP)
+    median = float(np.median(calibration))
+    bundle = fx.build_bundle(tmp_path / "bundle", window=WINDOW, hop=HOP, threshold={
+        "kind": "static", "level": 1e9,
+        "cusum": {"median": median, "allowance": 0.1, "limit": 1e6}})  # gathers, never alerts
+    values = fx.raw_values(120, seed=42, anomalies=[(40, 80, 1, 3.0)])
+    feed = write_lines(tmp_path / "feed.csv",
+                       [HEADER] + rows_text(values[:80], fx.T0 + np.arange(80.0)))
+    state = tmp_path / "state.json"
+    assert stream(bundle, feed, "--state", str(state)).code == 0
+    doc = json.loads(state.read_text())
+    assert doc["state"]["detector"]["judge"]["cusum"] > 0  # precondition: evidence gathered
+    more = write_lines(tmp_path / "more.csv",
+                       [HEADER] + rows_text(values[80:], fx.T0 + 80 + np.arange(40.0)))
+    codes = _damaged_state_codes(bundle, more, state, doc, ("detector", "judge", "cusum"), 3e6)
+    print(f"malformed CUSUM states: {codes}")
+    assert codes.get(0, 0) == 1 and codes[3] == 7  # only null (an older state: from 0) runs
+
+
 # ----------------------------------------------------- issue 13 section 3: dialects and zones
 def _berlin_local(t: float) -> str:
     # reference: pandas converts UTC to Europe/Berlin wall-clock time
