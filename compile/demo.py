@@ -34,8 +34,36 @@ def demo_config(quick: bool, seed: int) -> TeacherConfig:
 
 def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], None] = print) -> dict:
     out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
     started = time.perf_counter()
+    info, result, compiled, test_csv, replay = replay_on_gateway(out, quick, seed, echo)
+    echo(alerts_beside_incidents(replay["alerts"], Path(info["incidents"])))
+    echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
+         f"events in {replay['events']}")
+
+    reports = out / "reports"
+    parity, detection = write_reports(compiled.bundle, result.out, info, test_csv, replay,
+                                      reports, echo)
+
+    paths = {"data": info["data"], "incidents": info["incidents"],
+             "model": str(result.out), "training_plot": str(result.out / "training.png"),
+             "bundle": str(compiled.bundle), "gateway_events": replay["events"],
+             "gateway_scores": replay["scores"], "gateway_alerts": replay["alert_db"],
+             "parity_report": str(reports / "parity.html"),
+             "detection_report": str(reports / "detection.html")}
+    echo(f"== parity verdict: {'PASS' if parity.passed else 'FAIL'}; reports: "
+         f"{paths['parity_report']} and {paths['detection_report']}")
+    summary = {"paths": paths, "train_seconds": result.seconds,
+               "compile": compiled.report, "alerts": replay["alerts"],
+               "parity_passed": parity.passed, "detection": detection.to_json(),
+               "seconds": time.perf_counter() - started}
+    (out / "demo_summary.json").write_text(json.dumps(summary, indent=2, default=str))
+    return summary
+
+
+def replay_on_gateway(out: Path, quick: bool, seed: int, echo: Callable[[str], None]) -> tuple:
+    """Steps 1-4: invent the data, train, compile for the default board and replay the test
+    span through the bundle's run.py; returns (info, trained, compiled, test_csv, replay)."""
+    out.mkdir(parents=True, exist_ok=True)
     echo("== 1. invented data: Hollowmere booster station, pump P2 (all values invented)")
     info = pump_station.generate(out / "data", seed=seed)
     pump_station.plot(info["data"], info["incidents"], out / "data" / "station.png")
@@ -59,28 +87,7 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     test_csv = out / "data" / "test_span.csv"
     write_test_span(Path(info["data"]), info["test_start"], compiled.plan.window, test_csv)
     replay = replay_through_bundle(compiled.bundle, test_csv, out / "gateway")
-    echo(alerts_beside_incidents(replay["alerts"], Path(info["incidents"])))
-    echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
-         f"events in {replay['events']}")
-
-    reports = out / "reports"
-    parity, detection = write_reports(compiled.bundle, result.out, info, test_csv, replay,
-                                      reports, echo)
-
-    paths = {"data": info["data"], "incidents": info["incidents"],
-             "model": str(result.out), "training_plot": str(result.out / "training.png"),
-             "bundle": str(compiled.bundle), "gateway_events": replay["events"],
-             "gateway_scores": replay["scores"], "gateway_alerts": replay["alert_db"],
-             "parity_report": str(reports / "parity.html"),
-             "detection_report": str(reports / "detection.html")}
-    echo(f"== parity verdict: {'PASS' if parity.passed else 'FAIL'}; reports: "
-         f"{paths['parity_report']} and {paths['detection_report']}")
-    summary = {"paths": paths, "train_seconds": result.seconds,
-               "compile": compiled.report, "alerts": replay["alerts"],
-               "parity_passed": parity.passed, "detection": detection.to_json(),
-               "seconds": time.perf_counter() - started}
-    (out / "demo_summary.json").write_text(json.dumps(summary, indent=2, default=str))
-    return summary
+    return info, result, compiled, test_csv, replay
 
 
 def write_reports(bundle: Path, model_dir: Path, info: dict, test_csv: Path, replay: dict,
@@ -134,25 +141,35 @@ def moved_channel(alert: dict) -> str:
     return (alert.get("moved") or alert["channels"][0])["name"]
 
 
-def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:
-    """A plain table: each incident with the alerts that overlap it, then the other alerts."""
+def incident_hits(alerts: list, incidents_csv: Path) -> tuple:
+    """([(incident row, [(alert, delay in minutes), ...]), ...], alerts outside every incident):
+    an alert counts for an incident when it is open at any time inside it."""
     with open(incidents_csv, newline="") as fh:
         incidents = list(csv.DictReader(fh))
-    used = set()
-    lines = [f"   {'incident':<14} {'start':<17} {'end':<17} alert(s) [moved channel, delay]"]
+    used, hits = set(), []
     for inc in incidents:
         start, end = pd.Timestamp(inc["start"]), pd.Timestamp(inc["end"])
-        hits = []
+        found = []
         for a in alerts:
             opened = pd.Timestamp(a["opened"]).tz_localize(None)
             closed = pd.Timestamp(a["closed"]).tz_localize(None) if a["closed"] else opened
             if opened <= end and closed >= start:
                 used.add(a["alert_id"])
-                delay = max(0.0, (opened - start).total_seconds() / 60)
-                hits.append(f"{opened:%m-%d %H:%M} [{moved_channel(a)}, +{delay:.0f} min]")
+                found.append((a, max(0.0, (opened - start).total_seconds() / 60)))
+        hits.append((inc, found))
+    return hits, [a for a in alerts if a["alert_id"] not in used]
+
+
+def alerts_beside_incidents(alerts: list, incidents_csv: Path) -> str:
+    """A plain table: each incident with the alerts that overlap it, then the other alerts."""
+    hits, others = incident_hits(alerts, incidents_csv)
+    lines = [f"   {'incident':<14} {'start':<17} {'end':<17} alert(s) [moved channel, delay]"]
+    for inc, found in hits:
+        start, end = pd.Timestamp(inc["start"]), pd.Timestamp(inc["end"])
+        text = "; ".join(f"{pd.Timestamp(a['opened']).tz_localize(None):%m-%d %H:%M} "
+                         f"[{moved_channel(a)}, +{delay:.0f} min]" for a, delay in found)
         lines.append(f"   {inc['kind']:<14} {start:%m-%d %H:%M}      {end:%m-%d %H:%M}      "
-                     + ("; ".join(hits) if hits else "MISSED"))
-    others = [a for a in alerts if a["alert_id"] not in used]
+                     + (text or "MISSED"))
     lines.append(f"   alerts outside any incident: {len(others)}")
     for a in others:
         opened = pd.Timestamp(a["opened"]).tz_localize(None)

@@ -49,6 +49,10 @@ CHANNELS = ("vibration_mm_s", "bearing_temp_c", "discharge_bar", "motor_current_
 TRAIN_FRACTION = 0.6  # faults only after this fraction of the span
 TIME_FORMAT = "%Y-%m-%dT%H:%M:%S"
 KINDS = ("bearing_wear", "cavitation", "stuck_sensor", "pressure_sag")
+# The channels each kind of incident moves in _simulate (what an alert on it should name).
+MOVES = {"bearing_wear": ("vibration_mm_s", "bearing_temp_c"),
+         "cavitation": ("vibration_mm_s", "discharge_bar", "motor_current_a"),
+         "stuck_sensor": ("discharge_bar",), "pressure_sag": ("discharge_bar",)}
 
 # Duty states and their target speed (fraction of full speed).
 OFF, LOW, HIGH = 0, 1, 2
