@@ -34,8 +34,6 @@ class TeacherConfig:
     latent_weight: float = 1e-3                 # keeps E(x) near the prior G was trained on
     label_smoothing: float = 0.9                # one-sided, for D's real targets
     train_noise: float = 0.02                   # input noise while fitting E (denoising)
-    hard_share: float = 0.25                    # from mid-inversion, this share of each epoch's
-                                                # windows is drawn by their reconstruction error
     seed: int = 0
 
     def to_json(self) -> dict:

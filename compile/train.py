@@ -6,12 +6,6 @@ Recipe (stable on small data):
 2. encoder inversion: E is fitted so that G(E(x)) reconstructs x (squared error plus a
    discriminator-feature term and a small latent penalty), on lightly noised inputs; G is
    refined at a lower learning rate at the same time so the reconstruction can reach the data.
-   From the middle of the inversion, a quarter of each epoch's windows (`hard_share`) is drawn
-   in proportion to their reconstruction error (hard_order): a state the history holds only a
-   few times (a pump's midday stop) is otherwise reconstructed worst of all normal windows and
-   sets the threshold's tail. On the demo's four draws 15 of 20 incidents were alerted with no
-   alert outside them (14 and 1 without; half the windows: 16 and 4); SKAB valve1 FAR 0.168 ->
-   0.158 at the same F1 (README, "Measured figures").
 """
 
 from __future__ import annotations
@@ -158,20 +152,6 @@ def adversarial_phase(det: Teacher, x: torch.Tensor, cfg: TeacherConfig, rng,
     return "adversarial", rows
 
 
-def hard_order(det: Teacher, x: torch.Tensor, cfg: TeacherConfig, rng) -> torch.Tensor:
-    """One epoch's window order: (1 - hard_share) of it a uniform draw, the rest drawn with
-    probability in proportion to each window's current reconstruction error, so the rare
-    normal windows the network reconstructs worst (a start, a stop) are seen more often."""
-    with torch.no_grad():
-        err = ((det.generator(det.encoder(x)) - x) ** 2).mean(dim=(1, 2))
-    n = len(x)
-    hard = int(round(cfg.hard_share * n))
-    uniform = torch.randperm(n, generator=rng)[:n - hard]
-    drawn = torch.multinomial(err / err.sum(), hard, replacement=True, generator=rng)
-    both = torch.cat([uniform, drawn])
-    return both[torch.randperm(len(both), generator=rng)]
-
-
 def inversion_phase(det: Teacher, x: torch.Tensor, cfg: TeacherConfig, rng,
                     progress: Optional[Progress]) -> tuple:
     """E learns to invert G on noisy real windows (reconstruction + D's features + a latent
@@ -185,10 +165,7 @@ def inversion_phase(det: Teacher, x: torch.Tensor, cfg: TeacherConfig, rng,
     rows = []
     for epoch in range(cfg.inversion_epochs):
         sums, count = {"recon": 0.0, "feature": 0.0}, 0
-        late = epoch >= cfg.inversion_epochs // 2 and cfg.hard_share > 0
-        order = hard_order(det, x, cfg, rng) if late else None
-        for idx in (batches(len(x), cfg.batch_size, rng) if order is None else
-                    (order[k:k + cfg.batch_size] for k in range(0, len(order), cfg.batch_size))):
+        for idx in batches(len(x), cfg.batch_size, rng):
             real = x[idx]
             z = e(real + cfg.train_noise * torch.randn(real.shape, generator=rng))
             recon = g(z)

@@ -124,34 +124,3 @@ def test_small_history_trains_and_scores_every_full_window(write_csv):
     assert np.isnan(scores[:window - 1]).all()
     assert np.isfinite(scores[window - 1:]).all() and np.isfinite(res[window - 1:]).all()
     assert (scores[window - 1:] > 0).all()
-
-
-def test_the_late_inversion_epochs_draw_hard_windows_in_proportion_to_their_error():
-    """compile/train.hard_order: a share hard_share of an epoch's draws follows each window's
-    reconstruction error (the rare normal windows a network reconstructs worst, a start or a
-    stop, are seen more often), the rest is a uniform pass. Checked against the proportion
-    computed here from the same network's reconstructions (binomial tolerance, 5 sigma)."""
-    from ganlet.compile.model import Teacher
-    from ganlet.compile.train import hard_order
-
-    torch.manual_seed(0)
-    cfg = TeacherConfig(window=16, hard_share=0.25)
-    det = Teacher.build(3, cfg)
-    x = 0.1 * torch.randn(400, 16, 3)
-    x[:8] += 4.0  # eight windows far from the rest: a rare state
-    with torch.no_grad():
-        err = ((det.generator(det.encoder(x)) - x) ** 2).mean(dim=(1, 2)).numpy()
-    share = err[:8].sum() / err.sum()
-    counts = np.zeros(400)
-    rng = torch.Generator().manual_seed(1)
-    for _ in range(50):
-        order = hard_order(det, x, det.config, rng).numpy()
-        assert len(order) == 400
-        np.add.at(counts, order, 1)
-    hard_draws = 50 * 100  # 25 % of 400 windows, 50 epochs
-    uniform_draws = 50 * 300
-    # the uniform part gives the eight windows 8/400 of its draws on average
-    want = hard_draws * share + uniform_draws * 8 / 400
-    sd = np.sqrt(hard_draws * share * (1 - share) + uniform_draws * 0.02 * 0.98)
-    assert abs(counts[:8].sum() - want) < 5 * sd, (counts[:8].sum(), want, sd)
-    assert share > 0.5  # precondition: the rare windows carry most of the error
