@@ -27,7 +27,7 @@ from scipy.stats import spearmanr
 
 from ganlet.compile.train import TrainedModel
 from ganlet.runtime.alerts import default_alerting
-from ganlet.runtime.cusum import calibrate_cusum
+from ganlet.runtime.cusum import calibrate_cusum, cusum_off
 from ganlet.runtime.detector import Detector
 from ganlet.runtime.drift import drift_section, window_level
 from ganlet.runtime.lstm import Network
@@ -96,6 +96,9 @@ def budget_record(alarms_per_week: float, risk: float, policy: dict, hop_s: floa
             "measurable_per_week": hops_per_week / (n + 1) if pot else None}
 
 
+NEEDS_POT = "it needs the pot threshold"
+
+
 def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
     """(the threshold section, its CUSUM report): `policy_for` on all the scores of `pieces`
     (normal scores, each piece in hop order), and for `pot` the CUSUM beside it
@@ -104,15 +107,13 @@ def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
     them past its level: at most the sum of the two rates)."""
     scores = np.concatenate([np.asarray(p, np.float64) for p in pieces])
     if kind != "pot" or risk is None:
-        return policy_for(kind, scores, risk), {"section": None, "excursions": 0,
-                                                "why_off": "it needs the pot threshold"}
+        return policy_for(kind, scores, risk), cusum_off(NEEDS_POT)
     cusum = calibrate_cusum(pieces, risk / 2)
     if cusum["section"] is None:
         return policy_for(kind, scores, risk), cusum
     policy = policy_for(kind, scores, risk / 2)
     if policy["kind"] != "pot":  # too few scores for the tail: the static fallback, alone
-        return policy_for(kind, scores, risk), {**cusum, "section": None,
-                                                "why_off": "it needs the pot threshold"}
+        return policy_for(kind, scores, risk), cusum_off(NEEDS_POT, cusum["excursions"])
     return {**policy, CUSUM_KEY: cusum["section"]}, cusum
 
 

@@ -40,7 +40,9 @@ ALLOWANCE_QUANTILE = 0.9     # the normal score quantile a hop must pass to add 
 # at least 10 peaks for the fit, the pot threshold's own minimum (thresholds.py, from memory:
 # a GPD fit on fewer is not worth having). Fewer: compile leaves the CUSUM out.
 MIN_EXCURSIONS = 20
-OPENED_BY = ("score", "cusum")  # what opened an alert (the alert events' `opened_by`)
+# what opened an alert (the alert events' `opened_by`): the score itself, or the evidence
+BY_SCORE, BY_CUSUM = "score", "cusum"
+OPENED_BY = (BY_SCORE, BY_CUSUM)
 
 
 class Cusum:
@@ -106,6 +108,11 @@ def excursion_peaks(scores: np.ndarray, median: float, allowance: float) -> List
     return peaks
 
 
+def cusum_off(why: str, excursions: int = 0) -> Dict[str, Any]:
+    """calibrate_cusum's answer when the CUSUM stays off, and why."""
+    return {"section": None, "excursions": int(excursions), "why_off": why}
+
+
 def calibrate_cusum(pieces: Sequence[np.ndarray], risk: float) -> Dict[str, Any]:
     """The CUSUM section for a risk per hop (its share of the false-alarm budget), from normal
     scores in `pieces` (each a stretch in hop order), and what it was fitted on:
@@ -116,21 +123,18 @@ def calibrate_cusum(pieces: Sequence[np.ndarray], risk: float) -> Dict[str, Any]
     finite = [np.asarray(p, np.float64)[np.isfinite(p)] for p in pieces]
     scores = np.concatenate(finite) if finite else np.zeros(0)
     if scores.size == 0 or not (scores > 0).all():
-        return {"section": None, "excursions": 0,
-                "why_off": "its scores must be positive (a ratio scale)"}
+        return cusum_off("its scores must be positive (a ratio scale)")
     median = float(np.median(scores))
     allowance = max(0.0, math.log(float(np.quantile(scores, ALLOWANCE_QUANTILE)) / median))
     peaks = np.asarray([v for p in finite for v in excursion_peaks(p, median, allowance)])
     if peaks.size < MIN_EXCURSIONS:
-        return {"section": None, "excursions": int(peaks.size),
-                "why_off": f"the history shows {peaks.size} excursions of the evidence and "
-                           f"its limit needs {MIN_EXCURSIONS}: compile from a longer normal "
-                           "history to arm it"}
+        return cusum_off(f"the history shows {peaks.size} excursions of the evidence and its "
+                         f"limit needs {MIN_EXCURSIONS}: compile from a longer normal history to "
+                         "arm it", peaks.size)
     u = float(np.median(peaks))
     excesses = peaks[peaks > u] - u
     if excesses.size == 0:
-        return {"section": None, "excursions": int(peaks.size),
-                "why_off": "every excursion of the evidence peaks alike"}
+        return cusum_off("every excursion of the evidence peaks alike", peaks.size)
     xi, sigma = fit_gpd(excesses)
     chance = risk * scores.size / peaks.size  # exceedances allowed per excursion
     limit = pot_quantile(u, xi, sigma, chance, int(peaks.size), int(excesses.size))

@@ -33,7 +33,7 @@ import numpy as np
 
 from . import features
 from .alerts import ALERTING_KEYS, CLOSED, OPENED, WARMED_UP, AlertMachine
-from .cusum import Cusum
+from .cusum import BY_CUSUM, BY_SCORE, Cusum
 from .drift import DriftMonitor, window_level
 from .intake import RowError, format_time
 from .ring import Ring
@@ -105,7 +105,7 @@ class Judge:
         if transition == WARMED_UP:
             events.append({"event": "warmed_up", "time": format_time(t), "hop": hop})
         elif transition == OPENED:
-            events.append(self._open("score" if score > self.level else "cusum"))
+            events.append(self._open(BY_SCORE if score > self.level else BY_CUSUM))
         elif transition == CLOSED:
             events.append(self._alert_event("alert_closed", closed=format_time(t)))
             self.alert = None
@@ -120,7 +120,7 @@ class Judge:
             return score
         if not self.machine.cooling:
             self.cusum.add(score)
-        if self.alert is not None and self.alert.get("opened_by") == "score":
+        if self.alert is not None and self.alert.get("opened_by") == BY_SCORE:
             return score  # an alert the score opened closes when the score falls back
         return self.cusum.judged(score, self.level)
 

@@ -31,10 +31,11 @@ re-enters. Without this, a channel that had slipped a hair past its envelope's e
 valve1 file 7: a flow meter's zero reading 0.02 robust sigmas below its training range for one
 window) was in drift when its fault came, and the fault's 4-sigma step was re-centred away.
 The `drift` event is sent once its excess passes MARGIN (a full robust standard deviation
-beyond every training window: smaller excursions are the envelope's own sampling error). While in drift the network sees x_c - sign(m_c) * e_c (the excess
-removed), so neither that channel nor the others score it. The drift ends once the channel has
-been back inside its envelope for one window's worth of hops (an excursion hovering at the edge
-is one drift, not a flicker of many).
+beyond every training window: smaller excursions are the envelope's own sampling error). While
+in drift the network sees x_c - sign(m_c) * e_c (the excess removed), so neither that channel
+nor the others score it. The drift ends once the channel has been back inside its envelope for
+one window's worth of hops (an excursion hovering at the edge is one drift, not a flicker of
+many).
 Events: `drift` when a channel enters drift (channel, how far in robust sigmas, since when, which
 side), `drift_ended` when it is over (with the largest excess seen, and the reason: "back"
 inside its envelope, or "faster" than a drift).
