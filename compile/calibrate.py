@@ -13,7 +13,10 @@ device's int8 student, or the teacher for `ganlet evaluate` on a model directory
    (a channel's error then reads "times its normal error in this regime");
 4. threshold: the policy fitted to the calibration span's scores; `pot` takes the risk per hop
    from the engineer's false-alarm budget (alarms per week on normal data); with a history long
-   enough, a CUSUM of the log score beside it (runtime/cusum.py), the budget shared.
+   enough, a CUSUM of the log score beside it (runtime/cusum.py), the budget shared;
+5. held readings: per channel, the longest run of identical readings the history makes
+   plausible at a hundredth of the budget, for channels whose history fits that run model
+   (runtime/held.py).
 `threshold_policy` is also the rule `ganlet evaluate` gives every method.
 """
 
@@ -30,10 +33,11 @@ from ganlet.runtime.alerts import default_alerting
 from ganlet.runtime.cusum import calibrate_cusum, cusum_off
 from ganlet.runtime.detector import Detector
 from ganlet.runtime.drift import drift_section, window_level
+from ganlet.runtime.held import RISK_SHARE, calibrate_held
 from ganlet.runtime.lstm import Network
 from ganlet.runtime.manifest import Bundle, build_manifest
 from ganlet.runtime.score import ScoreRule, score_section
-from ganlet.runtime.thresholds import CUSUM_KEY, KINDS, calibrate_policy
+from ganlet.runtime.thresholds import CUSUM_KEY, HELD_KEY, KINDS, calibrate_policy
 
 SECONDS_PER_WEEK = 7 * 86400.0
 # The engineer's false-alarm budget on normal data when none is given: one alarm per week per
@@ -88,9 +92,11 @@ def budget_record(alarms_per_week: float, risk: float, policy: dict, hop_s: floa
     hops_per_week = SECONDS_PER_WEEK / hop_s
     pot = policy["kind"] == "pot"
     n = int(policy["n"]) if pot else None
-    cusum_risk = risk / 2 if CUSUM_KEY in policy else 0.0  # the CUSUM's half of the budget
+    pot_risk = policy["q"] if pot else 0.0
+    cusum_risk = pot_risk if CUSUM_KEY in policy else 0.0  # the CUSUM's share equals pot's
+    held_risk = RISK_SHARE * risk if HELD_KEY in policy else 0.0  # at most, per hop
     return {"budget_per_week": float(alarms_per_week), "risk_per_hop": risk,
-            "expected_per_week_at_most": (policy["q"] + cusum_risk) * hops_per_week
+            "expected_per_week_at_most": (pot_risk + cusum_risk + held_risk) * hops_per_week
             if pot else None,
             "tail_scores": n,
             "measurable_per_week": hops_per_week / (n + 1) if pot else None}
@@ -124,6 +130,20 @@ def cusum_line(report: dict) -> str:
                 f"{report['section']['limit']:.3g}, fitted on {report['excursions']} "
                 "excursions of the normal history); it shares the budget")
     return f"cusum: off; {report['why_off']}"
+
+
+def held_line(report: dict) -> str:
+    """compile's line on the held-reading check (calibrate_held's report, with the names)."""
+    found, channels = report["channels"], report["names"]
+    watched = [f"{c} {f['limit']}" for c, f in zip(channels, found) if f["limit"] is not None]
+    not_watched = [f"{c} (runs of {f['longest']} in its history)"
+                   for c, f in zip(channels, found) if f["limit"] is None]
+    if not watched:
+        return "held readings: no channel watched; every channel's history holds long runs " \
+               "of identical readings"
+    line = ("held readings: a reading repeated more times in a row than its limit alerts ("
+            + ", ".join(watched) + ")")
+    return line + ("; not watched: " + ", ".join(not_watched) if not_watched else "")
 
 
 def policy_for(kind: str, scores: np.ndarray, risk: Optional[float] = None) -> dict:
@@ -307,9 +327,15 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
     scores = ScoreRule(score).apply(res[cal], hop_means[cal])[0]
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
     pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, steps)
-    policy, cusum = threshold_policy(kind, pieces, risk if kind == "pot" else None)
+    held = calibrate_held(model.raw[:cal_end], risk / hop)
+    # the held check's share comes out of the budget; the threshold (and CUSUM) get the rest
+    score_risk = risk * (1 - RISK_SHARE) if held["section"] is not None else risk
+    policy, cusum = threshold_policy(kind, pieces, score_risk if kind == "pot" else None)
+    if held["section"] is not None:
+        policy = {**policy, HELD_KEY: held["section"]}
     false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
     report = {"regimes": regimes, "threshold_kind": policy["kind"], "cusum": cusum,
+              "held": {**held, "names": list(model.channels)},
               "calibration_scores": int(cal.sum()), "false_alarms": false_alarms}
     return Calibration(score, drift, policy, {**default_alerting(window, hop), **(alerting or {})},
                        false_alarms, scores, report)

@@ -30,6 +30,7 @@ from ganlet.compile.calibrate import (
     agreement_report,
     calibrate,
     cusum_line,
+    held_line,
 )
 from ganlet.compile.data import (
     IntakeError,
@@ -226,6 +227,7 @@ class CompileResult:
             f"{r['threshold_kind']} for at most {r['false_alarms']['budget_per_week']:g} false "
             "alarm(s) per week on normal data" + extrapolation_note(r["false_alarms"]),
             cusum_line(r["cusum"]),
+            held_line(r["held"]),
             f"bundle {self.bundle}: {r['bytes']['model_and_weights'] / 1024:.1f} KiB without "
             f"the runtime copy ({r['bytes']['total'] / 1024:.1f} KiB in all)"
             + (f"; archive {self.archive}" if self.archive else ""),

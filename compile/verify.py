@@ -46,6 +46,7 @@ from ganlet.runtime.intake import Dialect, RowError
 from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
 from ganlet.runtime.scorer import NetworkScorer, make_scorer
 from ganlet.runtime.sources import CsvSource
+from ganlet.runtime.thresholds import HELD_KEY
 
 STRICT = ("onnxruntime", "numpy")          # share the int8 weights with the device
 
@@ -189,8 +190,9 @@ def replay_feed(bundle: Bundle, scorer, feed: Path) -> Replay:
 
 
 def replay_alerts(scores: np.ndarray, policy: dict, alerting: dict):
-    """(thresholds, alert_open) per hop of a score series, through the gateway's Judge."""
-    judge = Judge("", [], [], policy, alerting)
+    """(thresholds, alert_open) per hop of a score series, through the gateway's Judge. Held
+    readings are judged on the readings, which a score series does not carry: left out."""
+    judge = Judge("", [], [], {k: v for k, v in policy.items() if k != HELD_KEY}, alerting)
     levels = np.empty(len(scores))
     open_ = np.zeros(len(scores), bool)
     for k, s in enumerate(np.asarray(scores, float)):
@@ -399,10 +401,12 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
     _, replayed = replay_alerts(dev["score"], bundle.threshold_policy, bundle.alerting)
     replay_agreement = float(np.mean(replayed == dev["alert"]))
     if replay_agreement < 1.0:
+        why = ("an alert on a held reading, judged on the readings and not on the score, or "
+               if HELD_KEY in bundle.threshold_policy else "")
         notes.append(f"replaying the device's own scores through the threshold policy and alert "
                      f"machine reproduces its alert column on {replay_agreement:.2%} of hops "
-                     "(a restart from a checkpoint mid-stream, or a different runtime, would "
-                     "explain a difference)")
+                     f"({why}a restart from a checkpoint mid-stream, or a different runtime, "
+                     "would explain a difference)")
     provenance = {"report": rep.workstation(), "bundle": rep.bundle_facts(bundle),
                   "data": rep.data_facts(data, bundle.time_column),
                   "device": rep.device_facts(device.attrs.get("provenance", {}), source)}

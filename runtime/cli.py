@@ -263,6 +263,11 @@ def detector_line(summary: dict) -> str:
     if summary.get("cusum"):
         parts.append("or while a CUSUM of the log score holds a rise above "
                      f"{summary['cusum']['limit']:.3g}")
+    held = summary.get("held")
+    if held:
+        watched = [f"{c['name']} {n}" for c, n in zip(summary["channels"], held["limits"]) if n]
+        parts.append("or while a reading repeats more times in a row than its limit ("
+                     + ", ".join(watched) + ")")
     drift = summary.get("drift")
     parts.append("drift: " + action_summary(drift))
     return "; ".join(parts)

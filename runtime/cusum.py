@@ -40,9 +40,6 @@ ALLOWANCE_QUANTILE = 0.9     # the normal score quantile a hop must pass to add 
 # at least 10 peaks for the fit, the pot threshold's own minimum (thresholds.py, from memory:
 # a GPD fit on fewer is not worth having). Fewer: compile leaves the CUSUM out.
 MIN_EXCURSIONS = 20
-# what opened an alert (the alert events' `opened_by`): the score itself, or the evidence
-BY_SCORE, BY_CUSUM = "score", "cusum"
-OPENED_BY = (BY_SCORE, BY_CUSUM)
 
 
 class Cusum:

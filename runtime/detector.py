@@ -19,7 +19,8 @@ Per row (Detector.feed):
     scoring waits until the ring is full again;
   - each channel's feature (its level, or its rate: features.py; a rate needs the row before,
     so after a start or a gap the first row only primes it), scaled (f - center) / scale into
-    the ring; every `hop` new rows once the ring is full, exactly one window is scored.
+    the ring; every `hop` new rows once the ring is full, exactly one window is scored;
+  - each grid row's raw readings extend or restart the held-reading runs (held.py).
 A rejected row raises RowError and changes nothing.
 
 Events are flat dicts {"event": NAME, ...} (events.py names them).
@@ -32,9 +33,19 @@ from typing import Dict, List, Optional, Sequence
 import numpy as np
 
 from . import features
-from .alerts import ALERTING_KEYS, CLOSED, OPENED, WARMED_UP, AlertMachine
-from .cusum import BY_CUSUM, BY_SCORE, Cusum
+from .alerts import (
+    ALERTING_KEYS,
+    BY_CUSUM,
+    BY_HELD,
+    BY_SCORE,
+    CLOSED,
+    OPENED,
+    WARMED_UP,
+    AlertMachine,
+)
+from .cusum import Cusum
 from .drift import DriftMonitor, window_level
+from .held import HeldReadings
 from .intake import RowError, format_time
 from .ring import Ring
 from .score import ScoreRule, shares
@@ -77,6 +88,7 @@ class Judge:
         self.units = list(units)
         self.threshold = make_threshold(dict(policy))
         self.cusum = Cusum.from_policy(policy)  # None: single hops only
+        self.held = HeldReadings.from_policy(policy, len(self.channels))  # None: not watched
         self.machine = AlertMachine(**{k: alerting[k] for k in ALERTING_KEYS})
         # the last min_hops hops: an alert opens at the first of them (open_since_hop)
         self.recent = deque(maxlen=self.machine.min_hops)  # (hop, time, parts)
@@ -105,7 +117,7 @@ class Judge:
         if transition == WARMED_UP:
             events.append({"event": "warmed_up", "time": format_time(t), "hop": hop})
         elif transition == OPENED:
-            events.append(self._open(BY_SCORE if score > self.level else BY_CUSUM))
+            events.append(self._open(self._opened_by(score)))
         elif transition == CLOSED:
             events.append(self._alert_event("alert_closed", closed=format_time(t)))
             self.alert = None
@@ -113,22 +125,46 @@ class Judge:
                 self.cusum.clear()
         return events
 
+    def see(self, raw: Sequence[float]) -> None:
+        """One grid row's raw readings (the held-reading runs count rows, not hops)."""
+        if self.held is not None:
+            self.held.add(raw)
+
     def _judged(self, score: float) -> float:
-        """What the alert machine compares with the level: the score, or the CUSUM's evidence
-        in the score's units (cusum.py), which gathers none while the machine cools down."""
-        if self.cusum is None:
-            return score
-        if not self.machine.cooling:
+        """What the alert machine compares with the level: the score, the CUSUM's evidence in
+        the score's units (cusum.py; it gathers none while the machine cools down), or a held
+        reading's run in the same units (held.py). An open alert is judged on what opened it
+        (the score and the CUSUM together, as the CUSUM's evidence includes the score)."""
+        if self.cusum is not None and not self.machine.cooling:
             self.cusum.add(score)
-        if self.alert is not None and self.alert.get("opened_by") == BY_SCORE:
+        by = None if self.alert is None else self.alert.get("opened_by")
+        if by == BY_SCORE:
             return score  # an alert the score opened closes when the score falls back
-        return self.cusum.judged(score, self.level)
+        held = self.level * self.held.ratio() if self.held is not None else -np.inf
+        if by == BY_HELD:
+            return held  # closes when the reading moves again
+        judged = score if self.cusum is None else self.cusum.judged(score, self.level)
+        return max(judged, held) if held > self.level else judged
+
+    def held_channel(self, score: float) -> dict:
+        """`moved` of an alert a held reading opened: the channel, and how many identical
+        readings in a row it has shown."""
+        c = self.held.worst()
+        return {"name": self.channels[c], "unit": self.units[c],
+                "held_readings": self.held.runs[c], "score": finite_or_none(score)}
+
+    def _opened_by(self, score: float) -> str:
+        if self.held is not None and self.held.ratio() > 1.0:
+            return BY_HELD  # the most specific: it names the channel and what it does
+        return BY_SCORE if score > self.level else BY_CUSUM
 
     def reset_run(self) -> None:
         """After a long gap the hops before it no longer lead up to the hops after it."""
         self.recent.clear()
         if self.cusum is not None:
             self.cusum.clear()
+        if self.held is not None:
+            self.held.clear()
 
     def alert_channels(self) -> np.ndarray:
         """Channels of an open or pending alert: those whose contribution to the last hop is
@@ -177,7 +213,8 @@ class Judge:
         return {"threshold": self.threshold.state(), "machine": self.machine.state(),
                 "recent": [[h, t, [float(v) for v in p]] for h, t, p in self.recent],
                 "alert": self.alert,
-                "cusum": None if self.cusum is None else self.cusum.state()}
+                "cusum": None if self.cusum is None else self.cusum.state(),
+                "held": None if self.held is None else self.held.state()}
 
     def restore(self, d: dict) -> None:
         self.threshold = threshold_from_state(d["threshold"])
@@ -190,6 +227,12 @@ class Judge:
         if self.cusum is not None:  # a state from before the CUSUM existed starts it at 0
             saved = d.get("cusum")
             self.cusum.restore(0.0 if saved is None else saved)
+        if self.held is not None:  # a state from before the check existed starts with no runs
+            saved = d.get("held")
+            if saved is not None:
+                self.held.restore(saved)
+            else:
+                self.held.clear()
 
 
 class Detector:
@@ -256,7 +299,8 @@ class Detector:
             if self.drift is not None:
                 self.drift.reset()
         self.counters["interpolated"] += len(rows) - 1
-        for tk, x in rows:
+        for (tk, x), (_, r) in zip(rows, grid):
+            self.judge.see(r)
             if x is not None:
                 events += self._push(x, tk)
         self.last_raw = raw
@@ -340,8 +384,10 @@ class Detector:
         events = self.judge.step(t, float(scores[0]), self.rule.contributions(parts[0]))
         for e in events:
             if e["event"] == "alert_opened":
-                e["moved"] = self.judge.alert["moved"] = self.moved(window, recon,
-                                                                    float(scores[0]))
+                e["moved"] = self.judge.alert["moved"] = (
+                    self.judge.held_channel(float(scores[0]))
+                    if self.judge.alert["opened_by"] == BY_HELD
+                    else self.moved(window, recon, float(scores[0])))
             if e["event"] in ("alert_opened", "alert_closed"):
                 self.counters["alerts_" + e["event"].split("_")[1]] += 1
         return events + drift_events

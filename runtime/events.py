@@ -273,7 +273,7 @@ class AlertDbSink:
         " threshold REAL NOT NULL,"
         " channels TEXT NOT NULL,"  # JSON list of {name, unit, share}
         " hops INTEGER NOT NULL,"
-        " moved TEXT"  # JSON {name, unit, score_without, score}, or NULL
+        " moved TEXT"  # JSON {name, unit, score_without, score} (or held_readings), or NULL
         ")"
     )
 

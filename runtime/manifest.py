@@ -40,6 +40,7 @@ from .alerts import AlertMachine
 from .cusum import Cusum
 from .drift import DriftMonitor
 from .features import FEATURE_KINDS, rate_mask
+from .held import HeldReadings
 from .lstm import contract_shapes
 from .score import ScoreRule
 from .thresholds import make_threshold
@@ -262,7 +263,8 @@ def _check_network(net: dict) -> None:
 def _check_sections(manifest: dict) -> None:
     """score, threshold and alerting are checked by building them, as the gateway will."""
     builders = [("score", ScoreRule),
-                ("threshold", lambda d: (make_threshold(d), Cusum.from_policy(d))),
+                ("threshold", lambda d: (make_threshold(d), Cusum.from_policy(d),
+                                         HeldReadings.from_policy(d, len(manifest["channels"])))),
                 ("alerting", lambda d: AlertMachine(**d))]
     if "drift" in manifest:
         builders.append(("drift", lambda d: DriftMonitor(d, [c["name"] for c in
@@ -463,6 +465,7 @@ class Bundle:
             "hop": self.hop,
             "threshold": self.threshold_policy.get("kind"),
             "cusum": self.threshold_policy.get("cusum"),
+            "held": self.threshold_policy.get("held"),
             "false_alarms": m.get("false_alarms"),
             "alerting": dict(self.alerting),
             "drift": (m["drift"].get("action", "report") if m.get("drift") is not None

@@ -39,9 +39,9 @@ from typing import Optional
 
 import numpy as np
 
+from .alerts import BY_HELD, OPENED_BY
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, FEED, JUMP, MAX_AHEAD_S, ClockBounds, Timeline
-from .cusum import OPENED_BY
 from .detector import Detector
 from .events import (
     ALERT_EVENTS,
@@ -497,7 +497,8 @@ def _check_judge(judge, n: int) -> None:
                 and isinstance(a.get("parts_sum"), list) and len(a["parts_sum"]) == n
                 and all(isinstance(v, (int, float)) for v in a["parts_sum"])
                 and _moved_ok(a.get("moved"))
-                and a.get("opened_by") in (None,) + OPENED_BY):
+                and a.get("opened_by") in (None,) + OPENED_BY
+                and (a.get("opened_by") != BY_HELD or judge.held is not None)):
             raise ValueError("open alert record is malformed")
 
 
@@ -508,7 +509,7 @@ def _moved_ok(moved) -> bool:
     return (isinstance(moved, dict) and isinstance(moved.get("name"), str)
             and isinstance(moved.get("unit"), str)
             and all(moved.get(k) is None or isinstance(moved.get(k), (int, float))
-                    for k in ("score_without", "score")))
+                    for k in ("score_without", "score", "held_readings")))
 
 
 def _clock_bounds(bundle, opts: StreamOptions) -> ClockBounds:

@@ -395,6 +395,8 @@ def _check_kind(cls, d: Dict[str, Any]) -> None:
 
 # The policy's optional CUSUM beside the threshold (cusum.py): {"median", "allowance", "limit"}.
 CUSUM_KEY = "cusum"
+# The policy's optional held-reading limits (held.py): {"limits": [run length or null, ...]}.
+HELD_KEY = "held"
 
 
 def make_threshold(policy: Dict[str, Any]):
@@ -405,7 +407,7 @@ def make_threshold(policy: Dict[str, Any]):
     if kind not in _KINDS:
         raise ValueError(f"unknown threshold kind {kind!r}; choose one of {sorted(_KINDS)}")
     cls = _KINDS[kind]
-    params = {k: v for k, v in policy.items() if k not in ("kind", CUSUM_KEY)}
+    params = {k: v for k, v in policy.items() if k not in ("kind", CUSUM_KEY, HELD_KEY)}
     missing = [k for k in cls._required if k not in params]
     if missing:
         raise ValueError(f"{kind!r} threshold policy is missing {missing}")

@@ -222,6 +222,13 @@ def test_manifest_describes_the_detector(teacher, bundle):
     # with or without the CUSUM (which takes half the risk), within the budget
     assert fa["expected_per_week_at_most"] <= fa["budget_per_week"] * (1 + 1e-9)
     assert "cusum: " in bundle["stdout"]
+    # held readings: the fixture's noisy channels repeat no reading, so each has a limit, and
+    # compile lists them (the check's hundredth of the budget is inside the line above)
+    limits = m["threshold"]["held"]["limits"]
+    assert all(isinstance(n, int) and n >= 1 for n in limits)
+    names = [c["name"] for c in m["channels"]]
+    assert "held readings: " + "a reading repeated more times in a row than its limit alerts (" \
+        + ", ".join(f"{c} {n}" for c, n in zip(names, limits)) + ")" in bundle["stdout"]
     for key in ("lo", "hi", "v_max"):
         assert len(m["drift"][key]) == 3
     # the default board when --board is omitted
@@ -336,6 +343,9 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
     assert (f"closed below {manifest['alerting']['close_ratio']:g} x threshold"
             in ok.stdout)
     assert "drift: reported once, re-centred onto the training range" in ok.stdout
+    held = manifest["threshold"]["held"]["limits"]
+    assert ("or while a reading repeats more times in a row than its limit (" + ", ".join(
+        f"{c['name']} {n}" for c, n in zip(manifest["channels"], held)) + ")") in ok.stdout
     cusum = manifest["threshold"].get("cusum")
     said = f"holds a rise above {cusum['limit']:.3g}" if cusum else "CUSUM"
     assert (said in ok.stdout) if cusum else (said not in ok.stdout)
