@@ -17,7 +17,8 @@ device's int8 student, or the teacher for `ganlet evaluate` on a model directory
 5. held readings: per channel, the longest run of identical readings the history makes
    plausible at a hundredth of the budget, for channels whose history fits that run model
    (runtime/held.py).
-`threshold_policy` is also the rule `ganlet evaluate` gives every method.
+`detector_policy` (threshold, CUSUM and held readings) is also the rule `ganlet evaluate` gives
+every method.
 """
 
 from __future__ import annotations
@@ -121,6 +122,21 @@ def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
     if policy["kind"] != "pot":  # too few scores for the tail: the static fallback, alone
         return policy_for(kind, scores, risk), cusum_off(NEEDS_POT, cusum["excursions"])
     return {**policy, CUSUM_KEY: cusum["section"]}, cusum
+
+
+def detector_policy(kind: str, pieces: list, risk: float, history: Optional[np.ndarray],
+                    hop: int):
+    """(the threshold section, its CUSUM report, the held-reading report): the held-reading
+    limits from the raw normal history [rows, channels] (runtime/held.py), whose share comes out
+    of the budget, and `threshold_policy` on the scores for the rest. `ganlet evaluate` gives
+    every method this rule."""
+    held = (calibrate_held(history, risk / hop) if history is not None
+            else {"section": None, "channels": []})  # a model directory without raw rows
+    score_risk = risk * (1 - RISK_SHARE) if held["section"] is not None else risk
+    policy, cusum = threshold_policy(kind, pieces, score_risk if kind == "pot" else None)
+    if held["section"] is not None:
+        policy = {**policy, HELD_KEY: held["section"]}
+    return policy, cusum, held
 
 
 def cusum_line(report: dict) -> str:
@@ -327,12 +343,7 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
     scores = ScoreRule(score).apply(res[cal], hop_means[cal])[0]
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
     pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, steps)
-    held = calibrate_held(model.raw[:cal_end], risk / hop)
-    # the held check's share comes out of the budget; the threshold (and CUSUM) get the rest
-    score_risk = risk * (1 - RISK_SHARE) if held["section"] is not None else risk
-    policy, cusum = threshold_policy(kind, pieces, score_risk if kind == "pot" else None)
-    if held["section"] is not None:
-        policy = {**policy, HELD_KEY: held["section"]}
+    policy, cusum, held = detector_policy(kind, pieces, risk, model.raw[:cal_end], hop)
     false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
     report = {"regimes": regimes, "threshold_kind": policy["kind"], "cusum": cusum,
               "held": {**held, "names": list(model.channels)},

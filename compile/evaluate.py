@@ -11,8 +11,9 @@ Scores per grid point:
               rate (an off-the-shelf method is run that way; DEVELOPERS.md has both figures)
 One rule for every method, the one the gateway ships: the bundle's threshold policy kind and
 false-alarm budget (for a model directory, the kind and budget asked for), calibrated on the
-method's own calibration-span scores (compile/calibrate.py threshold_policy), then the gateway's own
-Judge (threshold + alert machine, runtime/detector.py) hop by hop. The bundle's alerts are the
+method's own calibration-span scores, with the held-reading limits of the raw training rows
+(compile/calibrate.py detector_policy), then the gateway's own Judge (threshold, CUSUM, held
+readings and alert machine, runtime/detector.py) hop by hop. The bundle's alerts are the
 gateway's own (`run.py stream`); the teacher runs through the gateway's Detector on the same
 feed with its own calibration (drift envelope, regimes, score scale, threshold), as if it were
 the device's network.
@@ -40,8 +41,8 @@ from ganlet.compile.calibrate import (
     DEFAULT_ALARMS_PER_WEEK,
     DRIFT_ACTION,
     calibrated_bundle,
+    detector_policy,
     risk_per_hop,
-    threshold_policy,
 )
 from ganlet.compile.data import (
     Frame,
@@ -143,13 +144,17 @@ class Rule:
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK
     drift: str = DRIFT_ACTION
 
-    def policy(self, calibration_scores: np.ndarray, period_s: float) -> dict:
-        return threshold_policy(self.kind, [calibration_scores],
-                                risk_per_hop(self.alarms_per_week, period_s, 1))[0]
+    def policy(self, calibration_scores: np.ndarray, period_s: float,
+               history: np.ndarray) -> dict:
+        """`history`: the raw normal rows the held-reading limits are fitted on."""
+        return detector_policy(self.kind, [calibration_scores],
+                               risk_per_hop(self.alarms_per_week, period_s, 1), history, 1)[0]
 
-    def apply(self, calibration_scores: np.ndarray, scores: np.ndarray, period_s: float):
-        policy = self.policy(calibration_scores, period_s)
-        levels, alert = replay_alerts(scores, policy, self.alerting)
+    def apply(self, calibration_scores: np.ndarray, scores: np.ndarray, period_s: float,
+              history: np.ndarray, readings: np.ndarray):
+        """`readings`: the raw row of each scored point (held readings are judged on them)."""
+        policy = self.policy(calibration_scores, period_s, history)
+        levels, alert = replay_alerts(scores, policy, self.alerting, readings)
         alert = from_opening(alert, int(self.alerting["min_hops"]))
         return policy, levels, alert
 
@@ -507,7 +512,9 @@ def _baseline_methods(model, frame: Frame, rule: Rule, names: Sequence[str]) -> 
     base_all["rolling z-score"] = rolling_z(data_levels)
     methods = {}
     for name in names:
-        pol, levels, alert = rule.apply(base_cal[name], base_all[name], frame.period_s)
+        pol, levels, alert = rule.apply(base_cal[name], base_all[name], frame.period_s,
+                                        None if model.raw is None else model.raw[:c1],
+                                        frame.values)
         methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
     return methods
 
@@ -584,7 +591,11 @@ def rule_html(result: EvalResult) -> str:
                              "a CUSUM of the log score also alerts on a rise held over many "
                              "steps, fitted for the same budget (shared), where a method's "
                              f"calibration scores are positive and show {MIN_EXCURSIONS} "
-                             "excursions of its evidence", "-"]]
+                             "excursions of its evidence", "-"],
+                            ["held readings", "per channel",
+                             "a reading repeated more times in a row than its normal history "
+                             "makes plausible also alerts (a hundredth of the budget); "
+                             "channels whose history holds long runs are not watched", "-"]]
                            + rep.alert_settings_rows(result.rule.alerting, step_s))
     note = (f"One step is one score: for the bundle one hop = {rep.duration(step_s)}; "
             if "bundle hop" in steps else "One step is one score: ")

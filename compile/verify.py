@@ -189,13 +189,22 @@ def replay_feed(bundle: Bundle, scorer, feed: Path) -> Replay:
                   np.array([e["alert_open"] for e in hops], bool), refused)
 
 
-def replay_alerts(scores: np.ndarray, policy: dict, alerting: dict):
+def replay_alerts(scores: np.ndarray, policy: dict, alerting: dict,
+                  readings: Optional[np.ndarray] = None):
     """(thresholds, alert_open) per hop of a score series, through the gateway's Judge. Held
-    readings are judged on the readings, which a score series does not carry: left out."""
-    judge = Judge("", [], [], {k: v for k, v in policy.items() if k != HELD_KEY}, alerting)
+    readings are judged on the raw readings at each hop ([hops, channels], one row per hop),
+    which a score series alone does not carry: without them they are left out."""
+    if readings is None:
+        policy = {k: v for k, v in policy.items() if k != HELD_KEY}
+        names = []
+    else:
+        names = [str(c) for c in range(np.shape(readings)[1])]
+    judge = Judge("", names, names, policy, alerting)
     levels = np.empty(len(scores))
     open_ = np.zeros(len(scores), bool)
     for k, s in enumerate(np.asarray(scores, float)):
+        if readings is not None:
+            judge.see(readings[k])
         judge.step(0.0, float(s))
         levels[k], open_[k] = judge.level, judge.is_open
     return levels, open_
