@@ -140,11 +140,20 @@ class Judge:
         by = None if self.alert is None else self.alert.get("opened_by")
         if by == BY_SCORE:
             return score  # an alert the score opened closes when the score falls back
-        held = self.level * self.held.ratio() if self.held is not None else -np.inf
+        held = self._held_judged()
         if by == BY_HELD:
             return held  # closes when the reading moves again
         judged = score if self.cusum is None else self.cusum.judged(score, self.level)
         return max(judged, held) if held > self.level else judged
+
+    def _held_judged(self) -> float:
+        """The worst held run in the score's units: above the level by the level's size times
+        how far the run is past its limit, so above it exactly when a run is past its limit,
+        whatever the sign of the score (a baseline's score in `ganlet evaluate` may be
+        negative)."""
+        if self.held is None:
+            return -np.inf
+        return self.level + abs(self.level) * (self.held.ratio() - 1.0)
 
     def held_channel(self, score: float) -> dict:
         """`moved` of an alert a held reading opened: the channel, and how many identical

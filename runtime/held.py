@@ -24,8 +24,9 @@ ALPHA) and is no longer than L. A channel that holds for reasons of its own (a m
 updates) fails the test and is not watched (its limit is null): that is decided from its
 history, not by name.
 
-The Judge (detector.py) hands the alert machine level x run / limit of the channel with the
-largest ratio: a run longer than its limit passes the level, the alert names that channel and
+The Judge (detector.py) hands the alert machine level + |level| x (run / limit - 1) of the
+channel with the largest ratio (level x run / limit for a positive level): a run longer than
+its limit passes the level whatever the score's sign, the alert names that channel and
 closes when the reading moves again. Runs restart after a gap or a clock reset (the readings
 before it are not known to lead up to the ones after it). The limits sit in the threshold policy
 under HELD_KEY.

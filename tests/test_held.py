@@ -110,6 +110,15 @@ def test_a_frozen_reading_opens_an_alert_naming_it_and_closes_when_it_moves():
     assert opened["opened_by"] == BY_HELD and opened["k"] == 46
     assert opened["opened"] == "1970-01-01T00:00:44Z"
     assert closed["k"] == 120  # the first reading that moved
+    # a negative level (a baseline's score in `ganlet evaluate`, e.g. OneClassSVM's negated
+    # score_samples) changes nothing: short runs stay below the level, a long one passes it
+    judge = _judge([None, 4], level=-10.0)
+    runs = []
+    for k in range(60):
+        judge.see([0.0, 7.25 if k >= 40 else float(rng.standard_normal())])
+        runs += [e["k"] for e in (dict(e, k=k) for e in judge.step(float(k), -20.0))
+                 if e["event"] == "alert_opened"]
+    assert runs == [46]
     # a gap restarts the runs: a reading held across it counts from the gap
     judge = _judge([None, 4])
     for _ in range(4):
