@@ -223,12 +223,14 @@ def compile_cmd(
     name: Optional[str] = typer.Option(None, help="Asset name carried in the manifest and used for file and service names on the gateway: letters, digits, '.', '_', '-' (default: the model folder's name)."),
     distil_epochs: int = typer.Option(80, "--distil-epochs", min=1, help="Distillation epochs."),
     seed: int = typer.Option(0, help="Random seed of the distillation."),
+    int8_epochs: int = typer.Option(6, "--int8-epochs", min=0, help="Epochs of training through the int8 rounding before quantising, so the int8 network reconstructs as its fp32 network does (0: plain rounding)."),
     threads: Optional[int] = typer.Option(None, "--threads", min=1, help=THREADS_HELP),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
 ):
     """Size a network to each board, distil, quantise to int8, export ONNX and pack the bundle."""
     from ganlet.compile.calibrate import DRIFT_ACTION
     from ganlet.compile.distil import DistilConfig
+    from ganlet.compile.int8_fit import Int8FitConfig
     from ganlet.compile.pack import safe_name
     from ganlet.compile.pipeline import CompileOptions
 
@@ -244,6 +246,7 @@ def compile_cmd(
                                  drift=drift or DRIFT_ACTION, ed25519_key=private_key,
                                  name=name or safe_name(model_dir.resolve().name),
                                  distil=DistilConfig(epochs=distil_epochs, seed=seed),
+                                 int8=Int8FitConfig(epochs=int8_epochs, seed=seed),
                                  threads=threads)
         progress, stop = progress_printer(quiet)
         echo = (lambda *_: None) if quiet else (lambda text: typer.echo(text, err=True))

@@ -1,4 +1,4 @@
-"""torch modules -> the flat weight dict of the network contract (ONNX LSTM layout).
+"""torch modules <-> the flat weight dict of the network contract (ONNX LSTM layout).
 
 The contract (DEVELOPERS.md) stores every LSTM layer as ONNX's W [1, 4H, I], R [1, 4H, H],
 B [1, 8H] with gate order i, o, f, c. torch.nn.LSTM keeps weight_ih_l{k} [4H, I] and
@@ -10,6 +10,8 @@ from typing import Dict, Iterable, List, Union
 
 import numpy as np
 import torch
+
+from ganlet.compile.model import LSTMStack as TorchStack
 
 # Row blocks of a torch LSTM matrix (i, f, g, o) picked in ONNX order (i, o, f, c=g).
 _TORCH_TO_ONNX_GATES = (0, 3, 1, 2)
@@ -121,3 +123,36 @@ def _check_chain(weights: Dict[str, np.ndarray]) -> None:
     channels_out = weights["gen.head.W"].shape[0]
     if channels_in != channels_out:
         raise ValueError(f"encoder reads {channels_in} channels but generator writes {channels_out}")
+
+
+def _torch_gates(a: np.ndarray, hidden: int) -> np.ndarray:
+    """The inverse of _reorder_gates: ONNX blocks (i, o, f, c) back to torch's (i, f, g, o)."""
+    blocks = [a[g * hidden:(g + 1) * hidden] for g in range(4)]
+    onnx_of_torch = [_TORCH_TO_ONNX_GATES.index(g) for g in range(4)]
+    return np.concatenate([blocks[k] for k in onnx_of_torch], axis=0)
+
+
+def stacks_from_weights(weights: Dict[str, np.ndarray]) -> tuple:
+    """The contract dict back as torch modules: (encoder, generator), each a
+    compile.model.LSTMStack holding exactly these numbers (network_weights of them returns the
+    dict). Used to fine-tune a network that exists only as a dict (a cached student)."""
+    _check_chain(weights)
+    return tuple(_stack_from(weights, net) for net in ("enc", "gen"))
+
+
+def _stack_from(weights: Dict[str, np.ndarray], net: str) -> TorchStack:
+    count = sum(1 for k in weights if k.startswith(f"{net}.lstm") and k.endswith(".R"))
+    hidden = tuple(int(weights[f"{net}.lstm{k}.R"].shape[2]) for k in range(count))
+    head = weights[f"{net}.head.W"]
+    stack = TorchStack(int(weights[f"{net}.lstm0.W"].shape[2]), hidden, int(head.shape[0]))
+    with torch.no_grad():
+        for k, layer in enumerate(stack.layers):
+            h, key = hidden[k], f"{net}.lstm{k}"
+            bias = weights[f"{key}.B"][0]
+            for name, value in (("weight_ih_l0", weights[f"{key}.W"][0]),
+                                ("weight_hh_l0", weights[f"{key}.R"][0]),
+                                ("bias_ih_l0", bias[:4 * h]), ("bias_hh_l0", bias[4 * h:])):
+                getattr(layer, name).copy_(torch.from_numpy(_torch_gates(value, h)))
+        stack.head.weight.copy_(torch.from_numpy(head))
+        stack.head.bias.copy_(torch.from_numpy(weights[f"{net}.head.b"]))
+    return stack

@@ -10,7 +10,7 @@ import hashlib
 import json
 import shlex
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import astuple, dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Optional
 
@@ -45,6 +45,7 @@ from ganlet.compile.data import (
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.export import build_onnx
 from ganlet.compile.fidelity import fault_set, fidelity, fidelity_text
+from ganlet.compile.int8_fit import Int8FitConfig, fit_int8
 from ganlet.compile.model import TeacherConfig
 from ganlet.compile.pack import check_name, check_out, pack_bundle, service_unit
 from ganlet.compile.pack import install_text as install_notes
@@ -187,12 +188,26 @@ class CompileOptions:
     alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK   # false-alarm budget on normal data
     drift: str = DRIFT_ACTION                  # "recentre" a drift away, or "report" it only
     threads: Optional[int] = None                  # torch + BLAS threads; None: compile/threads.py
+    int8: Int8FitConfig = field(default_factory=Int8FitConfig)  # epochs 0: plain rounding
 
 
 STUDENT_SOURCES = {"teacher": "the teacher's own networks (nothing to distil)",
                    "cache": "the student distilled earlier for this teacher, plan and config "
                             "(reused from the model directory)",
                    "distilled": "distilled in {seconds:.1f} s"}
+
+
+def int8_fit_text(fit: dict) -> str:
+    """compile's line on the quantisation-aware fine-tuning (int8_fit.py)."""
+    if not fit["epochs"]:
+        return "int8: plain rounding (--int8-epochs 0)"
+    gain = fit["error_plain"] / max(fit["error_fitted"], 1e-30)
+    verdict = (f"{gain:.3g}x closer than plain rounding, kept" if fit["kept"]
+               else "no closer than plain rounding, which ships")
+    return (f"int8 fit: {fit['epochs']} epochs through the rounding in {fit['seconds']:.1f} s; "
+            f"on the calibration windows its reconstructions are {verdict} (mean squared "
+            f"distance to fp32 in normal-error units {fit['error_plain']:.3g} -> "
+            f"{fit['error_fitted']:.3g})")
 
 
 @dataclass
@@ -215,6 +230,7 @@ class CompileResult:
             f"int8 vs fp32 student: Spearman {qs['spearman']:.5f}, max rel error "
             f"{qs['max_rel_error']:.2e}; weights {r['quantisation']['bytes_before']} -> "
             f"{r['quantisation']['bytes_after']} bytes",
+            int8_fit_text(r["int8_fit"]),
             f"fidelity: {fidelity_text(r['fidelity'])}",
         ]
         if self.plan.teacher_refused:
@@ -297,7 +313,9 @@ def compile_plan(model: TrainedModel, out: Path, plan: StudentPlan, board: Board
     timings["distil"] = time.perf_counter() - started
     started = time.perf_counter()
     fp32 = student.fp32
-    qweights = quantise_weights(fp32)
+    fit = store.once(("int8", student.key, astuple(options.int8)),
+                     lambda: fit_int8(model, fp32, options.int8))
+    qweights = quantise_weights(fit.weights)
     device = dequantise_weights(qweights)
     cal = store.once(("calibrate", student.key, plan.hop, options.threshold,
                       options.alarms_per_week, options.drift,
@@ -321,11 +339,11 @@ def compile_plan(model: TrainedModel, out: Path, plan: StudentPlan, board: Board
     report = {**cal.report, "seconds": timings, "bytes": packed.bytes,
               "quantisation": {k: v for k, v in quantisation_report(fp32, qweights).items()
                                if k != "keys"},
-              "fidelity": fid,
+              "fidelity": fid, "int8_fit": fit.report(),
               "student": {"source": student.source, "key": student.key,
                           "distil_seconds": student.distil_seconds, "plan": plan.to_json()}}
     if model_dir is not None:
-        record_student(Path(model_dir), out, fp32, report)
+        record_student(Path(model_dir), out, fp32, report, fit.weights)
     return CompileResult(out, packed.archive, plan, board, report)
 
 
@@ -366,14 +384,16 @@ def install_text(model: TrainedModel, board: Board, name: str, out: Path,
                          channels, model.period_s, signing)
 
 
-def record_student(model_dir: Path, bundle: Path, fp32: dict, report: dict) -> Path:
+def record_student(model_dir: Path, bundle: Path, fp32: dict, report: dict,
+                   int8_source: dict) -> Path:
     """The workstation's record of a bundle, beside its teacher and keyed by the bundle id: the
-    fp32 student (for `ganlet verify --model`) and the compile report. Nothing of it goes into
-    the bundle."""
+    fp32 student (for `ganlet verify --model`), the float weights its int8 weights are the
+    rounding of (int8_fit.py) and the compile report. Nothing of it goes into the bundle."""
     bundle_id = hashlib.sha256((bundle / MANIFEST_NAME).read_bytes()).hexdigest()
     students = model_dir / STUDENTS_DIR
     students.mkdir(exist_ok=True)
     np.savez(students / f"{bundle_id[:16]}.npz", **fp32)
+    np.savez(int8_source_file(model_dir, bundle_id), **int8_source)
     save_json(students / f"{bundle_id[:16]}.json", {"bundle_id": bundle_id, "report": report})
     return students / f"{bundle_id[:16]}.npz"
 
@@ -381,6 +401,11 @@ def record_student(model_dir: Path, bundle: Path, fp32: dict, report: dict) -> P
 def student_file(model_dir: Path, bundle_id: str) -> Path:
     """Where record_student keeps the fp32 student of a bundle."""
     return Path(model_dir) / STUDENTS_DIR / f"{bundle_id[:16]}.npz"
+
+
+def int8_source_file(model_dir: Path, bundle_id: str) -> Path:
+    """Where record_student keeps the float weights a bundle's int8 weights round."""
+    return Path(model_dir) / STUDENTS_DIR / f"{bundle_id[:16]}.int8-source.npz"
 
 
 def compile_dir(model_dir: Path, out: Path, options: CompileOptions, progress=None,

@@ -34,7 +34,7 @@ from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.distil import DistilConfig, distil
 from ganlet.compile.model import TeacherConfig
 from ganlet.compile.pack import service_unit
-from ganlet.compile.pipeline import STUDENTS_DIR, student_file
+from ganlet.compile.pipeline import STUDENTS_DIR, int8_source_file, student_file
 from ganlet.compile.sizing import size_student
 from ganlet.compile.train import save_model, score_windows, train
 from ganlet.runtime.lstm import Network
@@ -169,6 +169,13 @@ def test_quantisation_effect_on_scores_is_reported_and_small(teacher, bundle):
     assert found, bundle["stdout"]
     assert float(found.group(1)) > 0.99
     assert abs(float(found.group(1)) - rho) < 1e-3
+    # the int8 weights were fitted through the rounding first (compile/int8_fit.py), and the
+    # compile line says how much closer to fp32 that brought them
+    fit = bundle["report"]["int8_fit"]
+    assert fit["epochs"] == 6 and fit["error_fitted"] < fit["error_plain"] and fit["kept"]
+    assert re.search(r"int8 fit: 6 epochs through the rounding in [\d.]+ s; on the calibration "
+                     r"windows its reconstructions are [\d.]+x closer than plain rounding, kept",
+                     bundle["stdout"]), bundle["stdout"]
     print(f"\nint8 vs fp32 student: Spearman {rho:.6f}, max rel error {q['max_rel_error']:.2e}")
 
 
@@ -275,11 +282,17 @@ def test_runtime_copy_is_the_runtime_package(bundle):
     assert mismatch == [] and errors == []
 
 
-def test_weights_npz_is_int8_with_row_scales(bundle):
+def test_weights_npz_is_int8_with_row_scales(teacher, bundle):
     # reference: numpy.load without pickles
     with np.load(bundle["dir"] / "weights.npz", allow_pickle=False) as npz:
         raw = {k: npz[k] for k in npz.files}
-    fp32 = dict(np.load(bundle["fp32"], allow_pickle=False))
+    # the int8 weights round the weights fitted through the rounding (compile/int8_fit.py),
+    # which the workstation keeps beside the fp32 student; the fit moved them
+    bundle_id = hashlib.sha256(bundle["manifest_bytes"]).hexdigest()
+    fp32 = dict(np.load(int8_source_file(teacher["model_dir"], bundle_id), allow_pickle=False))
+    student = dict(np.load(bundle["fp32"], allow_pickle=False))
+    assert set(fp32) == set(student) and any(not np.array_equal(fp32[k], student[k])
+                                             for k in fp32)
     matrices = [k for k in fp32 if k.endswith((".W", ".R"))]
     assert set(raw) == set(fp32) | {k + ".scale" for k in matrices}
     for key in fp32:
