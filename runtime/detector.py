@@ -94,6 +94,8 @@ class Judge:
         self.recent = deque(maxlen=self.machine.min_hops)  # (hop, time, parts)
         self.alert = None  # type: Optional[dict]
         self.level = float("nan")  # the threshold applied to the last hop
+        # a channel is re-centred this hop (drift.py): the Detector sets it before each step
+        self.drifting = False
 
     @property
     def is_open(self) -> bool:
@@ -136,7 +138,10 @@ class Judge:
         reading's run in the same units (held.py). An open alert is judged on what opened it
         (the score and the CUSUM together, as the CUSUM's evidence includes the score)."""
         if self.cusum is not None and not self.machine.cooling:
-            self.cusum.add(score)
+            if self.drifting:  # the score's small excess is the re-centring's residue
+                self.cusum.clear()
+            else:
+                self.cusum.add(score)
         by = None if self.alert is None else self.alert.get("opened_by")
         if by == BY_SCORE:
             return score  # an alert the score opened closes when the score falls back
@@ -177,9 +182,11 @@ class Judge:
 
     def alert_channels(self) -> np.ndarray:
         """Channels of an open or pending alert: those whose contribution to the last hop is
-        at least the average (all False when nothing is open or pending)."""
+        at least the average (all False when nothing is open or pending, or the open alert is
+        the CUSUM's: drift.py says why)."""
         pending = self.machine.is_open or self.machine.run_len > 0
-        if not pending or not self.recent:
+        crept = self.alert is not None and self.alert.get("opened_by") == BY_CUSUM
+        if not pending or not self.recent or crept:
             return np.zeros(len(self.channels), dtype=bool)
         last = self.recent[-1][2]
         return last >= last.sum() / max(1, len(last))
@@ -381,6 +388,7 @@ class Detector:
         if self.drift is not None:
             offset, drift_events = self.drift.step(format_time(t), window_level(window),
                                                    self.judge.alert_channels())
+            self.judge.drifting = bool(offset.any())
             if offset.any():
                 window = (window - offset).astype(np.float32)
                 means = means - offset

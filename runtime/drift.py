@@ -23,7 +23,10 @@ windows spent outside, e_c / (hops outside / hops per window), is at most v_max_
 then holds still is left to the score and the alert machine until as long has passed as the
 fastest normal movement would have needed to get that far; without it any held step passed as
 drift as soon as its window had gone by), its speed is at most v_max_c, and it is not among the
-channels of an open or pending alert. The pace is checked again on every hop of the drift,
+channels of an open or pending alert the score or a held reading raised (an alert the CUSUM
+opened keeps no channel out: it says the score crept up, which a drift also does, and the pace
+test above is what tells the two apart; kept out, a warming channel was never re-centred and
+held the CUSUM's alert open for good). The pace is checked again on every hop of the drift,
 over all the hops since the channel left: a channel in drift that then runs away faster than
 training ever moved is no longer drifting, its drift ends (`drift_ended`, reason "faster") and
 the score sees it; the entry check, still counting from when it left, decides whether it

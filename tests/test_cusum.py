@@ -97,6 +97,40 @@ def test_no_evidence_is_gathered_in_the_cooldown_and_it_restarts_at_a_close():
     assert judge.cusum.evidence == pytest.approx(np.log(3.0) - 0.3)
 
 
+def test_a_drift_pauses_the_cusum_and_a_crept_alert_keeps_no_channel_out_of_drift():
+    """A warming machine: the score creeps to twice its median, the CUSUM opens an alert, and
+    only then has the warming channel been outside its envelope long enough to be a drift.
+    A CUSUM alert keeps no channel out of drift (a score alert does), and while a channel is
+    re-centred the CUSUM gathers nothing and drops what it held, so the alert closes once the
+    score is back under the level. Without the pause the same hops hold it open."""
+    policy = {"kind": "static", "level": 6.0,
+              "cusum": {"median": 1.0, "allowance": 0.3, "limit": 8.0}}
+    parts = np.array([3.0, 0.2])          # the warming channel carries the score
+
+    def crept(drifting: bool) -> tuple:
+        judge = Judge("b", ["warm", "other"], ["u", "u"], policy, ALERTING)
+        for _ in range(60):
+            judge.step(0.0, 2.0, parts)
+        assert judge.alert is not None and judge.alert["opened_by"] == "cusum"
+        blocked = judge.alert_channels().copy()
+        judge.drifting = drifting
+        closed = [hop for hop in range(60) for e in judge.step(0.0, 2.0, parts)
+                  if e["event"] == "alert_closed"]
+        return blocked, closed, judge.cusum.evidence
+
+    blocked, closed, evidence = crept(drifting=True)
+    assert not blocked.any()
+    assert closed == [0] and evidence == 0.0
+    _, closed, evidence = crept(drifting=False)
+    assert closed == [] and evidence == pytest.approx(2 * 8.0)   # held at its cap
+    # an alert the score opened still keeps its channel out of drift
+    judge = Judge("b", ["warm", "other"], ["u", "u"], policy, ALERTING)
+    for _ in range(5):
+        judge.step(0.0, 10.0, parts)
+    assert judge.alert["opened_by"] == "score"
+    assert judge.alert_channels().tolist() == [True, False]
+
+
 @pytest.mark.parametrize("seed", [0, 1])
 def test_the_threshold_and_the_cusum_together_keep_the_budget(seed):
     """Calibrated on 40,000 scores of a known distribution (gamma(2), a chi-square-like score;
