@@ -7,8 +7,11 @@ for the default board, and `ganlet evaluate` runs it through `run.py stream` (it
 policy, false-alarm budget and alert machine), the teacher through the gateway's Detector with
 its own calibration, and the baselines under the same policy, budget and alert machine
 (tests/skab_protocol.py holds the protocol, shared with tests/test_evaluate.py). Prints F1 /
-FAR / MAR / ROC AUC pooled over every test row, per seed and their mean. The SKAB folder is
-test data beside the repository, not part of it.
+FAR / MAR / ROC AUC pooled over every test row, per seed and their mean, and where the false
+alarms and misses sit: before or after a labelled incident in an alert that reaches it (the
+alert and the label disagree on the incident's edges), apart from any label, at an incident's
+onset, in an incident no alert reaches, or after its alert closed. The SKAB folder is test data
+beside the repository, not part of it.
 """
 
 from __future__ import annotations
@@ -55,6 +58,13 @@ def main() -> None:
         mean = {key: float(np.mean([r[key] for r in rows])) for key in ("f1", "far", "mar", "auc")}
         print(f"{'mean':>4}  {name:28s}  {mean['f1']:6.3f}  {mean['far']:6.3f}  "
               f"{mean['mar']:6.3f}  {mean['auc']:6.3f}")
+    print("mean of seeds, where the wrong rows sit (evaluate.error_sites): false alarms as "
+          "shares of the normal rows (sum = FAR), misses of the labelled rows (sum = MAR)")
+    keys = list(next(iter(table.values()))[0]["sites"])
+    print(f"{'':4}  {'method':28s}  " + "  ".join(f"{k:>7}" for k in keys))
+    for name, rows in table.items():
+        print(f"{'mean':>4}  {name:28s}  " + "  ".join(
+            f"{np.mean([r['sites'][k] for r in rows]):7.3f}" for k in keys))
     print("mean of seeds, reference rule for comparison: score > 99th percentile of the file's "
           "training scores, per row, no alert machine")
     for name, rows in table.items():

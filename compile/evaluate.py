@@ -111,6 +111,40 @@ def point_metrics(y_true, y_pred) -> dict:
             "tp": tp, "fp": fp, "fn": fn, "tn": tn}
 
 
+def runs_of(flags: np.ndarray) -> list:
+    """[(start, end)) of each run of True."""
+    edges = np.flatnonzero(np.diff(np.concatenate([[0], np.asarray(flags, np.int8), [0]])))
+    return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
+
+
+def error_sites(y_true, y_pred) -> dict:
+    """Where the wrong rows of a point metric sit, in rows (they add up to FP and FN).
+
+    False alarms: `lead`, rows of an alert before the first labelled row it reaches; `tail`,
+    its other unlabelled rows (after a label, or between two it spans); `apart`, rows of an alert
+    that reaches no label. Misses: `onset`, rows of a labelled run before its first alerted row;
+    `unseen`, every row of a run no alert reaches; `dropped`, the other missed rows (the alert
+    closed, or paused, inside the run). Lead and tail say the alerts and the labels disagree on
+    where an incident starts and ends; apart and unseen are detections and misses outright."""
+    y, p = np.asarray(y_true, bool), np.asarray(y_pred, bool)
+    sites = dict.fromkeys(("lead", "tail", "apart", "onset", "unseen", "dropped"), 0)
+    for a, b in runs_of(p):
+        labelled = np.flatnonzero(y[a:b])
+        if not labelled.size:
+            sites["apart"] += b - a
+            continue
+        sites["lead"] += int(labelled[0])
+        sites["tail"] += int((~y[a:b]).sum()) - int(labelled[0])
+    for a, b in runs_of(y):
+        alerted = np.flatnonzero(p[a:b])
+        if not alerted.size:
+            sites["unseen"] += b - a
+            continue
+        sites["onset"] += int(alerted[0])
+        sites["dropped"] += int((~p[a:b]).sum()) - int(alerted[0])
+    return sites
+
+
 def event_metrics(times: np.ndarray, y: np.ndarray, alert: np.ndarray, period_s: float) -> dict:
     """Event recall, mean detection delay and false alarms per day on the evaluated points."""
     incidents = alert_events(y)

@@ -21,6 +21,7 @@ REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab"
 TRAIN_ROWS = 400
 BUNDLE = "bundle (int8, gateway path)"
+FALSE_ALARM_SITES = ("lead", "tail", "apart")  # evaluate.error_sites; the rest are misses
 
 
 def valve1_files(root: Path = SKAB) -> list:
@@ -97,10 +98,12 @@ def p99_alerts(out: dict, name: str) -> np.ndarray:
 
 def pooled(outs: list) -> dict:
     """Per method: point metrics over every file's test rows together, the ROC AUC of its
-    score (sklearn.metrics.roc_auc_score), and under "p99" the point metrics of p99_alerts."""
+    score (sklearn.metrics.roc_auc_score), under "p99" the point metrics of p99_alerts, and
+    under "sites" where its false alarms and misses sit (evaluate.error_sites, file by file,
+    summed) as shares of the normal and of the labelled rows (they add up to FAR and MAR)."""
     from sklearn.metrics import roc_auc_score
 
-    from ganlet.compile.evaluate import point_metrics
+    from ganlet.compile.evaluate import error_sites, point_metrics
 
     y = np.concatenate([o["labels"] for o in outs])
     metrics = {}
@@ -110,6 +113,10 @@ def pooled(outs: list) -> dict:
         ok = np.isfinite(s)
         m["auc"] = float(roc_auc_score(y[ok], s[ok]))
         m["p99"] = point_metrics(y, np.concatenate([p99_alerts(o, name) for o in outs]))
+        rows = [error_sites(o["labels"], o["alert"][name]) for o in outs]
+        normal, labelled = int((~y).sum()), int(y.sum())
+        m["sites"] = {k: sum(r[k] for r in rows) / (normal if k in FALSE_ALARM_SITES
+                                                     else labelled) for k in rows[0]}
         metrics[name] = m
     return metrics
 

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import confusion_matrix, precision_recall_fscore_support
 
-from ganlet.compile.evaluate import event_metrics, point_metrics
+from ganlet.compile.evaluate import error_sites, event_metrics, point_metrics
 from ganlet.compile.verify import alert_events, match_events
 
 
@@ -63,3 +63,29 @@ def test_alert_events_and_matching_worked_example():
     assert only_a == [1, 2] and only_b == [1]
     pairs, only_a, only_b = match_events(alert_events(a), b_events, tolerance=4)
     assert pairs == [(0, 0), (1, 1)] and only_a == [2] and only_b == []
+
+
+def test_error_sites_worked_example_adds_up_to_the_confusion_matrix():
+    # worked example, 30 rows: labels at 5..9 and 20..24; alerts at 3..7 (2 rows early), 9..12
+    # (from the label's last row, 3 rows on), 15..16 (apart) and none in the second label.
+    y = np.zeros(30, bool)
+    y[5:10] = y[20:25] = True
+    p = np.zeros(30, bool)
+    p[3:8] = p[9:13] = p[15:17] = True
+    sites = error_sites(y, p)
+    assert sites == {"lead": 2, "tail": 3, "apart": 2, "onset": 0, "unseen": 5, "dropped": 1}
+    # reference: sklearn.metrics.confusion_matrix; the sites split FP and FN exactly
+    tn, fp, fn, tp = confusion_matrix(y, p, labels=[False, True]).ravel()
+    assert sites["lead"] + sites["tail"] + sites["apart"] == fp
+    assert sites["onset"] + sites["unseen"] + sites["dropped"] == fn
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_error_sites_split_random_alerts_exactly(seed):
+    rng = np.random.default_rng(seed)
+    y = np.repeat(rng.random(40) < 0.3, 10)  # runs of labelled rows
+    p = np.repeat(rng.random(100) < 0.4, 4)
+    sites = error_sites(y, p)
+    tn, fp, fn, tp = confusion_matrix(y, p, labels=[False, True]).ravel()  # reference: sklearn
+    assert sites["lead"] + sites["tail"] + sites["apart"] == fp
+    assert sites["onset"] + sites["unseen"] + sites["dropped"] == fn
