@@ -52,6 +52,7 @@ from ganlet.compile.data import (
     grid_index,
     load_frame,
     parse_times,
+    runs,
 )
 from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
 from ganlet.compile.verify import alert_events, clean_json, replay_alerts, replay_feed
@@ -111,12 +112,6 @@ def point_metrics(y_true, y_pred) -> dict:
             "tp": tp, "fp": fp, "fn": fn, "tn": tn}
 
 
-def runs_of(flags: np.ndarray) -> list:
-    """[(start, end)) of each run of True."""
-    edges = np.flatnonzero(np.diff(np.concatenate([[0], np.asarray(flags, np.int8), [0]])))
-    return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
-
-
 def error_sites(y_true, y_pred) -> dict:
     """Where the wrong rows of a point metric sit, in rows (they add up to FP and FN).
 
@@ -127,22 +122,24 @@ def error_sites(y_true, y_pred) -> dict:
     closed, or paused, inside the run). Lead and tail say the alerts and the labels disagree on
     where an incident starts and ends; apart and unseen are detections and misses outright."""
     y, p = np.asarray(y_true, bool), np.asarray(y_pred, bool)
-    sites = dict.fromkeys(("lead", "tail", "apart", "onset", "unseen", "dropped"), 0)
-    for a, b in runs_of(p):
-        labelled = np.flatnonzero(y[a:b])
-        if not labelled.size:
-            sites["apart"] += b - a
+    lead, tail, apart = _split_runs(p, y)
+    onset, dropped, unseen = _split_runs(y, p)
+    return {"lead": lead, "tail": tail, "apart": apart,
+            "onset": onset, "unseen": unseen, "dropped": dropped}
+
+
+def _split_runs(outer: np.ndarray, inner: np.ndarray) -> tuple:
+    """The rows of `outer`'s runs where `inner` is False, as (before inner's first row in the
+    run, after it, in runs inner never reaches)."""
+    before = after = never = 0
+    for a, b in runs(outer):
+        hit = np.flatnonzero(inner[a:b])
+        if not hit.size:
+            never += b - a
             continue
-        sites["lead"] += int(labelled[0])
-        sites["tail"] += int((~y[a:b]).sum()) - int(labelled[0])
-    for a, b in runs_of(y):
-        alerted = np.flatnonzero(p[a:b])
-        if not alerted.size:
-            sites["unseen"] += b - a
-            continue
-        sites["onset"] += int(alerted[0])
-        sites["dropped"] += int((~p[a:b]).sum()) - int(alerted[0])
-    return sites
+        before += int(hit[0])
+        after += int((~inner[a:b]).sum()) - int(hit[0])
+    return before, after, never
 
 
 def event_metrics(times: np.ndarray, y: np.ndarray, alert: np.ndarray, period_s: float) -> dict:

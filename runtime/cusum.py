@@ -27,8 +27,9 @@ judged on the score alone. While a channel is re-centred as drift (drift.py) the
 nothing and drops what it held: the network then sees a channel pinned to its envelope's edge,
 whose small lasting excess is the re-centring's residue, exactly what the CUSUM would add up
 (SKAB's anomaly-free rig trained on 2,000 rows: a CUSUM alert opened on the warm-up and stayed
-open through 99.8 % of the stream); the score still alerts on anything that passes the level. The median, allowance and limit are fixed: the CUSUM never learns
-from the stream. Its settings sit in the threshold policy under CUSUM_KEY.
+open through 99.8 % of the stream); the score still alerts on anything that passes the level.
+The median, allowance and limit are fixed: the CUSUM never learns from the stream. Its settings
+sit in the threshold policy under CUSUM_KEY.
 """
 
 import math

@@ -94,19 +94,19 @@ class Judge:
         self.recent = deque(maxlen=self.machine.min_hops)  # (hop, time, parts)
         self.alert = None  # type: Optional[dict]
         self.level = float("nan")  # the threshold applied to the last hop
-        # a channel is re-centred this hop (drift.py): the Detector sets it before each step
-        self.drifting = False
 
     @property
     def is_open(self) -> bool:
         return self.machine.is_open
 
-    def step(self, t: float, score: float, parts: Optional[np.ndarray] = None) -> List[dict]:
+    def step(self, t: float, score: float, parts: Optional[np.ndarray] = None,
+             drifting: bool = False) -> List[dict]:
+        """One scored hop; `drifting`: a channel of it was re-centred as drift (drift.py)."""
         parts = np.zeros(len(self.channels)) if parts is None else np.asarray(parts, np.float64)
         self.level = float(self.threshold.level)
         hop = self.machine.hop
         was_open = self.machine.is_open
-        judged = self._judged(score)
+        judged = self._judged(score, drifting)
         transition = self.machine.step(judged, self.level)
         if not was_open and not self.machine.is_open and judged <= self.level:
             self.threshold.absorb(score)  # only what it judged normal, never inside an alert
@@ -132,13 +132,13 @@ class Judge:
         if self.held is not None:
             self.held.add(raw)
 
-    def _judged(self, score: float) -> float:
+    def _judged(self, score: float, drifting: bool) -> float:
         """What the alert machine compares with the level: the score, the CUSUM's evidence in
         the score's units (cusum.py; it gathers none while the machine cools down), or a held
         reading's run in the same units (held.py). An open alert is judged on what opened it
         (the score and the CUSUM together, as the CUSUM's evidence includes the score)."""
         if self.cusum is not None and not self.machine.cooling:
-            if self.drifting:  # the score's small excess is the re-centring's residue
+            if drifting:  # the score's small excess is the re-centring's residue
                 self.cusum.clear()
             else:
                 self.cusum.add(score)
@@ -384,12 +384,12 @@ class Detector:
     def _hop(self, t: float, window: np.ndarray) -> List[dict]:
         """Score one window: drift re-centring, network, score rule, then the Judge."""
         means = window.mean(axis=0, dtype=np.float64)
-        drift_events = []
+        drift_events, drifting = [], False
         if self.drift is not None:
             offset, drift_events = self.drift.step(format_time(t), window_level(window),
                                                    self.judge.alert_channels())
-            self.judge.drifting = bool(offset.any())
-            if offset.any():
+            drifting = bool(offset.any())
+            if drifting:
                 window = (window - offset).astype(np.float32)
                 means = means - offset
         recon = self.scorer.reconstruct(window[None])
@@ -398,7 +398,8 @@ class Detector:
         self.counters["hops"] += 1
         self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],
                          "score": float(scores[0]), "parts": parts[0]}
-        events = self.judge.step(t, float(scores[0]), self.rule.contributions(parts[0]))
+        events = self.judge.step(t, float(scores[0]), self.rule.contributions(parts[0]),
+                                 drifting)
         for e in events:
             if e["event"] == "alert_opened":
                 e["moved"] = self.judge.alert["moved"] = (

@@ -113,8 +113,7 @@ def test_a_drift_pauses_the_cusum_and_a_crept_alert_keeps_no_channel_out_of_drif
             judge.step(0.0, 2.0, parts)
         assert judge.alert is not None and judge.alert["opened_by"] == "cusum"
         blocked = judge.alert_channels().copy()
-        judge.drifting = drifting
-        closed = [hop for hop in range(60) for e in judge.step(0.0, 2.0, parts)
+        closed = [hop for hop in range(60) for e in judge.step(0.0, 2.0, parts, drifting)
                   if e["event"] == "alert_closed"]
         return blocked, closed, judge.cusum.evidence
 
