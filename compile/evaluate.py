@@ -260,6 +260,20 @@ GLOSSARY = (
     ("TP, FP, FN, TN", "true positives, false positives, false negatives, true negatives "
                        "(points)"),
 )
+# Where the wrong points sit (error_sites): the header of each kind and what it counts. The first
+# three add up to FP, the last three to FN.
+SITES = (
+    ("lead", "before", "false alarms: points of an alert before the first incident point it "
+                       "reaches (the alert opened early, or the incident's label starts late)"),
+    ("tail", "after", "false alarms: the other normal points of an alert that reaches an "
+                      "incident (it stayed open after the incident's labelled end)"),
+    ("apart", "apart", "false alarms: points of alerts that reach no incident"),
+    ("onset", "onset", "misses: points of an incident before its first flagged point (the "
+                       "detection delay)"),
+    ("unseen", "unseen", "misses: every point of an incident no alert reaches"),
+    ("dropped", "dropped", "misses: the other points of a detected incident that no alert "
+                           "covers (the alert closed, or paused, inside it)"),
+)
 
 
 @dataclass
@@ -284,6 +298,18 @@ class EvalResult:
                          k["event_recall"], rep.duration(k["mean_delay_s"]),
                          k["false_alarms_per_day"], m.policy_kind])
         return rows
+
+    def site_rows(self):
+        """Per method: FP split by where it sits, then FN (points; error_sites)."""
+        rows = []
+        for m in self.methods.values():
+            k = m.metrics
+            rows.append([m.name] + [k["sites"][key] for key, _, _ in SITES[:3]] + [k["fp"]]
+                        + [k["sites"][key] for key, _, _ in SITES[3:]] + [k["fn"]])
+        return rows
+
+    SITE_HEADERS = (["method"] + [f"FP {head}" for _, head, _ in SITES[:3]] + ["FP"]
+                    + [f"FN {head}" for _, head, _ in SITES[3:]] + ["FN"])
 
     HEADERS = ["method", "precision", "recall", "F1", "FAR", "MAR", "event recall",
                "mean delay", "false alarms/day", "threshold"]
@@ -339,6 +365,11 @@ class EvalResult:
                  "F1 = harmonic mean of precision and recall; FAR = false-alarm rate (share of "
                  "normal points flagged); MAR = missed-alarm rate (share of incident points "
                  "missed)",
+                 "where the wrong points sit (false alarms FP: before / after an incident in "
+                 "an alert that reaches it, or apart from every incident; misses FN: at an "
+                 "incident's onset, in an incident no alert reaches, or dropped after its "
+                 "alert closed):",
+                 rep.text_table(self.SITE_HEADERS, self.site_rows()),
                  f"baseline features: {self.features}",
                  self.rule_text()]
         lines += [f"note: {n}" for n in self.notes]
@@ -358,6 +389,7 @@ class EvalResult:
             "methods": {m.name: dict(m.metrics, threshold=m.policy_kind)
                         for m in self.methods.values()},
             "glossary": dict(GLOSSARY),
+            "sites_meaning": {key: text for key, _, text in SITES},
             "notes": self.notes})
 
 
@@ -425,6 +457,7 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     t = frame.times.values[evaluated]
     for m in methods.values():
         m.metrics = point_metrics(y[evaluated], m.alert[evaluated])
+        m.metrics["sites"] = error_sites(y[evaluated], m.alert[evaluated])
         m.metrics.update(event_metrics(t, y[evaluated], m.alert[evaluated], frame.period_s))
     return EvalResult(source=str(source), data=str(data), times=frame.times, labels=y,
                       evaluated=evaluated, methods=methods, incidents=inc, rule=rule,
@@ -646,6 +679,12 @@ def write_html(result: EvalResult, path: Path) -> Path:
         ("Methods side by side", rep.html_table(result.HTML_HEADERS, result.table_rows())
          + rep.definitions(GLOSSARY)
          + rep.paragraph(f"Baseline features: {result.features}.", "note")),
+        ("Where the wrong points sit", rep.html_table(result.SITE_HEADERS, result.site_rows())
+         + rep.definitions([(f"FP {head}" if k < 3 else f"FN {head}", text)
+                            for k, (_, head, text) in enumerate(SITES)])
+         + rep.paragraph("Before and after say the alerts and the labels disagree on where an "
+                         "incident starts and ends; apart and unseen are false alarms and "
+                         "misses outright.", "note")),
         ("Threshold rule and alert settings", rule_html(result)),
         ("Incidents", rep.html_table(["start (UTC)", "end (UTC)", "kind"],
                                      result.incidents.astype(str).values.tolist())),

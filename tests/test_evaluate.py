@@ -11,6 +11,7 @@ import pytest
 import skab_protocol
 import torch
 import typer
+from sklearn.metrics import confusion_matrix
 from synthetic import correlated_series, inject
 from typer.testing import CliRunner
 
@@ -62,6 +63,13 @@ def test_model_dir_metrics_and_baselines(synthetic):
         p, rc, f1, _ = precision_recall_fscore_support(
             r.labels[r.evaluated], m.alert[r.evaluated], average="binary", zero_division=0)
         assert m.metrics["f1"] == pytest.approx(f1) and m.metrics["recall"] == pytest.approx(rc)
+        # where the wrong points sit: the false-alarm kinds add up to sklearn's FP, the misses
+        # to its FN (reference: sklearn.metrics.confusion_matrix)
+        tn, fp, fn, tp = confusion_matrix(r.labels[r.evaluated], m.alert[r.evaluated],
+                                          labels=[False, True]).ravel()
+        sites = m.metrics["sites"]
+        assert sites["lead"] + sites["tail"] + sites["apart"] == fp
+        assert sites["onset"] + sites["unseen"] + sites["dropped"] == fn
     assert r.evaluated.sum() == 400
     assert r.methods["teacher"].metrics["event_recall"] > 0
 
@@ -112,6 +120,13 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
     assert "false-alarm rate (FAR)" in page and "missed-alarm rate (MAR)" in page
     assert "<dt>F1</dt><dd>F1 score: the harmonic mean of precision and recall" in page
     assert set(summary["glossary"]) >= {"F1", "FAR", "MAR", "event recall", "mean delay"}
+    # where the wrong points sit, per method, in the terminal, the JSON and the page
+    bundle = summary["methods"]["bundle (int8, gateway path)"]
+    assert sum(bundle["sites"][k] for k in ("lead", "tail", "apart")) == bundle["fp"]
+    assert sum(bundle["sites"][k] for k in ("onset", "unseen", "dropped")) == bundle["fn"]
+    assert set(summary["sites_meaning"]) == set(bundle["sites"])
+    assert "where the wrong points sit" in r.output and "FN unseen" in r.output
+    assert "<h2>Where the wrong points sit</h2>" in page and "<dt>FP apart</dt>" in page
     # alert settings as a table, each with its meaning and its length in time (1 min grid)
     alerting = summary["rule"]["alerting"]
     assert "{'warmup_hops'" not in page and "{&#x27;warmup_hops" not in page
