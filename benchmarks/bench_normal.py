@@ -7,9 +7,9 @@ test rig, see its README) is normal operation from start to end. Per training le
 rows train with `ganlet train`'s defaults, `ganlet compile` packs a bundle for the default board
 (budget: one false alarm per week), and every later row goes through `run.py stream` as a
 gateway would see it. Prints the alerts raised, the streamed hours, alarms per week, the share
-of streamed time inside an open alert, the hops above the threshold, the drift events and how
-many alerts the CUSUM opened ("off" where the history was too short to arm it). Every alert
-here is a false alarm; the budget is a
+of streamed time inside an open alert, the hops above the threshold, the drift events, how
+many alerts the CUSUM opened ("off" where the history was too short to arm it) and how many a
+level step opened (runtime/drift.py). Every alert here is a false alarm; the budget is a
 promise about data like the training span, so the gap between the two is what a short history
 costs. The SKAB folder is test data beside the repository, not part of it.
 """
@@ -50,6 +50,7 @@ def run_length(path: Path, rows: int, seed: int, out: Path, drift: str) -> dict:
     return {"rows": rows, "hours": hours, "alerts": len(opened),
             "by_cusum": sum(e.get("opened_by") == "cusum" for e in opened)
             if "cusum" in manifest["threshold"] else None,
+            "by_step": sum(e.get("opened_by") == "step" for e in opened),
             "per_week": len(opened) / (hours * 3600) * WEEK_S,
             "in_alert": float(scores["alert"].mean()),
             "hops_above": float((scores["score"] > scores["threshold"]).mean()),
@@ -74,7 +75,8 @@ def main() -> None:
     print(f"SKAB anomaly-free, seed {a.seed}, defaults (budget 1 false alarm per week), "
           f"--drift {drift}")
     print(f"{'train rows':>10}  {'streamed h':>10}  {'alerts':>6}  {'per week':>9}  "
-          f"{'in alert':>8}  {'hops above':>10}  {'drifts':>6}  {'by cusum':>8}  {'s':>5}")
+          f"{'in alert':>8}  {'hops above':>10}  {'drifts':>6}  {'by cusum':>8}  "
+          f"{'by step':>7}  {'s':>5}")
     with tempfile.TemporaryDirectory(prefix="ganlet-normal-") as tmp:
         for rows in a.train_rows:
             started = time.perf_counter()
@@ -83,7 +85,7 @@ def main() -> None:
                   f"{r['per_week']:>9.0f}  {r['in_alert']:>8.3f}  {r['hops_above']:>10.3f}  "
                   f"{r['drifts']:>6}  "
                   f"{'off' if r['by_cusum'] is None else r['by_cusum']:>8}  "
-                  f"{time.perf_counter() - started:>5.0f}")
+                  f"{r['by_step']:>7}  {time.perf_counter() - started:>5.0f}")
 
 
 if __name__ == "__main__":

@@ -58,7 +58,7 @@ from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_
 from ganlet.compile.verify import alert_events, clean_json, replay_alerts, replay_feed
 from ganlet.runtime.alerts import default_alerting
 from ganlet.runtime.cusum import MIN_EXCURSIONS
-from ganlet.runtime.drift import action_summary
+from ganlet.runtime.drift import STEP_TEXT, action_summary
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
 BASELINES = ("IsolationForest", "GaussianMixture", "OneClassSVM", "rolling z-score")
@@ -651,6 +651,9 @@ def rule_html(result: EvalResult) -> str:
                             ["drift", result.rule.drift,
                              "a channel drifting out of its training range: "
                              + action_summary(result.rule.drift), "-"],
+                            ["steps", "bundle and teacher",
+                             STEP_TEXT + " (where the drift section says so, as compile's "
+                             "default does; the baselines have no drift monitor)", "-"],
                             ["cusum", "with pot",
                              "a CUSUM of the log score also alerts on a rise held over many "
                              "steps, fitted for the same budget (shared), where a method's "

@@ -412,6 +412,8 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
     if replay_agreement < 1.0:
         why = ("an alert on a held reading, judged on the readings and not on the score, or "
                if HELD_KEY in bundle.threshold_policy else "")
+        if (bundle.manifest.get("drift") or {}).get("alert_steps"):
+            why += "an alert on a level step, judged on the window levels, or "
         notes.append(f"replaying the device's own scores through the threshold policy and alert "
                      f"machine reproduces its alert column on {replay_agreement:.2%} of hops "
                      f"({why}a restart from a checkpoint mid-stream, or a different runtime, "

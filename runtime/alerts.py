@@ -23,9 +23,10 @@ OPENED = "opened"
 CLOSED = "closed"
 ALERTING_KEYS = ("warmup_hops", "min_hops", "close_ratio", "cooldown_hops")
 # What opened an alert (the alert events' `opened_by`), judged by the Judge (detector.py): the
-# score itself, the CUSUM's evidence of a held rise (cusum.py), or a held reading (held.py).
-BY_SCORE, BY_CUSUM, BY_HELD = "score", "cusum", "held"
-OPENED_BY = (BY_SCORE, BY_CUSUM, BY_HELD)
+# score itself, the CUSUM's evidence of a held rise (cusum.py), a held reading (held.py), or a
+# channel's level that stepped out of its training range (drift.py).
+BY_SCORE, BY_CUSUM, BY_HELD, BY_STEP = "score", "cusum", "held", "step"
+OPENED_BY = (BY_SCORE, BY_CUSUM, BY_HELD, BY_STEP)
 
 
 def default_alerting(window: int, hop: int) -> dict:

@@ -24,7 +24,7 @@ from typing import List, Optional
 
 from .checkpoint import CheckpointError
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, MAX_AHEAD_S
-from .drift import action_summary
+from .drift import STEP_TEXT, action_summary
 from .intake import DECIMALS, Dialect
 from .manifest import BundleError, load_bundle
 from .scorer import BACKENDS, make_scorer
@@ -270,6 +270,8 @@ def detector_line(summary: dict) -> str:
                      + ", ".join(watched) + ")")
     drift = summary.get("drift")
     parts.append("drift: " + action_summary(drift))
+    if summary.get("alert_steps"):
+        parts.append(STEP_TEXT)
     return "; ".join(parts)
 
 

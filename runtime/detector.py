@@ -38,13 +38,14 @@ from .alerts import (
     BY_CUSUM,
     BY_HELD,
     BY_SCORE,
+    BY_STEP,
     CLOSED,
     OPENED,
     WARMED_UP,
     AlertMachine,
 )
 from .cusum import Cusum
-from .drift import DriftMonitor, window_level
+from .drift import MARGIN, DriftMonitor, window_level
 from .held import HeldReadings
 from .intake import RowError, format_time
 from .ring import Ring
@@ -100,13 +101,15 @@ class Judge:
         return self.machine.is_open
 
     def step(self, t: float, score: float, parts: Optional[np.ndarray] = None,
-             drifting: bool = False) -> List[dict]:
-        """One scored hop; `drifting`: a channel of it was re-centred as drift (drift.py)."""
+             drifting: bool = False, steps: Optional[np.ndarray] = None) -> List[dict]:
+        """One scored hop; `drifting`: a channel of it was re-centred as drift; `steps`: each
+        channel's excess in MARGINs where it is a step, else 0 (drift.py)."""
         parts = np.zeros(len(self.channels)) if parts is None else np.asarray(parts, np.float64)
         self.level = float(self.threshold.level)
         hop = self.machine.hop
         was_open = self.machine.is_open
-        judged = self._judged(score, drifting)
+        worst_step = float(np.max(steps)) if steps is not None and len(steps) else 0.0
+        judged = self._judged(score, drifting, worst_step)
         transition = self.machine.step(judged, self.level)
         if not was_open and not self.machine.is_open and judged <= self.level:
             self.threshold.absorb(score)  # only what it judged normal, never inside an alert
@@ -119,7 +122,7 @@ class Judge:
         if transition == WARMED_UP:
             events.append({"event": "warmed_up", "time": format_time(t), "hop": hop})
         elif transition == OPENED:
-            events.append(self._open(self._opened_by(score)))
+            events.append(self._open(self._opened_by(score, worst_step)))
         elif transition == CLOSED:
             events.append(self._alert_event("alert_closed", closed=format_time(t)))
             self.alert = None
@@ -132,11 +135,12 @@ class Judge:
         if self.held is not None:
             self.held.add(raw)
 
-    def _judged(self, score: float, drifting: bool) -> float:
+    def _judged(self, score: float, drifting: bool, worst_step: float) -> float:
         """What the alert machine compares with the level: the score, the CUSUM's evidence in
-        the score's units (cusum.py; it gathers none while the machine cools down), or a held
-        reading's run in the same units (held.py). An open alert is judged on what opened it
-        (the score and the CUSUM together, as the CUSUM's evidence includes the score)."""
+        the score's units (cusum.py; it gathers none while the machine cools down), a held
+        reading's run (held.py) or a step's excess (drift.py) in the same units. An open alert
+        is judged on what opened it (the score and the CUSUM together, as the CUSUM's evidence
+        includes the score)."""
         if self.cusum is not None and not self.machine.cooling:
             if drifting:  # the score's small excess is the re-centring's residue
                 self.cusum.clear()
@@ -148,7 +152,11 @@ class Judge:
         held = self._held_judged()
         if by == BY_HELD:
             return held  # closes when the reading moves again
+        step = self._in_score_units(worst_step) if worst_step > 0 else -np.inf
+        if by == BY_STEP:
+            return step  # closes when the channel is back, or no longer a step (drift.py)
         judged = score if self.cusum is None else self.cusum.judged(score, self.level)
+        judged = max(judged, step) if step > self.level else judged
         return max(judged, held) if held > self.level else judged
 
     def _held_judged(self) -> float:
@@ -158,7 +166,12 @@ class Judge:
         negative)."""
         if self.held is None:
             return -np.inf
-        return self.level + abs(self.level) * (self.held.ratio() - 1.0)
+        return self._in_score_units(self.held.ratio())
+
+    def _in_score_units(self, ratio: float) -> float:
+        """A ratio to its limit (> 1: past it) as a score: above the level by the level's size
+        times how far past, so above it exactly when the ratio is above 1."""
+        return self.level + abs(self.level) * (ratio - 1.0)
 
     def held_channel(self, score: float) -> dict:
         """`moved` of an alert a held reading opened: the channel, and how many identical
@@ -167,10 +180,12 @@ class Judge:
         return {"name": self.channels[c], "unit": self.units[c],
                 "held_readings": self.held.runs[c], "score": finite_or_none(score)}
 
-    def _opened_by(self, score: float) -> str:
+    def _opened_by(self, score: float, worst_step: float) -> str:
         if self.held is not None and self.held.ratio() > 1.0:
             return BY_HELD  # the most specific: it names the channel and what it does
-        return BY_SCORE if score > self.level else BY_CUSUM
+        if score > self.level:
+            return BY_SCORE
+        return BY_STEP if worst_step > 1.0 else BY_CUSUM
 
     def reset_run(self) -> None:
         """After a long gap the hops before it no longer lead up to the hops after it."""
@@ -384,10 +399,10 @@ class Detector:
     def _hop(self, t: float, window: np.ndarray) -> List[dict]:
         """Score one window: drift re-centring, network, score rule, then the Judge."""
         means = window.mean(axis=0, dtype=np.float64)
-        drift_events, drifting = [], False
+        drift_events, drifting, steps = [], False, None
         if self.drift is not None:
-            offset, drift_events = self.drift.step(format_time(t), window_level(window),
-                                                   self.judge.alert_channels())
+            offset, drift_events, steps = self.drift.step(format_time(t), window_level(window),
+                                                          self.judge.alert_channels())
             drifting = bool(offset.any())
             if drifting:
                 window = (window - offset).astype(np.float32)
@@ -399,16 +414,26 @@ class Detector:
         self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],
                          "score": float(scores[0]), "parts": parts[0]}
         events = self.judge.step(t, float(scores[0]), self.rule.contributions(parts[0]),
-                                 drifting)
+                                 drifting, steps)
         for e in events:
             if e["event"] == "alert_opened":
-                e["moved"] = self.judge.alert["moved"] = (
-                    self.judge.held_channel(float(scores[0]))
-                    if self.judge.alert["opened_by"] == BY_HELD
-                    else self.moved(window, recon, float(scores[0])))
+                e["moved"] = self.judge.alert["moved"] = self._moved(
+                    self.judge.alert["opened_by"], window, recon, float(scores[0]), steps)
             if e["event"] in ("alert_opened", "alert_closed"):
                 self.counters["alerts_" + e["event"].split("_")[1]] += 1
         return events + drift_events
+
+    def _moved(self, opened_by: str, window, recon, score: float, steps) -> dict:
+        """The alert's `moved` channel: the held reading's, the step's, or the network's."""
+        if opened_by == BY_HELD:
+            return self.judge.held_channel(score)
+        if opened_by == BY_STEP:
+            c = int(np.argmax(steps))
+            return {"name": self.judge.channels[c], "unit": self.judge.units[c],
+                    "excess": round(float(steps[c]) * MARGIN, 6),
+                    "side": "above" if window_level(window)[c] > self.drift.hi[c] else "below",
+                    "score": finite_or_none(score)}
+        return self.moved(window, recon, score)
 
     def moved(self, window: np.ndarray, recon: np.ndarray, score: float) -> dict:
         """The channel whose newest scored steps, replaced by the network's own reconstruction

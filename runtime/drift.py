@@ -39,6 +39,19 @@ in drift the network sees x_c - sign(m_c) * e_c (the excess removed), so neither
 nor the others score it. The drift ends once the channel has been back inside its envelope for
 one window's worth of hops (an excursion hovering at the edge is one drift, not a flicker of
 many).
+A step is the other side of the same test: a channel outside its envelope for one window's
+worth of hops, not in drift, that got further than the fastest training pace could have taken
+it in the time since it left even with MARGIN taken off its excess (e_c - MARGIN > v_max_c *
+windows outside: beyond the envelope's own sampling error, and faster than normal operation
+moves; without the margin, a channel creeping out a little faster than v_max was a step for a
+window before it became a drift: two false alerts on SKAB's healthy rig). A level the channel
+never held for a whole window in training, reached that fast, is evidence of a fault even when
+the network reconstructs it (a valve closing by one step of a flow meter's resolution: SKAB
+valve1 file 4, where the flow sits one litre a minute low for the whole fault and the score
+does not move). With `alert_steps` in the section, `step` also returns each channel's excess in
+MARGINs where it is a step (0 elsewhere), and the Judge (detector.py) alerts on it like a held
+reading. A step that holds still stops being one once the fastest normal pace could have got
+that far, and becomes a drift as above; in between the channel is left to the score.
 Events: `drift` when a channel enters drift (channel, how far in robust sigmas, since when, which
 side), `drift_ended` when it is over (with the largest excess seen, and the reason: "back"
 inside its envelope, or "faster" than a drift).
@@ -58,6 +71,8 @@ DRIFT_ACTIONS = ("recentre", "report")
 ACTION_TEXT = {"recentre": "re-centred onto the training range while the drift lasts",
                "report": "scored as it is"}
 OPERATOR_ACTION = "collect fresh normal data and retrain"
+STEP_TEXT = ("a channel that steps more than one robust sigma out of its training range for a "
+             "window, faster than training ever moved, alerts")
 
 
 def action_summary(action: Optional[str]) -> str:
@@ -72,11 +87,15 @@ def window_level(window) -> np.ndarray:
     return np.median(np.asarray(window, dtype=np.float64), axis=-2)
 
 
-def drift_section(lo, hi, v_max, action: str) -> dict:
+def drift_section(lo, hi, v_max, action: str, alert_steps: bool = False) -> dict:
     """The manifest's `drift` section. action "recentre" feeds the network the channel
-    re-centred onto its envelope while the drift lasts; "report" only reports it."""
-    return {"lo": [float(v) for v in lo], "hi": [float(v) for v in hi],
-            "v_max": [float(v) for v in v_max], "action": action}
+    re-centred onto its envelope while the drift lasts; "report" only reports it. alert_steps:
+    a step (see above) alerts (bundles without the key: steps are left to the score)."""
+    section = {"lo": [float(v) for v in lo], "hi": [float(v) for v in hi],
+               "v_max": [float(v) for v in v_max], "action": action}
+    if alert_steps:
+        section["alert_steps"] = True
+    return section
 
 
 class DriftMonitor:
@@ -94,6 +113,9 @@ class DriftMonitor:
         if self.action not in DRIFT_ACTIONS:
             raise ValueError(f"drift.action must be one of {', '.join(DRIFT_ACTIONS)}")
         self.recentre = self.action == "recentre"
+        self.alert_steps = section.get("alert_steps", False)
+        if not isinstance(self.alert_steps, bool):
+            raise ValueError("drift.alert_steps must be true or false")
         self.channels = list(channels)
         self.in_drift = np.zeros(n, dtype=bool)
         self.reported = np.zeros(n, dtype=bool)
@@ -111,7 +133,8 @@ class DriftMonitor:
 
     def step(self, time_text: str, levels, blocked) -> tuple:
         """One scored hop, given the window's levels [C]: (offset [C] to subtract from the
-        window, events)."""
+        window, events, steps [C]: each channel's excess in MARGINs where it is a step and
+        alert_steps is on, else 0)."""
         m = np.asarray(levels, dtype=np.float64)
         full = len(self.past) == self.past.maxlen
         speed = np.abs(m - self.past[0]) if full else np.full(len(m), np.inf)
@@ -142,7 +165,16 @@ class DriftMonitor:
                                "side": "above" if m[c] > self.hi[c] else "below",
                                "action": ACTION_TEXT[self.action] + "; " + OPERATOR_ACTION})
         offset = np.where(self.in_drift & self.recentre, np.where(m > self.hi, e, -e), 0.0)
-        return offset, events
+        return offset, events, self._steps(e)
+
+    def _steps(self, e: np.ndarray) -> np.ndarray:
+        """Excess in MARGINs of the channels that are steps this hop (0 elsewhere)."""
+        if not self.alert_steps:
+            return np.zeros(len(e))
+        windows_out = self.outside / self.past.maxlen
+        beyond = e - MARGIN > self.v_max * windows_out
+        step = ~self.in_drift & (windows_out >= 1) & beyond
+        return np.where(step, e / MARGIN, 0.0)
 
     def _end(self, c: int, time_text: str, reason: str) -> list:
         events = []

@@ -470,6 +470,7 @@ class Bundle:
             "alerting": dict(self.alerting),
             "drift": (m["drift"].get("action", "report") if m.get("drift") is not None
                       else None),
+            "alert_steps": bool((m.get("drift") or {}).get("alert_steps", False)),
             "board": m["board"].get("name"),
             "files": len(m["files"]),
         }

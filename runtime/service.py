@@ -509,7 +509,7 @@ def _moved_ok(moved) -> bool:
     return (isinstance(moved, dict) and isinstance(moved.get("name"), str)
             and isinstance(moved.get("unit"), str)
             and all(moved.get(k) is None or isinstance(moved.get(k), (int, float))
-                    for k in ("score_without", "score", "held_readings")))
+                    for k in ("score_without", "score", "held_readings", "excess")))
 
 
 def _clock_bounds(bundle, opts: StreamOptions) -> ClockBounds:

@@ -62,7 +62,15 @@ def drift_bundles(tmp_path_factory):
                                alerting=alerting)
 
     recentre = envelope(fx.scaled(normal), WINDOW, "recentre")
+    # a score that never alerts: only a step can (drift.py), or nothing without alert_steps
+    deaf = {"kind": "static", "level": 1e30}
     return {"with": bundle("with", recentre),
+            "steps": fx.build_bundle(root / "steps", window=WINDOW, hop=HOP, drift=recentre,
+                                     threshold=deaf, alerting=alerting),
+            "no steps": fx.build_bundle(
+                root / "nosteps", window=WINDOW, hop=HOP, threshold=deaf, alerting=alerting,
+                drift=envelope(fx.scaled(normal), WINDOW, "recentre", alert_steps=False)),
+            "envelope": recentre,
             "report": bundle("report", envelope(fx.scaled(normal), WINDOW, "report")),
             "without": bundle("without", None),
             "cusum": bundle("cusum", recentre, {"cusum": cusum})}
@@ -102,6 +110,39 @@ def test_a_cusum_alert_on_the_ramps_first_creep_closes_and_the_drift_is_reported
     assert [d["channel"] for d in of(events, "drift")] == ["flow"]
     in_alert = np.mean([e["alert_open"] for e in of(events, "score")])
     assert in_alert < 0.05
+
+
+def test_a_level_step_out_of_the_training_range_alerts_even_when_the_score_does_not(
+        drift_bundles, tmp_path):
+    """flow steps to 6 robust sigmas beyond its envelope's upper edge and holds for 3
+    windows, then returns: one alert, opened by the step one window after it came (outside
+    for a window), naming flow and how far; it closes once flow is back. The fastest pace of
+    the normal rows (v_max, about 1.4 sigmas a window) would need over 3.5 windows to cover all
+    but the margin of it, so it is a step throughout. Without alert_steps the same rows alert
+    nothing (the score is deaf here)."""
+    from ganlet.runtime.drift import MARGIN
+
+    hi = drift_bundles["envelope"]["hi"][0]
+    values = fx.raw_values(400, seed=8)
+    start, end = 200, 200 + 3 * WINDOW
+    assert 3.5 * drift_bundles["envelope"]["v_max"][0] < 6.0 - MARGIN
+    values[start:end, 0] = fx.CENTER[0] + (hi + 6.0) * fx.SCALE[0]
+    events = stream_events(drift_bundles["steps"], values, tmp_path, "step")
+    opened, closed = of(events, "alert_opened"), of(events, "alert_closed")
+    assert [e["opened_by"] for e in opened] == ["step"] and len(closed) == 1
+    moved = opened[0]["moved"]
+    assert moved["name"] == "flow" and moved["side"] == "above"
+    assert moved["excess"] == pytest.approx(6.0, abs=0.05) and moved["excess"] > MARGIN
+    # the window's median is past the edge from half a window after the step; the step counts
+    # once it has been outside for a whole window (to within a hop either way: hop alignment)
+    opened_at = pd.Timestamp(opened[0]["opened"]).timestamp() - fx.T0
+    due = start + WINDOW // 2 + WINDOW - HOP
+    assert due - HOP <= opened_at <= due + HOP
+    closed_at = pd.Timestamp(closed[0]["closed"]).timestamp() - fx.T0
+    assert end <= closed_at <= end + WINDOW
+    assert of(events, "drift") == []
+    quiet = stream_events(drift_bundles["no steps"], values, tmp_path, "nostep")
+    assert of(quiet, "alert_opened") == []
 
 
 def test_drift_reported_only_names_the_channel_once(drift_bundles, tmp_path):
@@ -266,11 +307,29 @@ def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
     # of 16 hops) an excess of 2.0 takes 4 windows = 64 hops outside
     step = [0.0] * 64 + [3.0] * 200
     assert _drift_entry_hop(step) == 64 + 4 * WINDOW - 1
+    # with alert_steps it is a step from one window outside, its excess in MARGINs, until the
+    # fastest pace could have covered all but the margin of it (2.0 - 1.0 at 0.5 a window: 2
+    # windows outside)
+    steps = _steps_trace(step)
+    assert [k for k, v in enumerate(steps) if v > 0] == list(range(64 + WINDOW - 1,
+                                                                   64 + 2 * WINDOW - 1))
+    assert max(steps) == pytest.approx(2.0)
     # a ramp leaving at 0.25 per window (half the fastest pace) is drift one window after it
     # crossed the edge
     ramp = [min(0.25 * k / WINDOW, 3.0) for k in range(400)]
     crossed = next(k for k, m in enumerate(ramp) if m > 1.0)
     assert _drift_entry_hop(ramp) == crossed + WINDOW - 1
+    assert max(_steps_trace(ramp)) == 0.0  # a drift is never a step
+
+
+def _steps_trace(levels, window=WINDOW, hop=1):
+    """The steps a one-channel DriftMonitor with alert_steps (envelope [-1, 1], v_max 0.5 per
+    window) returns per hop."""
+    from ganlet.runtime.drift import DriftMonitor
+
+    mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre",
+                        "alert_steps": True}, ["flow"], window, hop)
+    return [float(mon.step(f"t{k}", [m], [False])[2][0]) for k, m in enumerate(levels)]
 
 
 def _drift_trace(levels, window=WINDOW, hop=1):
@@ -282,7 +341,7 @@ def _drift_trace(levels, window=WINDOW, hop=1):
                        ["flow"], window, hop)
     state, events, offsets = [], [], []
     for k, m in enumerate(levels):
-        offset, ev = mon.step(f"t{k}", [m], [False])
+        offset, ev, _ = mon.step(f"t{k}", [m], [False])
         state.append(bool(mon.in_drift[0]))
         events += ev
         offsets.append(float(offset[0]))
