@@ -140,19 +140,21 @@ class Judge:
         the score's units (cusum.py; it gathers none while the machine cools down), a held
         reading's run (held.py) or a step's excess (drift.py) in the same units. An open alert
         is judged on what opened it (the score and the CUSUM together, as the CUSUM's evidence
-        includes the score)."""
+        includes the score), and one the score or the CUSUM opened also on the steps."""
         if self.cusum is not None and not self.machine.cooling:
             if drifting:  # the score's small excess is the re-centring's residue
                 self.cusum.clear()
             else:
                 self.cusum.add(score)
         by = None if self.alert is None else self.alert.get("opened_by")
+        step = self._in_score_units(worst_step) if worst_step > 0 else -np.inf
         if by == BY_SCORE:
-            return score  # an alert the score opened closes when the score falls back
+            # closes when the score falls back and no channel is a step: a fault's level can
+            # stay off its training range after the network's error on it has settled
+            return max(score, step)
         held = self._held_judged()
         if by == BY_HELD:
             return held  # closes when the reading moves again
-        step = self._in_score_units(worst_step) if worst_step > 0 else -np.inf
         if by == BY_STEP:
             return step  # closes when the channel is back, or no longer a step (drift.py)
         judged = score if self.cusum is None else self.cusum.judged(score, self.level)

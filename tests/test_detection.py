@@ -145,6 +145,31 @@ def test_a_level_step_out_of_the_training_range_alerts_even_when_the_score_does_
     assert of(quiet, "alert_opened") == []
 
 
+def test_an_alert_the_score_opened_stays_open_while_a_channel_is_a_step():
+    """The score opens an alert, then falls back below the deadband while flow is still a
+    step (its level off its training range, the network's error on it settled): the alert
+    stays open until the step ends; without a step the same scores close it."""
+    from ganlet.runtime.detector import Judge
+
+    alerting = {"warmup_hops": 0, "min_hops": 3, "close_ratio": 0.95, "cooldown_hops": 4}
+    scores = [1.0] * 5 + [20.0] * 5 + [1.0] * 20
+    stepped = [0.0] * 8 + [3.0] * 12 + [0.0] * 10   # flow a step from hop 8 to hop 19
+
+    def closing_hop(steps):
+        judge = Judge("b", ["flow", "pressure"], ["m3/h", "bar"],
+                      {"kind": "static", "level": 10.0}, alerting)
+        hops = {}
+        for k, (score, s) in enumerate(zip(scores, steps)):
+            for e in judge.step(float(k), score, steps=np.array([s, 0.0])):
+                hops[e["event"]] = k
+                if e["event"] == "alert_opened":
+                    assert e["opened_by"] == "score"
+        return hops.get("alert_opened"), hops.get("alert_closed")
+
+    assert closing_hop(stepped) == (7, 20)           # opened on the third hop above, held
+    assert closing_hop([0.0] * len(scores)) == (7, 10)  # the score alone: closed as it fell
+
+
 def test_drift_reported_only_names_the_channel_once(drift_bundles, tmp_path):
     """--drift report: the drift is scored as it is (so it alerts, as a fault of that size
     would) and is reported once as drift, naming the channel."""
