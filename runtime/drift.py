@@ -71,8 +71,8 @@ DRIFT_ACTIONS = ("recentre", "report")
 ACTION_TEXT = {"recentre": "re-centred onto the training range while the drift lasts",
                "report": "scored as it is"}
 OPERATOR_ACTION = "collect fresh normal data and retrain"
-STEP_TEXT = ("a channel that steps more than one robust sigma out of its training range for a "
-             "window, faster than training ever moved, alerts")
+STEP_TEXT = ("a channel that has stepped out of its training range for a window, further than "
+             "the fastest training pace could have taken it plus one robust sigma, alerts")
 
 
 def action_summary(action: Optional[str]) -> str:
