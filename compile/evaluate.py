@@ -274,6 +274,7 @@ SITES = (
     ("dropped", "dropped", "misses: the other points of a detected incident that no alert "
                            "covers (the alert closed, or paused, inside it)"),
 )
+FALSE_ALARM_SITES = tuple(key for key, _, _ in SITES[:3])
 
 
 @dataclass
@@ -304,7 +305,7 @@ class EvalResult:
         rows = []
         for m in self.methods.values():
             k = m.metrics
-            rows.append([m.name] + [k["sites"][key] for key, _, _ in SITES[:3]] + [k["fp"]]
+            rows.append([m.name] + [k["sites"][key] for key in FALSE_ALARM_SITES] + [k["fp"]]
                         + [k["sites"][key] for key, _, _ in SITES[3:]] + [k["fn"]])
         return rows
 

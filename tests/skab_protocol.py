@@ -21,7 +21,6 @@ REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab"
 TRAIN_ROWS = 400
 BUNDLE = "bundle (int8, gateway path)"
-FALSE_ALARM_SITES = ("lead", "tail", "apart")  # evaluate.error_sites; the rest are misses
 
 
 def valve1_files(root: Path = SKAB) -> list:
@@ -103,7 +102,7 @@ def pooled(outs: list) -> dict:
     summed) as shares of the normal and of the labelled rows (they add up to FAR and MAR)."""
     from sklearn.metrics import roc_auc_score
 
-    from ganlet.compile.evaluate import error_sites, point_metrics
+    from ganlet.compile.evaluate import FALSE_ALARM_SITES, error_sites, point_metrics
 
     y = np.concatenate([o["labels"] for o in outs])
     metrics = {}

@@ -312,18 +312,9 @@ def test_calibrated_score_has_one_scale_across_regimes(tmp_path):
     assert uncalibrated > 3.0
 
 
-def _drift_entry_hop(levels, window=WINDOW, hop=1):
-    """The hop at which a one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window)
-    puts the channel in drift, or None."""
-    from ganlet.runtime.drift import DriftMonitor
-
-    mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre"},
-                       ["flow"], window, hop)
-    for k, m in enumerate(levels):
-        mon.step(f"t{k}", [m], [False])
-        if mon.in_drift[0]:
-            return k
-    return None
+def _drift_entry_hop(levels):
+    """The hop at which `_drift_trace` puts the channel in drift, or None."""
+    return next((k for k, d in enumerate(_drift_trace(levels)[0]) if d), None)
 
 
 def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
@@ -335,7 +326,7 @@ def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
     # with alert_steps it is a step from one window outside, its excess in MARGINs, until the
     # fastest pace could have covered all but the margin of it (2.0 - 1.0 at 0.5 a window: 2
     # windows outside)
-    steps = _steps_trace(step)
+    steps = _drift_trace(step)[3]
     assert [k for k, v in enumerate(steps) if v > 0] == list(range(64 + WINDOW - 1,
                                                                    64 + 2 * WINDOW - 1))
     assert max(steps) == pytest.approx(2.0)
@@ -344,33 +335,25 @@ def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
     ramp = [min(0.25 * k / WINDOW, 3.0) for k in range(400)]
     crossed = next(k for k, m in enumerate(ramp) if m > 1.0)
     assert _drift_entry_hop(ramp) == crossed + WINDOW - 1
-    assert max(_steps_trace(ramp)) == 0.0  # a drift is never a step
+    assert max(_drift_trace(ramp)[3]) == 0.0  # a drift is never a step
 
 
-def _steps_trace(levels, window=WINDOW, hop=1):
-    """The steps a one-channel DriftMonitor with alert_steps (envelope [-1, 1], v_max 0.5 per
-    window) returns per hop."""
+def _drift_trace(levels, window=WINDOW, hop=1):
+    """A one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window, alert_steps on: the
+    steps it returns change nothing else) over `levels`: (in_drift per hop, every event, the
+    offset per hop, the step per hop)."""
     from ganlet.runtime.drift import DriftMonitor
 
     mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre",
                         "alert_steps": True}, ["flow"], window, hop)
-    return [float(mon.step(f"t{k}", [m], [False])[2][0]) for k, m in enumerate(levels)]
-
-
-def _drift_trace(levels, window=WINDOW, hop=1):
-    """A one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window) over `levels`:
-    (in_drift per hop, every event, the offset per hop)."""
-    from ganlet.runtime.drift import DriftMonitor
-
-    mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre"},
-                       ["flow"], window, hop)
-    state, events, offsets = [], [], []
+    state, events, offsets, steps = [], [], [], []
     for k, m in enumerate(levels):
-        offset, ev, _ = mon.step(f"t{k}", [m], [False])
+        offset, ev, step = mon.step(f"t{k}", [m], [False])
         state.append(bool(mon.in_drift[0]))
         events += ev
         offsets.append(float(offset[0]))
-    return state, events, offsets
+        steps.append(float(step[0]))
+    return state, events, offsets, steps
 
 
 def test_a_drift_that_runs_away_faster_than_training_moved_is_scored_again():
@@ -379,7 +362,7 @@ def test_a_drift_that_runs_away_faster_than_training_moved_is_scored_again():
     # 5.0 (excess 4.0) in one hop, 8 times what the fastest training pace covers in the window
     # since it left (SKAB valve1 file 7's flow meter, issue 11's notes)
     slip = [0.0] * 64 + [1.02] * 40
-    state, events, offsets = _drift_trace(slip + [5.0] * 200)
+    state, events, offsets, _ = _drift_trace(slip + [5.0] * 200)
     assert state[len(slip) - 1] and offsets[len(slip) - 1] == pytest.approx(0.02)
     # the step ends the drift on the hop it comes: the network sees the step as it is
     assert not state[len(slip)] and offsets[len(slip)] == 0.0
@@ -394,11 +377,11 @@ def test_a_drift_that_runs_away_faster_than_training_moved_is_scored_again():
 
 def test_a_reported_drift_says_why_it_ended():
     ramp = [min(0.02 * k, 3.0) for k in range(200)]  # 0.32 per window: a drift, reported
-    _, events, _ = _drift_trace(ramp + [9.0] * 10)  # then 6 sigmas in one hop
+    _, events, _, _ = _drift_trace(ramp + [9.0] * 10)  # then 6 sigmas in one hop
     assert [(e["event"], e.get("reason")) for e in events] == [("drift", None),
                                                                ("drift_ended", "faster")]
     assert events[1]["peak_excess"] == pytest.approx(8.0)
-    _, events, _ = _drift_trace(ramp + [0.0] * 60)  # back inside for a window
+    _, events, _, _ = _drift_trace(ramp + [0.0] * 60)  # back inside for a window
     assert [(e["event"], e.get("reason")) for e in events] == [("drift", None),
                                                                ("drift_ended", "back")]
     assert events[1]["peak_excess"] == pytest.approx(2.0)
