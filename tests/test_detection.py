@@ -312,6 +312,37 @@ def test_calibrated_score_has_one_scale_across_regimes(tmp_path):
     assert uncalibrated > 3.0
 
 
+def test_a_channel_with_a_heavy_normal_tail_does_not_carry_the_score():
+    """Score scale (compile/calibrate.py, tail_matched_scale): one channel whose normal error is
+    ten times larger on 15 % of the hops (a vibration's resonance pass on every start) next to
+    three steady ones. Read in units of each channel's median error, as before, the bursts set
+    the normal scores' 99th percentile so high that another channel at six times its normal
+    error scores below it; with the heavy channel's top decile matched to the others', the
+    same fault scores above it. The steady channels keep their median (numpy's) as scale, to
+    within the sampling spread of their top deciles."""
+    from ganlet.compile.calibrate import tail_matched_scale
+    from ganlet.runtime.score import combine
+
+    rng = np.random.default_rng(0)
+    n, k = 4000, 8
+    u = np.sqrt((rng.standard_normal((n, 4, k)) ** 2).mean(axis=2))  # RMS of k white steps
+    u[rng.random(n) < 0.15, 0] *= 10.0
+    fault = np.median(u, axis=0) * np.array([1.0, 6.0, 1.0, 1.0])
+
+    def normal_p99_and_fault(scale):
+        normal = combine(u / scale, "rms")
+        return np.percentile(normal, 99), float(combine((fault / scale)[None], "rms")[0])
+
+    median = np.median(u, axis=0)
+    matched = tail_matched_scale(u, np.full(4, 1e-12))
+    np.testing.assert_allclose(matched[1:], median[1:], rtol=0.01)  # sampling: tails alike
+    assert matched[0] > 5 * median[0]
+    p99, score = normal_p99_and_fault(median)
+    assert score < p99, (score, p99)
+    p99, score = normal_p99_and_fault(matched)
+    assert score > p99, (score, p99)
+
+
 def _drift_entry_hop(levels):
     """The hop at which `_drift_trace` puts the channel in drift, or None."""
     return next((k for k, d in enumerate(_drift_trace(levels)[0]) if d), None)
