@@ -154,6 +154,16 @@ def detector_policy(kind: str, pieces: list, risk: float, history: Optional[np.n
     return policy, cusum, held
 
 
+def tails_text(regimes: dict) -> str:
+    """The channels whose score scale a heavy normal tail raised, for the compile report."""
+    raised = sorted(((f, name) for name, f in regimes.get("tail_factor", {}).items()
+                     if round(f, 1) > 1.0), reverse=True)
+    if not raised:
+        return ""
+    return ("; a heavy normal tail reads " + ", ".join(f"{n} at {f:.1f}x" for f, n in raised)
+            + " its median error (tail_matched_scale)")
+
+
 def cusum_line(report: dict) -> str:
     """compile's line on the CUSUM (threshold_policy's report)."""
     if report["section"] is not None:
@@ -354,13 +364,15 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
     if cal.sum() < 2:
         raise ValueError("the calibration span holds fewer than 2 windows; train with a longer "
                          "history or a larger --calibration fraction")
-    score = score_section(centres, regime_scale(res[cal], hop_means[cal], centres), COMBINE,
-                          steps, STATISTIC)
+    scale = regime_scale(res[cal], hop_means[cal], centres)
+    score = score_section(centres, scale, COMBINE, steps, STATISTIC)
     scores = ScoreRule(score).apply(res[cal], hop_means[cal])[0]
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
     pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, steps)
     policy, cusum, held = detector_policy(kind, pieces, risk, model.raw[:cal_end], hop)
     false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
+    tails = scale / regime_scale(res[cal], hop_means[cal], centres, match_tails=False)
+    regimes = {**regimes, "tail_factor": dict(zip(model.channels, tails.max(axis=0).tolist()))}
     report = {"regimes": regimes, "threshold_kind": policy["kind"], "cusum": cusum,
               "held": {**held, "names": list(model.channels)},
               "calibration_scores": int(cal.sum()), "false_alarms": false_alarms}
@@ -395,14 +407,18 @@ def tail_scores(cal_scores: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarr
     return [cal_scores, fit_rule.apply(fit_res, fit_means)[0]]
 
 
-def regime_scale(res: np.ndarray, means: np.ndarray, centres: np.ndarray) -> np.ndarray:
-    """Per regime and channel: the RMS error of its calibration hops that reads as 1 (floored);
-    tail_matched_scale says which."""
+def regime_scale(res: np.ndarray, means: np.ndarray, centres: np.ndarray,
+                 match_tails: bool = True) -> np.ndarray:
+    """Per regime and channel: the RMS error of its calibration hops that reads as 1 (floored):
+    tail_matched_scale's, or with match_tails False the median (what the report compares)."""
     u = np.sqrt(np.maximum(res.astype(np.float64), 0.0))
     label = ScoreRule(score_section(centres, np.ones_like(centres))).regime(means)
     floor = np.maximum(np.median(u, axis=0) * FLOOR_FRACTION, 1e-12)
-    overall = tail_matched_scale(u, floor)
-    return np.array([tail_matched_scale(u[label == g], floor) if (label == g).any() else overall
+
+    def scale(v: np.ndarray) -> np.ndarray:
+        return tail_matched_scale(v, floor) if match_tails else np.maximum(np.median(v, axis=0),
+                                                                          floor)
+    return np.array([scale(u[label == g]) if (label == g).any() else scale(u)
                      for g in range(len(centres))])
 
 

@@ -31,6 +31,7 @@ from ganlet.compile.calibrate import (
     calibrate,
     cusum_line,
     held_line,
+    tails_text,
 )
 from ganlet.compile.data import (
     IntakeError,
@@ -239,7 +240,8 @@ class CompileResult:
                          "student at the fidelity above")
         lines += [
             f"score: {r['regimes']['regimes']} operating regime(s), each channel's normal "
-            f"error from the {r['calibration_scores']} calibration-span windows; threshold: "
+            f"error from the {r['calibration_scores']} calibration-span windows"
+            f"{tails_text(r['regimes'])}; threshold: "
             f"{r['threshold_kind']} for at most {r['false_alarms']['budget_per_week']:g} false "
             "alarm(s) per week on normal data" + extrapolation_note(r["false_alarms"]),
             cusum_line(r["cusum"]),

@@ -215,6 +215,13 @@ def test_manifest_describes_the_detector(teacher, bundle):
     regimes = m["score"]["regimes"]
     assert np.shape(regimes["centres"]) == np.shape(regimes["scale"])
     assert np.shape(regimes["centres"])[1] == 3 and (np.asarray(regimes["scale"]) > 0).all()
+    # the tail match only ever raises a channel's scale above its median error, and the compile
+    # line names the channels it raised (compile/calibrate.py tail_matched_scale)
+    tails = bundle["report"]["regimes"]["tail_factor"]
+    assert sorted(tails) == ["flow", "power", "temp"] and min(tails.values()) >= 1.0
+    for name, factor in tails.items():
+        named = f"{name} at {factor:.1f}x" in bundle["stdout"]
+        assert named == (round(factor, 1) > 1.0), (name, factor, bundle["stdout"])
     # a 300-row calibration span is plenty for the tail fit: no fallback
     assert m["threshold"]["kind"] == "pot"
     # the false-alarm budget the threshold was calibrated to: q = budget x hop period / week
