@@ -394,9 +394,9 @@ def calibrated_bundle(model: TrainedModel, scorer, window: int, hop: int, kind: 
 def tail_scores(cal_scores: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarray,
                 centres: np.ndarray, steps: int) -> list:
     """The scores the threshold's tail is fitted on: the calibration span's, and the fit span's
-    each relative to the fit span's own per-regime scale (regime_scale). The normal level (the score's
-    scale) stays the calibration span's, which the network never trained on; the shape of the
-    tail gets every training window, since a short calibration span alone holds too few,
+    each relative to the fit span's own per-regime scale (regime_scale). The normal level (the
+    score's scale) stays the calibration span's, which the network never trained on; the shape of
+    the tail gets every training window, since a short calibration span alone holds too few,
     strongly correlated scores to show it (issue 11's notes: on 400-row SKAB files the
     calibration span alone put the level barely above the median). Two pieces, each in hop
     order (the CUSUM's excursions are counted within each)."""
