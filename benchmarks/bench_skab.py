@@ -1,6 +1,7 @@
 """Benchmark: SKAB valve1 under the benchmark's protocol, through what ships (printed).
 
     python benchmarks/bench_skab.py [--seeds 0 1 2] [--workers 2] [--distil-epochs 80]
+                                    [--skab DIR] [--group valve1]
 
 Per file the first 400 rows train with `ganlet train`'s defaults, `ganlet compile` packs a bundle
 for the default board, and `ganlet evaluate` runs it through `run.py stream` (its own threshold
@@ -36,11 +37,14 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2])
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--distil-epochs", type=int, default=80)
+    ap.add_argument("--group", default="valve1",
+                    help="the SKAB folder under --skab: valve1 (issue 11's targets) or another "
+                         "(valve2, other), the same protocol on files nobody tuned to")
     a = ap.parse_args()
-    files = skab_protocol.valve1_files(a.skab)
+    files = skab_protocol.skab_files(a.skab, a.group)
     if not files:
-        raise SystemExit(f"no SKAB valve1 files under {a.skab}")
-    print(f"SKAB valve1, {len(files)} files, gateway path, defaults; seeds {a.seeds}")
+        raise SystemExit(f"no SKAB CSV files under {a.skab / a.group}")
+    print(f"SKAB {a.group}, {len(files)} files, gateway path, defaults; seeds {a.seeds}")
     print(f"{'seed':>4}  {'method':28s}  {'F1':>6}  {'FAR':>6}  {'MAR':>6}  {'AUC':>6}")
     table = {}
     with tempfile.TemporaryDirectory(prefix="ganlet-skab-") as tmp:

@@ -23,8 +23,11 @@ TRAIN_ROWS = 400
 BUNDLE = "bundle (int8, gateway path)"
 
 
-def valve1_files(root: Path = SKAB) -> list:
-    return sorted((Path(root) / "valve1").glob("*.csv"), key=lambda p: int(p.stem))
+def skab_files(root: Path = SKAB, group: str = "valve1") -> list:
+    """The CSV files of one SKAB folder (valve1: the targets; valve2 and other: the same
+    protocol on files nobody tuned to), in the order of their numbered names."""
+    return sorted((Path(root) / group).glob("*.csv"),
+                  key=lambda p: (0, int(p.stem), "") if p.stem.isdigit() else (1, 0, p.stem))
 
 
 def incidents_of(path: Path):
@@ -129,7 +132,7 @@ def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
 
     from ganlet.compile.evaluate import BASELINES
 
-    files = files or valve1_files()
+    files = files or skab_files()
     baselines = BASELINES if baselines is None else tuple(baselines)
     jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs, baselines)
             for f in files]

@@ -183,7 +183,7 @@ def test_a_malformed_held_section_is_refused_when_the_bundle_loads(tmp_path, sec
 
 
 def _skab_files():
-    files = skab_protocol.valve1_files()
+    files = skab_protocol.skab_files()
     free = sorted((skab_protocol.SKAB / "anomaly-free").glob("*.csv"))
     if not files or not free:
         pytest.skip(f"SKAB data not found under {skab_protocol.SKAB} (test data beside the "
