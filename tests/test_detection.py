@@ -314,7 +314,7 @@ def test_calibrated_score_has_one_scale_across_regimes(tmp_path):
 
 def test_a_channel_with_a_heavy_normal_tail_does_not_carry_the_score():
     """Score scale (compile/calibrate.py, tail_matched_scale): one channel whose normal error is
-    ten times larger on 15 % of the hops (a vibration's resonance pass on every start) next to
+    ten times larger on 15 % of the hops (as a vibration's on every start-up) next to
     three steady ones. Read in units of each channel's median error, as before, the bursts set
     the normal scores' 99th percentile so high that another channel at six times its normal
     error scores below it; with the heavy channel's top decile matched to the others', the
