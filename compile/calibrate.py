@@ -416,8 +416,10 @@ def regime_scale(res: np.ndarray, means: np.ndarray, centres: np.ndarray,
     floor = np.maximum(np.median(u, axis=0) * FLOOR_FRACTION, 1e-12)
 
     def scale(v: np.ndarray) -> np.ndarray:
-        return tail_matched_scale(v, floor) if match_tails else np.maximum(np.median(v, axis=0),
-                                                                          floor)
+        if match_tails:
+            return tail_matched_scale(v, floor)
+        return np.maximum(np.median(v, axis=0), floor)
+
     return np.array([scale(u[label == g]) if (label == g).any() else scale(u)
                      for g in range(len(centres))])
 

@@ -45,7 +45,7 @@ from .alerts import (
     AlertMachine,
 )
 from .cusum import Cusum
-from .drift import MARGIN, DriftMonitor, window_level
+from .drift import DriftMonitor, window_level
 from .held import HeldReadings
 from .intake import RowError, format_time
 from .ring import Ring
@@ -158,7 +158,7 @@ class Judge:
         if by == BY_STEP:
             return step  # closes when the channel is back, or no longer a step (drift.py)
         judged = score if self.cusum is None else self.cusum.judged(score, self.level)
-        judged = max(judged, step) if step > self.level else judged
+        judged = max(judged, step)  # a step is above the level, or -inf
         return max(judged, held) if held > self.level else judged
 
     def _held_judged(self) -> float:
@@ -401,9 +401,10 @@ class Detector:
     def _hop(self, t: float, window: np.ndarray) -> List[dict]:
         """Score one window: drift re-centring, network, score rule, then the Judge."""
         means = window.mean(axis=0, dtype=np.float64)
-        drift_events, drifting, steps = [], False, None
+        drift_events, drifting, steps, levels = [], False, None, None
         if self.drift is not None:
-            offset, drift_events, steps = self.drift.step(format_time(t), window_level(window),
+            levels = window_level(window)
+            offset, drift_events, steps = self.drift.step(format_time(t), levels,
                                                           self.judge.alert_channels())
             drifting = bool(offset.any())
             if drifting:
@@ -420,21 +421,21 @@ class Detector:
         for e in events:
             if e["event"] == "alert_opened":
                 e["moved"] = self.judge.alert["moved"] = self._moved(
-                    self.judge.alert["opened_by"], window, recon, float(scores[0]), steps)
+                    self.judge.alert["opened_by"], window, recon, float(scores[0]), steps,
+                    levels)
             if e["event"] in ("alert_opened", "alert_closed"):
                 self.counters["alerts_" + e["event"].split("_")[1]] += 1
         return events + drift_events
 
-    def _moved(self, opened_by: str, window, recon, score: float, steps) -> dict:
-        """The alert's `moved` channel: the held reading's, the step's, or the network's."""
+    def _moved(self, opened_by: str, window, recon, score: float, steps, levels) -> dict:
+        """The alert's `moved` channel: the held reading's, the step's (its window level as the
+        drift monitor saw it, before any re-centring), or the network's."""
         if opened_by == BY_HELD:
             return self.judge.held_channel(score)
         if opened_by == BY_STEP:
             c = int(np.argmax(steps))
             return {"name": self.judge.channels[c], "unit": self.judge.units[c],
-                    "excess": round(float(steps[c]) * MARGIN, 6),
-                    "side": "above" if window_level(window)[c] > self.drift.hi[c] else "below",
-                    "score": finite_or_none(score)}
+                    **self.drift.departure(levels, c), "score": finite_or_none(score)}
         return self.moved(window, recon, score)
 
     def moved(self, window: np.ndarray, recon: np.ndarray, score: float) -> dict:

@@ -131,6 +131,12 @@ class DriftMonitor:
     def excess(self, levels: np.ndarray) -> np.ndarray:
         return np.maximum(np.maximum(levels - self.hi, self.lo - levels), 0.0)
 
+    def departure(self, levels: np.ndarray, c: int) -> dict:
+        """How far channel c's level is outside its envelope, and on which side: the words of
+        a drift event and of a step alert's `moved`."""
+        return {"excess": round(float(self.excess(levels)[c]), 6),
+                "side": "above" if levels[c] > self.hi[c] else "below"}
+
     def step(self, time_text: str, levels, blocked) -> tuple:
         """One scored hop, given the window's levels [C]: (offset [C] to subtract from the
         window, events, steps [C]: each channel's excess in MARGINs where it is a step and
@@ -161,8 +167,7 @@ class DriftMonitor:
                 self.reported[c] = True
                 events.append({"event": "drift", "channel": self.channels[c],
                                "time": time_text, "since": self.since[c],
-                               "excess": round(float(e[c]), 6),
-                               "side": "above" if m[c] > self.hi[c] else "below",
+                               **self.departure(m, c),
                                "action": ACTION_TEXT[self.action] + "; " + OPERATOR_ACTION})
         offset = np.where(self.in_drift & self.recentre, np.where(m > self.hi, e, -e), 0.0)
         return offset, events, self._steps(e)
