@@ -64,8 +64,10 @@ def train_and_compile(path: Path, train_rows: int, seed: int, out: Path, options
 
 def run_file(args) -> dict:
     """Train, compile and evaluate one file (in whichever process calls it): the test rows'
-    labels and, per method, alerts and scores on them."""
-    path, out, seed, distil_epochs, baselines = args
+    labels and, per method, alerts and scores on them. With train_rows below TRAIN_ROWS the
+    model trains on fewer rows and the rows in between are scored but not counted, so the
+    counted rows stay the protocol's."""
+    path, out, seed, distil_epochs, baselines, train_rows = args
     from ganlet.compile.data import grid_index
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.evaluate import evaluate
@@ -74,11 +76,11 @@ def run_file(args) -> dict:
     warnings.simplefilter("ignore")
     path, out = Path(path), Path(out)
     frame, model_dir = train_and_compile(
-        path, TRAIN_ROWS, seed, out,
+        path, train_rows, seed, out,
         CompileOptions(distil=DistilConfig(epochs=distil_epochs, seed=seed)))
     incidents, labels, times = incidents_of(path)
     rows = grid_index(frame, times[TRAIN_ROWS:])      # protocol: score the rows after 400
-    train_rows = grid_index(frame, times[:TRAIN_ROWS])
+    trained = grid_index(frame, times[:train_rows])
     mask = np.zeros(len(frame.times), bool)
     mask[rows] = True
     r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir,
@@ -86,7 +88,7 @@ def run_file(args) -> dict:
     return {"labels": labels[TRAIN_ROWS:],
             "alert": {m.name: m.alert[rows] for m in r.methods.values()},
             "score": {m.name: m.scores[rows] for m in r.methods.values()},
-            "train_score": {m.name: m.scores[train_rows] for m in r.methods.values()}}
+            "train_score": {m.name: m.scores[trained] for m in r.methods.values()}}
 
 
 def p99_alerts(out: dict, name: str) -> np.ndarray:
@@ -124,9 +126,12 @@ def pooled(outs: list) -> dict:
 
 
 def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
-        files=None, baselines=None) -> dict:
+        files=None, baselines=None, train_rows: int = TRAIN_ROWS) -> dict:
     """Every valve1 file at one seed, `workers` processes; pooled metrics per method (the
-    baselines named, all of evaluate.BASELINES by default)."""
+    baselines named, all of evaluate.BASELINES by default). train_rows: see run_file."""
+    if not 0 < train_rows <= TRAIN_ROWS:
+        raise ValueError(f"train_rows must be 1..{TRAIN_ROWS}: the rows after {TRAIN_ROWS} "
+                         "are the protocol's test rows")
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
@@ -134,8 +139,8 @@ def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
 
     files = files or skab_files()
     baselines = BASELINES if baselines is None else tuple(baselines)
-    jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs, baselines)
-            for f in files]
+    jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs, baselines,
+             train_rows) for f in files]
     ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
         outs = list(pool.map(run_file, jobs))
