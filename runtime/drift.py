@@ -22,10 +22,15 @@ it is leaving no faster than training ever moved: its average pace since it left
 windows spent outside, e_c / (hops outside / hops per window), is at most v_max_c (so a step that
 then holds still is left to the score and the alert machine until as long has passed as the
 fastest normal movement would have needed to get that far; without it any held step passed as
-drift as soon as its window had gone by), its speed is at most v_max_c, and it is not among the
-channels of an open or pending alert the score or a held reading raised (an alert the CUSUM
-opened keeps no channel out: it says the score crept up, which a drift also does, and the pace
-test above is what tells the two apart; kept out, a warming channel was never re-centred and
+drift as soon as its window had gone by), its speed is at most v_max_c, and, if its pace has
+been above v_max_c at any hop since it left (it outran training), it is not among the channels
+of an open or pending alert the score or a held reading raised. That block keeps a fault's own
+step (a valve closing) from being re-centred away while its alert holds; a channel that crept
+out no faster than training ever moved is a drift whatever is open (blocked too, a slow channel
+that left a short training span raised a score alert, the alert kept it out of drift, and the
+two held each other open: SKAB valve1 trained on 200 rows, issue 11's notes). An alert the
+CUSUM opened keeps no channel out: it says the score crept up, which a drift also does, and the
+pace test is what tells the two apart (kept out, a warming channel was never re-centred and
 held the CUSUM's alert open for good). The pace is checked again on every hop of the drift,
 over all the hops since the channel left: a channel in drift that then runs away faster than
 training ever moved is no longer drifting, its drift ends (`drift_ended`, reason "faster") and
@@ -125,6 +130,8 @@ class DriftMonitor:
         # hops since the channel left its envelope: outside in a row before a drift, every hop
         # (inside or out) during one, so the pace is always measured over the whole departure
         self.outside = np.zeros(n, dtype=np.int64)
+        # since it left, the channel was once further out than the fastest training pace allows
+        self.outran = np.zeros(n, dtype=bool)
         # window levels one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -160,8 +167,11 @@ class DriftMonitor:
             else:
                 self.outside[c] = self.outside[c] + 1 if e[c] > 0 else 0
                 windows_out = self.outside[c] / self.past.maxlen
-                if (windows_out >= 1 and e[c] <= self.v_max[c] * windows_out
-                        and not blocked[c] and speed[c] <= self.v_max[c]):
+                paced = e[c] <= self.v_max[c] * windows_out
+                self.outran[c] = self.outside[c] > 0 and (self.outran[c] or (
+                    windows_out >= 1 and not paced))
+                if (windows_out >= 1 and paced and speed[c] <= self.v_max[c]
+                        and not (blocked[c] and self.outran[c])):
                     self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
             if self.in_drift[c] and not self.reported[c] and e[c] > MARGIN:
                 self.reported[c] = True
@@ -200,6 +210,7 @@ class DriftMonitor:
                 "reported": [bool(v) for v in self.reported], "since": list(self.since),
                 "peak": [float(v) for v in self.peak], "inside": [int(v) for v in self.inside],
                 "outside": [int(v) for v in self.outside],
+                "outran": [bool(v) for v in self.outran],
                 "past": [[float(v) for v in m] for m in self.past]}
 
     def restore(self, d: dict) -> None:
@@ -209,5 +220,8 @@ class DriftMonitor:
         self.peak = np.asarray(d["peak"], dtype=np.float64)
         self.inside = np.asarray(d["inside"], dtype=np.int64)
         self.outside = np.asarray(d["outside"], dtype=np.int64)
+        # a state from before `outran` existed: every channel outside counts as having outrun
+        # (the block as it was then)
+        self.outran = np.asarray(d.get("outran", self.outside > 0), dtype=bool)
         self.past.clear()
         self.past.extend(np.asarray(m, dtype=np.float64) for m in d["past"])

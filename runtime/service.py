@@ -471,7 +471,8 @@ def _check_restored(det: Detector, bundle) -> None:
 
 
 def _check_drift(drift, n: int) -> None:
-    arrays = (drift.in_drift, drift.reported, drift.peak, drift.inside, drift.outside)
+    arrays = (drift.in_drift, drift.reported, drift.peak, drift.inside, drift.outside,
+              drift.outran)
     if any(a.shape != (n,) for a in arrays) or len(drift.since) != n:
         raise ValueError("drift state does not fit this bundle")
     if not (np.isfinite(drift.peak).all() and (drift.peak >= 0).all()

@@ -99,14 +99,15 @@ def test_slow_ramp_is_one_drift_event_and_no_alert(drift_bundles, tmp_path):
     assert of(plain, "drift") == []
 
 
-def test_a_cusum_alert_on_the_ramps_first_creep_closes_and_the_drift_is_reported(
-        drift_bundles, tmp_path):
-    """The CUSUM opens on the slow ramp before it is a drift; the alert must not keep the
-    ramping channel out of drift (before, it did: one alert held open for two thirds of the
-    stream and no drift event, as on SKAB's anomaly-free rig trained on 2,000 rows)."""
+def test_the_slow_ramp_under_the_cusum_is_a_drift_and_holds_no_alert(drift_bundles, tmp_path):
+    """With the CUSUM armed, the slow ramp is reported as a drift and holds no alert open.
+    Once, the CUSUM's alert kept the ramping channel out of drift (one alert held open for two
+    thirds of the stream and no drift event, as on SKAB's anomaly-free rig trained on 2,000
+    rows); then it opened a one-hop alert on the ramp's first creep, while a pending score run
+    kept the channel out; now a channel that creeps out no faster than training moved is a
+    drift whatever is pending, from its first window outside."""
     events = stream_events(drift_bundles["cusum"], ramp_with_spike(), tmp_path, "cusum")
-    opened, closed = of(events, "alert_opened"), of(events, "alert_closed")
-    assert [e["opened_by"] for e in opened] == ["cusum"] and len(closed) == 1
+    assert of(events, "alert_opened") == []
     assert [d["channel"] for d in of(events, "drift")] == ["flow"]
     in_alert = np.mean([e["alert_open"] for e in of(events, "score")])
     assert in_alert < 0.05
@@ -369,22 +370,61 @@ def test_a_held_step_is_not_drift_until_a_slow_pace_could_have_got_there():
     assert max(_drift_trace(ramp)[3]) == 0.0  # a drift is never a step
 
 
-def _drift_trace(levels, window=WINDOW, hop=1):
-    """A one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window, alert_steps on: the
-    steps it returns change nothing else) over `levels`: (in_drift per hop, every event, the
-    offset per hop, the step per hop)."""
+def _drift_monitor(window=WINDOW, hop=1):
     from ganlet.runtime.drift import DriftMonitor
 
-    mon = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre",
-                        "alert_steps": True}, ["flow"], window, hop)
+    return DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.5], "action": "recentre",
+                         "alert_steps": True}, ["flow"], window, hop)
+
+
+def _drift_trace(levels, window=WINDOW, hop=1, blocked=False, mon=None):
+    """A one-channel DriftMonitor (envelope [-1, 1], v_max 0.5 per window, alert_steps on: the
+    steps it returns change nothing else) over `levels`, the channel among an open alert's when
+    `blocked`: (in_drift per hop, every event, the offset per hop, the step per hop)."""
+    mon = mon or _drift_monitor(window, hop)
     state, events, offsets, steps = [], [], [], []
     for k, m in enumerate(levels):
-        offset, ev, step = mon.step(f"t{k}", [m], [False])
+        offset, ev, step = mon.step(f"t{k}", [m], [blocked])
         state.append(bool(mon.in_drift[0]))
         events += ev
         offsets.append(float(offset[0]))
         steps.append(float(step[0]))
     return state, events, offsets, steps
+
+
+def test_an_open_alert_keeps_a_step_out_of_drift_but_not_a_creep():
+    # a channel among an open score alert's: the held step of the test above (faster than
+    # the fastest training pace when it left) stays out of drift, so the fault it may be is
+    # not re-centred away while its alert holds
+    step = [0.0] * 64 + [3.0] * 200
+    assert not any(_drift_trace(step, blocked=True)[0])
+    # a ramp leaving at half the fastest pace is a drift one window after it crossed the edge,
+    # alert or not (kept out, a creeping channel and the alert it raised held each other open)
+    ramp = [min(0.25 * k / WINDOW, 3.0) for k in range(400)]
+    crossed = next(k for k, m in enumerate(ramp) if m > 1.0)
+    assert _drift_entry_hop(ramp) == crossed + WINDOW - 1
+    assert _drift_trace(ramp, blocked=True)[0].index(True) == crossed + WINDOW - 1
+    # once back inside, a channel that outran training is judged afresh on its next departure
+    mon = _drift_monitor()
+    _drift_trace(step[:100] + [0.0] * 40, blocked=True, mon=mon)
+    assert not mon.in_drift[0] and not mon.outran[0]
+    assert _drift_trace(ramp, blocked=True, mon=mon)[0].index(True) == crossed + WINDOW - 1
+
+
+def test_outran_survives_a_restart_and_old_states_keep_the_old_block():
+    mon = _drift_monitor()
+    _drift_trace([0.0] * 64 + [3.0] * 40, blocked=True, mon=mon)
+    assert mon.outran[0]
+    state = mon.state()
+    again = _drift_monitor()
+    again.restore(json.loads(json.dumps(state)))
+    assert again.outran[0]
+    # a state written before `outran` existed: a channel outside counts as having outrun it
+    del state["outran"]
+    old = _drift_monitor()
+    old.restore(state)
+    assert old.outran[0]
+    assert not any(_drift_trace([3.0] * 200, blocked=True, mon=old)[0])
 
 
 def test_a_drift_that_runs_away_faster_than_training_moved_is_scored_again():
