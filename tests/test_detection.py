@@ -103,7 +103,7 @@ def test_the_slow_ramp_under_the_cusum_is_a_drift_and_holds_no_alert(drift_bundl
     """With the CUSUM armed, the slow ramp is reported as a drift and holds no alert open.
     Once, the CUSUM's alert kept the ramping channel out of drift (one alert held open for two
     thirds of the stream and no drift event, as on SKAB's anomaly-free rig trained on 2,000
-    rows); then it opened a one-hop alert on the ramp's first creep, while a pending score run
+    rows); then it opened a short alert on the ramp's first creep, while a pending score run
     kept the channel out; now a channel that creeps out no faster than training moved is a
     drift whatever is pending, from its first window outside."""
     events = stream_events(drift_bundles["cusum"], ramp_with_spike(), tmp_path, "cusum")
