@@ -32,13 +32,13 @@ from scipy.stats import spearmanr
 
 from ganlet.compile.train import TrainedModel
 from ganlet.runtime.alerts import default_alerting
-from ganlet.runtime.cusum import calibrate_cusum, cusum_off
+from ganlet.runtime.cusum import HOLD_KEY, calibrate_cusum, cusum_off
 from ganlet.runtime.detector import Detector
 from ganlet.runtime.drift import drift_section, window_level
 from ganlet.runtime.held import RISK_SHARE, calibrate_held
 from ganlet.runtime.lstm import Network
 from ganlet.runtime.manifest import Bundle, build_manifest
-from ganlet.runtime.score import ScoreRule, score_section
+from ganlet.runtime.score import ScoreRule, piece_means, score_section
 from ganlet.runtime.thresholds import CUSUM_KEY, HELD_KEY, KINDS, calibrate_policy
 
 SECONDS_PER_WEEK = 7 * 86400.0
@@ -121,7 +121,8 @@ def budget_record(alarms_per_week: float, risk: float, policy: dict, hop_s: floa
 NEEDS_POT = "it needs the pot threshold"
 
 
-def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
+def threshold_policy(kind: str, pieces: list, risk: Optional[float],
+                     state_changes: Optional[list] = None) -> tuple:
     """(the threshold section, its CUSUM report): `policy_for` on all the scores of `pieces`
     (normal scores, each piece in hop order), and for `pot` the CUSUM beside it
     (runtime/cusum.py) when the pieces show enough excursions to fit its limit. The two then
@@ -130,7 +131,7 @@ def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
     scores = np.concatenate([np.asarray(p, np.float64) for p in pieces])
     if kind != "pot" or risk is None:
         return policy_for(kind, scores, risk), cusum_off(NEEDS_POT)
-    cusum = calibrate_cusum(pieces, risk / 2)
+    cusum = calibrate_cusum(pieces, risk / 2, state_changes)
     if cusum["section"] is None:
         return policy_for(kind, scores, risk), cusum
     policy = policy_for(kind, scores, risk / 2)
@@ -140,15 +141,17 @@ def threshold_policy(kind: str, pieces: list, risk: Optional[float]) -> tuple:
 
 
 def detector_policy(kind: str, pieces: list, risk: float, history: Optional[np.ndarray],
-                    hop: int):
+                    hop: int, state_changes: Optional[list] = None):
     """(the threshold section, its CUSUM report, the held-reading report): the held-reading
     limits from the raw normal history [rows, channels] (runtime/held.py), whose share comes out
     of the budget, and `threshold_policy` on the scores for the rest. `ganlet evaluate` gives
-    every method this rule."""
+    every method this rule. `state_changes`: per piece, the hops whose windows hold a change of
+    operating state (runtime/score.py), on which the CUSUM holds its evidence."""
     held = (calibrate_held(history, risk / hop) if history is not None
             else {"section": None, "channels": []})  # a model directory without raw rows
     score_risk = risk * (1 - RISK_SHARE) if held["section"] is not None else risk
-    policy, cusum = threshold_policy(kind, pieces, score_risk if kind == "pot" else None)
+    policy, cusum = threshold_policy(kind, pieces, score_risk if kind == "pot" else None,
+                                     state_changes)
     if held["section"] is not None:
         policy = {**policy, HELD_KEY: held["section"]}
     return policy, cusum, held
@@ -167,9 +170,11 @@ def tails_text(regimes: dict) -> str:
 def cusum_line(report: dict) -> str:
     """compile's line on the CUSUM (threshold_policy's report)."""
     if report["section"] is not None:
+        held = (" of steady running (held still where a window holds a change of operating "
+                "state)" if report["section"].get(HOLD_KEY) else "")
         return (f"cusum: a rise held over many hops also alerts (evidence limit "
                 f"{report['section']['limit']:.3g}, fitted on {report['excursions']} "
-                "excursions of the normal history); it shares the budget")
+                f"excursions of the normal history{held}); it shares the budget")
     return f"cusum: off; {report['why_off']}"
 
 
@@ -311,11 +316,12 @@ def detector_bundle(model: TrainedModel, window: int, hop: int, score: dict, thr
 def replay_training(model: TrainedModel, scorer, window: int, hop: int,
                     drift: Optional[dict], score: dict):
     """Every hop of the training rows through the gateway's Detector: (rows [H], residuals
-    [H, C], window means [H, C] as the network saw them, scores [H])."""
+    [H, C], window means [H, C] as the network saw them, scores [H], the means of the window's
+    pieces [H, P, C] (score.piece_means))."""
     bundle = detector_bundle(model, window, hop, score, {"kind": "static", "level": 1e300},
                              default_alerting(window, hop), drift)
     det = Detector(bundle, scorer)
-    rows, res, means, scores = [], [], [], []
+    rows, res, means, scores, pieces = [], [], [], [], []
     raw = model.raw[:model.spans.calibration[1]]
     for k in np.flatnonzero(np.isfinite(raw).all(axis=1)):
         hops = det.counters["hops"]
@@ -326,7 +332,9 @@ def replay_training(model: TrainedModel, scorer, window: int, hop: int,
             res.append(h["residuals"])
             means.append(h["means"])
             scores.append(h["score"])
-    return np.asarray(rows), np.asarray(res), np.asarray(means), np.asarray(scores)
+            pieces.append(piece_means(h["window"][None], det.rule.steps)[0])
+    return (np.asarray(rows), np.asarray(res), np.asarray(means), np.asarray(scores),
+            np.asarray(pieces))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -357,7 +365,7 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
                                       means[cal_start:cal_end][np.isfinite(
                                           means[cal_start:cal_end]).all(axis=1)], seed)
     steps = max(1, window // SCORED_FRACTION)
-    rows, res, hop_means, _ = replay_training(model, scorer, window, hop, drift,
+    rows, res, hop_means, _, hop_pieces = replay_training(model, scorer, window, hop, drift,
                                               score_section(combine=COMBINE, steps=steps,
                                                             statistic=STATISTIC))
     cal = rows >= cal_start
@@ -366,10 +374,13 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
                          "history or a larger --calibration fraction")
     scale = regime_scale(res[cal], hop_means[cal], centres)
     score = score_section(centres, scale, COMBINE, steps, STATISTIC)
-    scores = ScoreRule(score).apply(res[cal], hop_means[cal])[0]
+    rule = ScoreRule(score)
+    scores = rule.apply(res[cal], hop_means[cal])[0]
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
     pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, steps)
-    policy, cusum, held = detector_policy(kind, pieces, risk, model.raw[:cal_end], hop)
+    changes = rule.state_changes(hop_means, hop_pieces)
+    policy, cusum, held = detector_policy(kind, pieces, risk, model.raw[:cal_end], hop,
+                                          [changes[cal], changes[~cal]][:len(pieces)])
     false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
     tails = scale / regime_scale(res[cal], hop_means[cal], centres, match_tails=False)
     regimes = {**regimes, "tail_factor": dict(zip(model.channels, tails.max(axis=0).tolist()))}

@@ -49,7 +49,7 @@ from .drift import DriftMonitor, window_level
 from .held import HeldReadings
 from .intake import RowError, format_time
 from .ring import Ring
-from .score import ScoreRule, shares
+from .score import ScoreRule, piece_means, shares
 from .thresholds import make_threshold, threshold_from_state
 
 # A scaled value this far out is a broken sensor or a unit error, not a measurement; the
@@ -101,15 +101,17 @@ class Judge:
         return self.machine.is_open
 
     def step(self, t: float, score: float, parts: Optional[np.ndarray] = None,
-             drifting: bool = False, steps: Optional[np.ndarray] = None) -> List[dict]:
+             drifting: bool = False, steps: Optional[np.ndarray] = None,
+             state_change: bool = False) -> List[dict]:
         """One scored hop; `drifting`: a channel of it was re-centred as drift; `steps`: each
-        channel's excess in MARGINs where it is a step, else 0 (drift.py)."""
+        channel's excess in MARGINs where it is a step, else 0 (drift.py); `state_change`: its
+        window holds a change of operating state (score.py), on which the CUSUM holds."""
         parts = np.zeros(len(self.channels)) if parts is None else np.asarray(parts, np.float64)
         self.level = float(self.threshold.level)
         hop = self.machine.hop
         was_open = self.machine.is_open
         worst_step = float(np.max(steps)) if steps is not None and len(steps) else 0.0
-        judged = self._judged(score, drifting, worst_step)
+        judged = self._judged(score, drifting, worst_step, state_change)
         transition = self.machine.step(judged, self.level)
         if not was_open and not self.machine.is_open and judged <= self.level:
             self.threshold.absorb(score)  # only what it judged normal, never inside an alert
@@ -135,7 +137,8 @@ class Judge:
         if self.held is not None:
             self.held.add(raw)
 
-    def _judged(self, score: float, drifting: bool, worst_step: float) -> float:
+    def _judged(self, score: float, drifting: bool, worst_step: float,
+                state_change: bool = False) -> float:
         """What the alert machine compares with the level: the score, the CUSUM's evidence in
         the score's units (cusum.py; it gathers none while the machine cools down), a held
         reading's run (held.py) or a step's excess (drift.py) in the same units. An open alert
@@ -145,7 +148,7 @@ class Judge:
             if drifting:  # the score's small excess is the re-centring's residue
                 self.cusum.clear()
             else:
-                self.cusum.add(score)
+                self.cusum.add(score, state_change)
         by = None if self.alert is None else self.alert.get("opened_by")
         step = self._in_score_units(worst_step) if worst_step > 0 else -np.inf
         if by == BY_SCORE:
@@ -413,11 +416,13 @@ class Detector:
         recon = self.scorer.reconstruct(window[None])
         residuals = self.rule.residuals(window[None], recon)
         scores, parts = self.rule.apply(residuals, means[None])
+        change = bool(self.rule.state_changes(means[None],
+                                              piece_means(window[None], self.rule.steps))[0])
         self.counters["hops"] += 1
         self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],
-                         "score": float(scores[0]), "parts": parts[0]}
+                         "score": float(scores[0]), "parts": parts[0], "state_change": change}
         events = self.judge.step(t, float(scores[0]), self.rule.contributions(parts[0]),
-                                 drifting, steps)
+                                 drifting, steps, change)
         for e in events:
             if e["event"] == "alert_opened":
                 e["moved"] = self.judge.alert["moved"] = self._moved(

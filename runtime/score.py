@@ -28,6 +28,11 @@ counts as much as a noisy one's and the score has one scale in every regime:
     score  = combine(parts): rms (default), mean or max over channels
 A channel's share in an alert is its share of the summed contributions over the alert's hops:
 the squared parts for rms (they add up to the squared score), the parts otherwise.
+
+A window holds a change of operating state when one of its pieces of k steps (counted back from
+the newest) sits nearest another regime than the whole window (`state_changes`): a start, a
+stop, a duty change inside the window. The score is the same on such windows; only the CUSUM
+treats them apart (cusum.py).
 """
 
 from typing import Optional, Tuple
@@ -119,6 +124,18 @@ class ScoreRule:
         d = ((m[:, None, :] - self.centres[None, :, :]) ** 2).sum(axis=2)
         return np.argmin(d, axis=1)
 
+    def state_changes(self, means, pieces) -> np.ndarray:
+        """Whether each window holds a change of operating state: one of its pieces (piece_means)
+        sits nearest another regime than the whole window's per-channel means [N, C] -> [N].
+        Never without regimes. The CUSUM (cusum.py) holds its evidence on such windows."""
+        p = np.asarray(pieces, dtype=np.float64)
+        whole = self.regime(means)
+        if self.centres is None or len(self.centres) == 1 or p.shape[1] == 0:
+            return np.zeros(len(whole), dtype=bool)
+        n, count, channels = p.shape
+        each = self.regime(p.reshape(n * count, channels)).reshape(n, count)
+        return (each != whole[:, None]).any(axis=1)
+
     def apply(self, residuals, means=None) -> Tuple[np.ndarray, np.ndarray]:
         res = np.asarray(residuals, dtype=np.float32)
         if res.ndim != 2:
@@ -136,6 +153,17 @@ class ScoreRule:
         """What each channel adds to the score, additively: parts^2 for rms, else parts."""
         p = np.asarray(parts, dtype=np.float64)
         return p * p if self.combine == "rms" else p
+
+
+def piece_means(windows, steps: Optional[int]) -> np.ndarray:
+    """[N, L, C] windows -> [N, P, C]: the per-channel means of each run of `steps` steps,
+    counted back from the newest step (P = L // steps; the scored steps are the newest piece).
+    None (all steps scored): one piece, the whole window."""
+    w = np.asarray(windows, dtype=np.float64)
+    n, length, channels = w.shape
+    size = length if steps is None else min(int(steps), length)
+    count = length // size
+    return w[:, length - count * size:].reshape(n, count, size, channels).mean(axis=2)
 
 
 def combine(parts: np.ndarray, how: str) -> np.ndarray:

@@ -1,8 +1,9 @@
 """The CUSUM of the log score beside the threshold (runtime/cusum.py): its recursion against the
 closed form of Page's CUSUM, what it adds (a small held rise alerts; no single hop's level sees
 it), the false-alarm budget it shares with the pot threshold on scores of a known distribution,
-when compile arms it, its cooldown and reset rules, and that a detector holding it resumes
-exactly and refuses a tampered state or section."""
+when compile arms it, its cooldown and reset rules, that it holds still on windows holding a
+change of operating state (and is fitted so), and that a detector holding it resumes exactly and
+refuses a tampered state or section."""
 
 import json
 
@@ -11,9 +12,17 @@ import pytest
 import runtime_fixtures as fx
 
 from ganlet.compile.calibrate import threshold_policy
-from ganlet.runtime.cusum import CAP, MIN_EXCURSIONS, Cusum, calibrate_cusum, excursion_peaks
+from ganlet.runtime.cusum import (
+    CAP,
+    HOLD_KEY,
+    MIN_EXCURSIONS,
+    Cusum,
+    calibrate_cusum,
+    excursion_peaks,
+)
 from ganlet.runtime.detector import Detector, Judge
 from ganlet.runtime.manifest import BundleError, load_bundle
+from ganlet.runtime.score import ScoreRule, piece_means, score_section
 from ganlet.runtime.scorer import make_scorer
 from ganlet.runtime.thresholds import make_threshold
 
@@ -130,35 +139,134 @@ def test_a_drift_pauses_the_cusum_and_a_crept_alert_keeps_no_channel_out_of_drif
     assert judge.alert_channels().tolist() == [True, False]
 
 
+def _known_scores(rng, n):
+    """gamma(2) scores (a chi-square-like score), AR(1) in the log as a window's correlated
+    scores are."""
+    z = np.zeros(n)
+    e = rng.standard_normal(n)
+    for i in range(1, n):
+        z[i] = 0.5 * z[i - 1] + e[i] * np.sqrt(1 - 0.25)
+    return np.exp(0.5 * z) * rng.gamma(2.0, 1.0, size=n)
+
+
+def _passage_rate(policy, scores, changes=None) -> float:
+    """The share of hops on which a passage of the threshold or the CUSUM starts."""
+    level = make_threshold(policy).level
+    cusum = Cusum.from_policy(policy)
+    changes = np.zeros(len(scores), bool) if changes is None else changes
+    above = []
+    for s, change in zip(scores, changes):
+        cusum.add(float(s), bool(change))
+        above.append(cusum.judged(float(s), level) > level)
+    above = np.asarray(above)
+    return (int(above[0]) + int((above[1:] & ~above[:-1]).sum())) / len(above)
+
+
 @pytest.mark.parametrize("seed", [0, 1])
 def test_the_threshold_and_the_cusum_together_keep_the_budget(seed):
-    """Calibrated on 40,000 scores of a known distribution (gamma(2), a chi-square-like score;
-    AR(1) in the log, as a window's correlated scores are) for a risk of 1e-3 a hop, 200,000
+    """Calibrated on 40,000 scores of a known distribution for a risk of 1e-3 a hop, 200,000
     fresh scores from the same process start a passage of either level on about 1e-3 of the
     hops, not twice that: the two share the budget, half each."""
     rng = np.random.default_rng(seed)
-
-    def scores(n):
-        z = np.zeros(n)
-        e = rng.standard_normal(n)
-        for i in range(1, n):
-            z[i] = 0.5 * z[i - 1] + e[i] * np.sqrt(1 - 0.25)
-        return np.exp(0.5 * z) * rng.gamma(2.0, 1.0, size=n)
-
     risk = 1e-3
-    policy, report = threshold_policy("pot", [scores(20_000), scores(20_000)], risk)
+    policy, report = threshold_policy("pot", [_known_scores(rng, 20_000),
+                                              _known_scores(rng, 20_000)], risk)
     assert report["section"] is not None and policy["cusum"] == report["section"]
-    level = make_threshold(policy).level
-    cusum = Cusum.from_policy(policy)
-    above = []
-    for s in scores(200_000):
-        cusum.add(float(s))
-        above.append(cusum.judged(float(s), level) > level)
-    above = np.asarray(above)
-    starts = int(above[0]) + int((above[1:] & ~above[:-1]).sum())
-    rate = starts / len(above)
+    assert HOLD_KEY not in policy["cusum"], "no state changes given: every hop counts"
+    rate = _passage_rate(policy, _known_scores(rng, 200_000))
     print(f"\nseed {seed}: passages started on {rate:.2e} of the hops for a risk of {risk:.0e}")
     assert 0.3 * risk < rate < 1.5 * risk
+
+
+def _with_state_changes(rng, n, every=250, transient=12, flagged=32):
+    """The known scores of a process that changes state every `every` hops: a transient of
+    `transient` hops at 4x the score, inside the `flagged` hops whose windows hold the change."""
+    phase = np.arange(n) % every
+    return _known_scores(rng, n) * np.where(phase < transient, 4.0, 1.0), phase < flagged
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_state_changes_leave_the_limit_to_steady_running_and_keep_the_budget(seed):
+    """A machine that starts, stops or changes duty every 250 hops, with a 12-hop transient at
+    4x the normal score (the largest normal error there is). Fitted with the evidence held
+    on the windows that hold a change, the limit is set by steady running alone: lower than
+    with the transients counted, so a held rise of 2x in steady running is found sooner; and
+    fresh scores of the same process still start a passage of either level on about the
+    budget's risk (1e-3 a hop)."""
+    rng = np.random.default_rng(seed)
+    risk = 1e-3
+    history = [_with_state_changes(rng, 20_000) for _ in range(2)]
+    scores, changes = [h[0] for h in history], [h[1] for h in history]
+    counted, _ = threshold_policy("pot", scores, risk)
+    held, report = threshold_policy("pot", scores, risk, changes)
+    assert held["cusum"][HOLD_KEY] is True and report["excursions"] >= MIN_EXCURSIONS
+    assert held["cusum"]["median"] == counted["cusum"]["median"]       # every hop's
+    assert held["cusum"]["allowance"] == counted["cusum"]["allowance"]
+    assert held["cusum"]["limit"] < 0.7 * counted["cusum"]["limit"]
+    # the excursions are those of the steady hops alone, in order: holding is skipping them
+    m, a = held["cusum"]["median"], held["cusum"]["allowance"]
+    assert report["excursions"] == sum(len(excursion_peaks(s[~c], m, a))
+                                       for s, c in zip(scores, changes))
+    fresh, fresh_changes = _with_state_changes(rng, 200_000)
+    rate = _passage_rate(held, fresh, fresh_changes)
+    print(f"\nseed {seed}: limit {held['cusum']['limit']:.1f} (transients counted: "
+          f"{counted['cusum']['limit']:.1f}); passages on {rate:.2e} of the hops")
+    assert 0.3 * risk < rate < 1.5 * risk
+    rise = _known_scores(rng, 400) * 2.0          # a held rise, in steady running
+
+    def hops_to_find(policy):
+        cusum = Cusum.from_policy(policy)
+        for hop, s in enumerate(rise):
+            cusum.add(float(s))
+            if cusum.evidence > cusum.limit:
+                return hop
+        return len(rise)
+
+    assert hops_to_find(held) < hops_to_find(counted)
+
+
+def test_the_evidence_holds_still_on_a_state_change_only_when_the_section_says_so():
+    """A bundle from before the rule (no key) counts every hop, as it did; with the key a
+    window holding a change of operating state neither adds nor takes away evidence, while the
+    threshold still judges its score."""
+    section = {"median": 1.0, "allowance": 0.3, "limit": 8.0}
+    for flag, grows in ((None, True), (False, True), (True, False)):
+        cusum = Cusum.from_policy({"kind": "static", "level": 4.0,
+                                   "cusum": section if flag is None
+                                   else {**section, HOLD_KEY: flag}})
+        cusum.add(3.0)
+        before = cusum.evidence
+        for score in (3.0, 0.1):              # neither a high nor a low hop moves it
+            cusum.add(score, state_change=True)
+            assert (cusum.evidence != before) == grows
+            before = cusum.evidence
+    judge = Judge("b", ["a"], ["u"], {"kind": "static", "level": 4.0,
+                                      "cusum": {**section, HOLD_KEY: True}}, ALERTING)
+    for _ in range(40):
+        judge.step(0.0, 3.0, state_change=True)     # a long transient under the level
+    assert judge.cusum.evidence == 0.0 and judge.alert is None
+    for _ in range(3):
+        judge.step(0.0, 10.0, state_change=True)    # one above it is the threshold's
+    assert judge.alert is not None and judge.alert["opened_by"] == "score"
+
+
+def test_a_window_holds_a_state_change_when_a_piece_sits_in_another_regime():
+    """Two regimes (off at 0, running at 5): a start in the newest piece, in the oldest, a
+    window all off or all running; a rule with one regime never sees a change."""
+    two = ScoreRule(score_section([[0.0, 0.0], [5.0, 5.0]], [[1.0, 1.0], [1.0, 1.0]], "rms", 8,
+                                  "mse+offset"))
+    windows = np.zeros((4, 32, 2))
+    windows[0, -8:] = 5.0      # started in the scored steps
+    windows[1, 8:] = 5.0       # started in the oldest piece, running since
+    windows[3] = 5.0
+    pieces = piece_means(windows, 8)
+    assert pieces.shape == (4, 4, 2)
+    np.testing.assert_allclose(pieces[:, -1], windows[:, -8:].mean(axis=1))
+    assert two.state_changes(windows.mean(axis=1), pieces).tolist() == [True, True, False, False]
+    one = ScoreRule(score_section([[0.0, 0.0]], [[1.0, 1.0]], "rms", 8, "mse+offset"))
+    assert not one.state_changes(windows.mean(axis=1), pieces).any()
+    # a window not a whole number of pieces: the oldest leftover steps are in no piece
+    assert piece_means(np.zeros((1, 30, 2)), 8).shape == (1, 3, 2)
 
 
 def test_compile_arms_the_cusum_only_where_its_limit_can_be_fitted():
@@ -182,6 +290,8 @@ def test_compile_arms_the_cusum_only_where_its_limit_can_be_fitted():
                                      {"median": 1.0, "allowance": 0.3, "limit": float("nan")},
                                      {"median": 1.0, "allowance": 0.3},
                                      {"median": 1.0, "allowance": 0.3, "limit": 8.0, "cap": 2},
+                                     {"median": 1.0, "allowance": 0.3, "limit": 8.0,
+                                      HOLD_KEY: "yes"},
                                      [1.0, 0.3, 8.0]])
 def test_a_malformed_cusum_section_is_refused_when_the_bundle_loads(tmp_path, section):
     with pytest.raises(ValueError, match="cusum"):
