@@ -5,7 +5,8 @@
 Per seed, `ganlet demo`'s steps 1-4 (compile/demo.replay_on_gateway): invent the week with that
 seed, train the teacher on its normal span, compile for the default board, replay the test span
 through the bundle's own run.py stream (its threshold, CUSUM, alert machine and drift monitor).
-Prints per seed the incidents alerted (of 5), the alerts outside every incident, each found
+Prints per seed the incidents alerted (of 5), the alerts outside every incident and the minutes
+in alert outside them (an alert running on after its incident counts there), each found
 incident's delay, whether the first alert's `moved` channel is one the incident moves
 (examples/pump_station.MOVES), and what opened it; then the totals. One seed is one draw: the
 README's demo figure is seed 7's, and a change to detection should be judged over several. The
@@ -39,7 +40,24 @@ def one_seed(seed: int, quick: bool, out: Path) -> dict:
         else:
             rows.append((inc["kind"], None, False, None))
     return {"rows": rows, "outside": len(others),
+            "minutes_outside": minutes_outside(replay["alerts"], Path(info["incidents"])),
             "cusum": compiled.report["cusum"]["section"] is not None}
+
+
+def minutes_outside(alerts: list, incidents_csv: Path) -> int:
+    """Minutes in alert outside every incident (an alert that runs on after its incident, or one
+    apart from all): what the operator spends on nothing."""
+    import pandas as pd
+
+    incidents = pd.read_csv(incidents_csv)
+    inside = [(pd.Timestamp(a), pd.Timestamp(b)) for a, b in zip(incidents.start, incidents.end)]
+    total = 0
+    for alert in alerts:
+        opened = pd.Timestamp(alert["opened"]).tz_localize(None)
+        closed = pd.Timestamp(alert["closed"]).tz_localize(None) if alert["closed"] else opened
+        for minute in pd.date_range(opened, closed, freq="min"):
+            total += not any(a <= minute <= b for a, b in inside)
+    return total
 
 
 def main() -> None:
@@ -48,14 +66,15 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="the demo's smoke-run training")
     a = ap.parse_args()
     warnings.simplefilter("ignore")  # the invented data's deliberate glitches
-    totals = {"found": 0, "incidents": 0, "outside": 0, "right": 0, "delays": []}
+    totals = {"found": 0, "incidents": 0, "outside": 0, "right": 0, "delays": [], "minutes": 0}
     with tempfile.TemporaryDirectory(prefix="ganlet-demo-seeds-") as tmp:
         for seed in a.seeds:
             started = time.perf_counter()
             r = one_seed(seed, a.quick, Path(tmp) / str(seed))
             found = [row for row in r["rows"] if row[1] is not None]
             print(f"seed {seed}: {len(found)} of {len(r['rows'])} incidents alerted, "
-                  f"{r['outside']} alert(s) outside them, cusum {'armed' if r['cusum'] else 'off'}"
+                  f"{r['outside']} alert(s) outside them, {r['minutes_outside']} min in alert "
+                  f"outside them, cusum {'armed' if r['cusum'] else 'off'}"
                   f" ({time.perf_counter() - started:.0f} s)")
             for kind, delay, right, opened_by in r["rows"]:
                 print(f"   {kind:<13} " + ("MISSED" if delay is None else
@@ -66,9 +85,11 @@ def main() -> None:
             totals["outside"] += r["outside"]
             totals["right"] += sum(row[2] for row in found)
             totals["delays"] += [row[1] for row in found]
+            totals["minutes"] += r["minutes_outside"]
     delays = totals["delays"]
     print(f"all seeds: {totals['found']} of {totals['incidents']} incidents alerted, "
-          f"{totals['outside']} alert(s) outside them, moved channel right for {totals['right']} "
+          f"{totals['outside']} alert(s) outside them, {totals['minutes']} min in alert outside "
+          f"them, moved channel right for {totals['right']} "
           f"of {totals['found']}, mean delay "
           + (f"{sum(delays) / len(delays):.0f} min" if delays else "-"))
 

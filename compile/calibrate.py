@@ -32,7 +32,7 @@ from scipy.stats import spearmanr
 
 from ganlet.compile.train import TrainedModel
 from ganlet.runtime.alerts import default_alerting
-from ganlet.runtime.cusum import HOLD_KEY, calibrate_cusum, cusum_off
+from ganlet.runtime.cusum import STATE_CHANGE_KEY, calibrate_cusum, cusum_off
 from ganlet.runtime.detector import Detector
 from ganlet.runtime.drift import drift_section, window_level
 from ganlet.runtime.held import RISK_SHARE, calibrate_held
@@ -146,7 +146,7 @@ def detector_policy(kind: str, pieces: list, risk: float, history: Optional[np.n
     limits from the raw normal history [rows, channels] (runtime/held.py), whose share comes out
     of the budget, and `threshold_policy` on the scores for the rest. `ganlet evaluate` gives
     every method this rule. `state_changes`: per piece, the hops whose windows hold a change of
-    operating state (runtime/score.py), on which the CUSUM holds its evidence."""
+    operating state (runtime/score.py), which the CUSUM counts as its median."""
     held = (calibrate_held(history, risk / hop) if history is not None
             else {"section": None, "channels": []})  # a model directory without raw rows
     score_risk = risk * (1 - RISK_SHARE) if held["section"] is not None else risk
@@ -170,8 +170,8 @@ def tails_text(regimes: dict) -> str:
 def cusum_line(report: dict) -> str:
     """compile's line on the CUSUM (threshold_policy's report)."""
     if report["section"] is not None:
-        held = (" of steady running (held still where a window holds a change of operating "
-                "state)" if report["section"].get(HOLD_KEY) else "")
+        held = (" of steady running (a window holding a change of operating state counts "
+                "as normal)" if report["section"].get(STATE_CHANGE_KEY) else "")
         return (f"cusum: a rise held over many hops also alerts (evidence limit "
                 f"{report['section']['limit']:.3g}, fitted on {report['excursions']} "
                 f"excursions of the normal history{held}); it shares the budget")

@@ -41,12 +41,13 @@ from ganlet.compile.gateway import (
     run_bundle,
 )
 from ganlet.runtime.clock import JUMP, REFUSE, Timeline
+from ganlet.runtime.cusum import STATE_CHANGE_KEY
 from ganlet.runtime.detector import Detector, Judge
 from ganlet.runtime.intake import Dialect, RowError
 from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
 from ganlet.runtime.scorer import NetworkScorer, make_scorer
 from ganlet.runtime.sources import CsvSource
-from ganlet.runtime.thresholds import HELD_KEY
+from ganlet.runtime.thresholds import CUSUM_KEY, HELD_KEY
 
 STRICT = ("onnxruntime", "numpy")          # share the int8 weights with the device
 
@@ -414,6 +415,9 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
                if HELD_KEY in bundle.threshold_policy else "")
         if (bundle.manifest.get("drift") or {}).get("alert_steps"):
             why += "an alert on a level step, judged on the window levels, or "
+        if (bundle.threshold_policy.get(CUSUM_KEY) or {}).get(STATE_CHANGE_KEY):
+            why += ("a CUSUM that counts a window holding a change of operating state as "
+                    "normal, which the scores alone do not show, or ")
         notes.append(f"replaying the device's own scores through the threshold policy and alert "
                      f"machine reproduces its alert column on {replay_agreement:.2%} of hops "
                      f"({why}a restart from a checkpoint mid-stream, or a different runtime, "

@@ -24,7 +24,7 @@ from typing import List, Optional
 
 from .checkpoint import CheckpointError
 from .clock import BACKLOG_DAYS, CONFIRM_ROWS, MAX_AHEAD_S
-from .cusum import HOLD_KEY
+from .cusum import STATE_CHANGE_KEY
 from .drift import STEP_TEXT, action_summary
 from .intake import DECIMALS, Dialect
 from .manifest import BundleError, load_bundle
@@ -264,8 +264,8 @@ def detector_line(summary: dict) -> str:
     if summary.get("cusum"):
         parts.append("or while a CUSUM of the log score holds a rise above "
                      f"{summary['cusum']['limit']:.3g}"
-                     + (" (held still on windows holding a change of operating state)"
-                        if summary["cusum"].get(HOLD_KEY) else ""))
+                     + (" (a window holding a change of operating state counts as normal)"
+                        if summary["cusum"].get(STATE_CHANGE_KEY) else ""))
     held = summary.get("held")
     if held:
         watched = [f"{c['name']} {n}" for c, n in zip(summary["channels"], held["limits"]) if n]

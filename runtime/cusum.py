@@ -31,16 +31,19 @@ open through 99.8 % of the stream); the score still alerts on anything that pass
 The median, allowance and limit are fixed: the CUSUM never learns from the stream. Its settings
 sit in the threshold policy under CUSUM_KEY.
 
-State changes (HOLD_KEY true): on a window that holds a change of operating state (score.py
-`state_changes`: a start, a stop, a duty change) the evidence neither grows nor falls, in the
-history the limit is fitted on and on the gateway alike. The CUSUM is the judge of a rise held
-in steady running; a state change is judged by the threshold alone. Its transient is the
-largest normal error there is, so counted it carried the history's longest excursions and set
-the limit (the demo's midday stops; the hops of such windows hold about a sixth of its
-history), and on the gateway a stop's transient, added to a fault's evidence, crossed the
-limit after the fault had ended. The median and the allowance stay those of every hop, so a hold
-needs what it needed before to add evidence; the limit falls because the excursions lose their
-transients. A section without the key (bundles from before it) counts every hop.
+State changes (STATE_CHANGE_KEY true): a window that holds a change of operating state
+(score.py `state_changes`: a start, a stop, a duty change) counts as a hop at the normal median,
+in the history the limit is fitted on and on the gateway alike: its transient adds nothing and
+the evidence falls by the allowance, as on a typical normal hop. The CUSUM is the judge of a
+rise held in steady running; a state change is judged by the threshold alone. Its transient is
+the largest normal error there is, so counted it carried the history's longest excursions and
+set the limit (the demo's midday stops; windows holding a change are about a sixth of its
+hops), and on the gateway a stop's transient, added to a fault's evidence, crossed the limit
+after the fault had ended. Holding the evidence still instead (neither adding nor taking
+away) kept an alert open through the duty change after a fault, for an hour (README). The
+median and the allowance stay those of every hop, so a steady hop needs what it needed before
+to add evidence; the limit falls because the excursions lose their transients. A section
+without the key (bundles from before it) counts every hop's score.
 """
 
 import math
@@ -56,20 +59,20 @@ ALLOWANCE_QUANTILE = 0.9     # the normal score quantile a hop must pass to add 
 # at least 10 peaks for the fit, the pot threshold's own minimum (thresholds.py, from memory:
 # a GPD fit on fewer is not worth having). Fewer: compile leaves the CUSUM out.
 MIN_EXCURSIONS = 20
-HOLD_KEY = "hold_on_state_change"  # the cusum section's optional flag (see above)
+STATE_CHANGE_KEY = "state_change_as_median"  # the cusum section's optional flag (see above)
 
 
 class Cusum:
     """The evidence S of a held rise; see the module docstring."""
 
     def __init__(self, median: float, allowance: float, limit: float,
-                 hold_on_state_change: bool = False):
+                 state_change_as_median: bool = False):
         self.median = _num("threshold.cusum.median", median, 0.0, lo_open=True)
         self.allowance = _num("threshold.cusum.allowance", allowance, 0.0)
         self.limit = _num("threshold.cusum.limit", limit, 0.0, lo_open=True)
-        if not isinstance(hold_on_state_change, bool):
-            raise ValueError(f"threshold.cusum.{HOLD_KEY} must be true or false")
-        self.hold_on_state_change = hold_on_state_change
+        if not isinstance(state_change_as_median, bool):
+            raise ValueError(f"threshold.cusum.{STATE_CHANGE_KEY} must be true or false")
+        self.state_change_as_median = state_change_as_median
         self.evidence = 0.0
 
     @classmethod
@@ -78,17 +81,17 @@ class Cusum:
         if section is None:
             return None
         required = ["allowance", "limit", "median"]
-        if not isinstance(section, dict) or sorted(set(section) - {HOLD_KEY}) != required:
+        if not isinstance(section, dict) or sorted(set(section) - {STATE_CHANGE_KEY}) != required:
             raise ValueError('threshold.cusum must be {"median": m, "allowance": a, '
-                             f'"limit": h}}, optionally with "{HOLD_KEY}": true or false')
+                             f'"limit": h}}, optionally with "{STATE_CHANGE_KEY}": true or false')
         return cls(section["median"], section["allowance"], section["limit"],
-                   section.get(HOLD_KEY, False))
+                   section.get(STATE_CHANGE_KEY, False))
 
     def add(self, score: float, state_change: bool = False) -> None:
-        """Take one hop's score (non-finite scores change nothing; nor does a window holding a
-        change of operating state when the section says so)."""
-        if state_change and self.hold_on_state_change:
-            return
+        """Take one hop's score (non-finite scores change nothing); a window holding a change of
+        operating state counts as the median when the section says so."""
+        if state_change and self.state_change_as_median:
+            score = self.median
         if math.isfinite(score):
             step = math.log(max(score, 1e-300) / self.median) - self.allowance
             self.evidence = min(CAP * self.limit, max(0.0, self.evidence + step))
@@ -141,22 +144,22 @@ def calibrate_cusum(pieces: Sequence[np.ndarray], risk: float,
     """The CUSUM section for a risk per hop (its share of the false-alarm budget), from normal
     scores in `pieces` (each a stretch in hop order), and what it was fitted on:
     {"section": {...} or None, "excursions": n, "why_off": text or None}.
-    `state_changes`: per piece, which hops' windows hold a change of operating state; the
-    evidence holds still on them (the section then says so), so the excursions are those of
-    the other hops, in order. Median and allowance are every hop's.
+    `state_changes`: per piece, which hops' windows hold a change of operating state; they
+    count as the median (the section then says so) in the excursions. Median and allowance are
+    every hop's.
 
     With N scores showing n excursions, a risk per hop q allows q N / n exceedances per
     excursion: the limit is the GPD tail quantile of the peaks at that probability."""
-    held = ([np.zeros(len(p), bool) for p in pieces] if state_changes is None
-            else [np.asarray(h, bool) for h in state_changes])
-    kept = [(np.asarray(p, np.float64), h) for p, h in zip(pieces, held)]
+    changes = ([np.zeros(len(p), bool) for p in pieces] if state_changes is None
+               else [np.asarray(h, bool) for h in state_changes])
+    kept = [(np.asarray(p, np.float64), h) for p, h in zip(pieces, changes)]
     finite = [p[np.isfinite(p)] for p, _ in kept]
     scores = np.concatenate(finite) if finite else np.zeros(0)
     if scores.size == 0 or not (scores > 0).all():
         return cusum_off("its scores must be positive (a ratio scale)")
     median = float(np.median(scores))
     allowance = max(0.0, math.log(float(np.quantile(scores, ALLOWANCE_QUANTILE)) / median))
-    counted = [p[np.isfinite(p) & ~h] for p, h in kept]
+    counted = [np.where(h, median, p)[np.isfinite(p)] for p, h in kept]
     peaks = np.asarray([v for p in counted for v in excursion_peaks(p, median, allowance)])
     if peaks.size < MIN_EXCURSIONS:
         return cusum_off(f"the history shows {peaks.size} excursions of the evidence and its "
@@ -171,5 +174,5 @@ def calibrate_cusum(pieces: Sequence[np.ndarray], risk: float,
     limit = pot_quantile(u, xi, sigma, chance, int(peaks.size), int(excesses.size))
     section = {"median": median, "allowance": allowance, "limit": max(limit, u)}
     if state_changes is not None:
-        section[HOLD_KEY] = True
+        section[STATE_CHANGE_KEY] = True
     return {"section": section, "excursions": int(peaks.size), "why_off": None}

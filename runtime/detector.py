@@ -105,7 +105,7 @@ class Judge:
              state_change: bool = False) -> List[dict]:
         """One scored hop; `drifting`: a channel of it was re-centred as drift; `steps`: each
         channel's excess in MARGINs where it is a step, else 0 (drift.py); `state_change`: its
-        window holds a change of operating state (score.py), on which the CUSUM holds."""
+        window holds a change of operating state (score.py), which the CUSUM counts as normal."""
         parts = np.zeros(len(self.channels)) if parts is None else np.asarray(parts, np.float64)
         self.level = float(self.threshold.level)
         hop = self.machine.hop

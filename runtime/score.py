@@ -127,7 +127,7 @@ class ScoreRule:
     def state_changes(self, means, pieces) -> np.ndarray:
         """Whether each window holds a change of operating state: one of its pieces (piece_means)
         sits nearest another regime than the whole window's per-channel means [N, C] -> [N].
-        Never without regimes. The CUSUM (cusum.py) holds its evidence on such windows."""
+        Never without regimes. The CUSUM (cusum.py) counts such windows as its median."""
         p = np.asarray(pieces, dtype=np.float64)
         whole = self.regime(means)
         if self.centres is None or len(self.centres) == 1 or p.shape[1] == 0:

@@ -370,8 +370,8 @@ def test_run_py_check_accepts_the_bundle_and_refuses_tampering(bundle, tmp_path)
         f"{c['name']} {n}" for c, n in zip(manifest["channels"], held)) + ")") in ok.stdout
     cusum = manifest["threshold"].get("cusum")
     said = f"holds a rise above {cusum['limit']:.3g}" if cusum else "CUSUM"
-    if cusum and cusum.get("hold_on_state_change"):  # compile fits it so (runtime/cusum.py)
-        said += " (held still on windows holding a change of operating state)"
+    if cusum and cusum.get("state_change_as_median"):  # compile fits it so (runtime/cusum.py)
+        said += " (a window holding a change of operating state counts as normal)"
     assert (said in ok.stdout) if cusum else (said not in ok.stdout)
 
     copy = tmp_path / "B"

@@ -1,9 +1,9 @@
 """The CUSUM of the log score beside the threshold (runtime/cusum.py): its recursion against the
 closed form of Page's CUSUM, what it adds (a small held rise alerts; no single hop's level sees
 it), the false-alarm budget it shares with the pot threshold on scores of a known distribution,
-when compile arms it, its cooldown and reset rules, that it holds still on windows holding a
-change of operating state (and is fitted so), and that a detector holding it resumes exactly and
-refuses a tampered state or section."""
+when compile arms it, its cooldown and reset rules, that it counts a window holding a change of
+operating state as its median (and is fitted so), and that a detector holding it resumes
+exactly and refuses a tampered state or section."""
 
 import json
 
@@ -14,8 +14,8 @@ import runtime_fixtures as fx
 from ganlet.compile.calibrate import threshold_policy
 from ganlet.runtime.cusum import (
     CAP,
-    HOLD_KEY,
     MIN_EXCURSIONS,
+    STATE_CHANGE_KEY,
     Cusum,
     calibrate_cusum,
     excursion_peaks,
@@ -172,7 +172,7 @@ def test_the_threshold_and_the_cusum_together_keep_the_budget(seed):
     policy, report = threshold_policy("pot", [_known_scores(rng, 20_000),
                                               _known_scores(rng, 20_000)], risk)
     assert report["section"] is not None and policy["cusum"] == report["section"]
-    assert HOLD_KEY not in policy["cusum"], "no state changes given: every hop counts"
+    assert STATE_CHANGE_KEY not in policy["cusum"], "no state changes given: every hop counts"
     rate = _passage_rate(policy, _known_scores(rng, 200_000))
     print(f"\nseed {seed}: passages started on {rate:.2e} of the hops for a risk of {risk:.0e}")
     assert 0.3 * risk < rate < 1.5 * risk
@@ -188,28 +188,28 @@ def _with_state_changes(rng, n, every=250, transient=12, flagged=32):
 @pytest.mark.parametrize("seed", [0, 1])
 def test_state_changes_leave_the_limit_to_steady_running_and_keep_the_budget(seed):
     """A machine that starts, stops or changes duty every 250 hops, with a 12-hop transient at
-    4x the normal score (the largest normal error there is). Fitted with the evidence held
-    on the windows that hold a change, the limit is set by steady running alone: lower than
-    with the transients counted, so a held rise of 2x in steady running is found sooner; and
-    fresh scores of the same process still start a passage of either level on about the
-    budget's risk (1e-3 a hop)."""
+    4x the normal score (the largest normal error there is). Fitted with the windows that hold
+    a change counted as the median, the limit is set by steady running: lower than with the
+    transients counted, so a held rise of 2x in steady running is found sooner; and fresh
+    scores of the same process still start a passage of either level on about the budget's risk
+    (1e-3 a hop)."""
     rng = np.random.default_rng(seed)
     risk = 1e-3
     history = [_with_state_changes(rng, 20_000) for _ in range(2)]
     scores, changes = [h[0] for h in history], [h[1] for h in history]
     counted, _ = threshold_policy("pot", scores, risk)
-    held, report = threshold_policy("pot", scores, risk, changes)
-    assert held["cusum"][HOLD_KEY] is True and report["excursions"] >= MIN_EXCURSIONS
-    assert held["cusum"]["median"] == counted["cusum"]["median"]       # every hop's
-    assert held["cusum"]["allowance"] == counted["cusum"]["allowance"]
-    assert held["cusum"]["limit"] < 0.7 * counted["cusum"]["limit"]
-    # the excursions are those of the steady hops alone, in order: holding is skipping them
-    m, a = held["cusum"]["median"], held["cusum"]["allowance"]
-    assert report["excursions"] == sum(len(excursion_peaks(s[~c], m, a))
+    steady, report = threshold_policy("pot", scores, risk, changes)
+    assert steady["cusum"][STATE_CHANGE_KEY] is True and report["excursions"] >= MIN_EXCURSIONS
+    assert steady["cusum"]["median"] == counted["cusum"]["median"]       # every hop's
+    assert steady["cusum"]["allowance"] == counted["cusum"]["allowance"]
+    assert steady["cusum"]["limit"] < 0.7 * counted["cusum"]["limit"]
+    # the excursions are those of the series with each such window's score at the median
+    m, a = steady["cusum"]["median"], steady["cusum"]["allowance"]
+    assert report["excursions"] == sum(len(excursion_peaks(np.where(c, m, s), m, a))
                                        for s, c in zip(scores, changes))
     fresh, fresh_changes = _with_state_changes(rng, 200_000)
-    rate = _passage_rate(held, fresh, fresh_changes)
-    print(f"\nseed {seed}: limit {held['cusum']['limit']:.1f} (transients counted: "
+    rate = _passage_rate(steady, fresh, fresh_changes)
+    print(f"\nseed {seed}: limit {steady['cusum']['limit']:.1f} (transients counted: "
           f"{counted['cusum']['limit']:.1f}); passages on {rate:.2e} of the hops")
     assert 0.3 * risk < rate < 1.5 * risk
     rise = _known_scores(rng, 400) * 2.0          # a held rise, in steady running
@@ -222,31 +222,39 @@ def test_state_changes_leave_the_limit_to_steady_running_and_keep_the_budget(see
                 return hop
         return len(rise)
 
-    assert hops_to_find(held) < hops_to_find(counted)
+    assert hops_to_find(steady) < hops_to_find(counted)
 
 
-def test_the_evidence_holds_still_on_a_state_change_only_when_the_section_says_so():
-    """A bundle from before the rule (no key) counts every hop, as it did; with the key a
-    window holding a change of operating state neither adds nor takes away evidence, while the
-    threshold still judges its score."""
+def test_a_state_change_counts_as_the_median_only_when_the_section_says_so():
+    """A bundle from before the rule (no key) counts every hop's score, as it did; with the key
+    a window holding a change of operating state counts as a hop at the median, whatever its
+    score: the evidence falls by the allowance, so a transient neither adds evidence nor holds
+    an alert open, while the threshold still judges its score."""
     section = {"median": 1.0, "allowance": 0.3, "limit": 8.0}
-    for flag, grows in ((None, True), (False, True), (True, False)):
+    for flag, counts in ((None, True), (False, True), (True, False)):
         cusum = Cusum.from_policy({"kind": "static", "level": 4.0,
                                    "cusum": section if flag is None
-                                   else {**section, HOLD_KEY: flag}})
+                                   else {**section, STATE_CHANGE_KEY: flag}})
         cusum.add(3.0)
         before = cusum.evidence
-        for score in (3.0, 0.1):              # neither a high nor a low hop moves it
-            cusum.add(score, state_change=True)
-            assert (cusum.evidence != before) == grows
-            before = cusum.evidence
+        cusum.add(3.0, state_change=True)
+        want = before + np.log(3.0) - 0.3 if counts else before - 0.3
+        assert cusum.evidence == pytest.approx(want)
     judge = Judge("b", ["a"], ["u"], {"kind": "static", "level": 4.0,
-                                      "cusum": {**section, HOLD_KEY: True}}, ALERTING)
+                                      "cusum": {**section, STATE_CHANGE_KEY: True}}, ALERTING)
     for _ in range(40):
         judge.step(0.0, 3.0, state_change=True)     # a long transient under the level
     assert judge.cusum.evidence == 0.0 and judge.alert is None
+    for _ in range(30):
+        judge.step(0.0, 3.0)                        # a held rise in steady running
+    assert judge.alert is not None and judge.alert["opened_by"] == "cusum"
+    closed = [hop for hop in range(30) for e in judge.step(0.0, 3.0, state_change=True)
+              if e["event"] == "alert_closed"]
+    assert closed, "a state change after the rise does not hold its alert open"
+    for _ in range(ALERTING["cooldown_hops"] + 1):
+        judge.step(0.0, 1.0)
     for _ in range(3):
-        judge.step(0.0, 10.0, state_change=True)    # one above it is the threshold's
+        judge.step(0.0, 10.0, state_change=True)    # one above the level is the threshold's
     assert judge.alert is not None and judge.alert["opened_by"] == "score"
 
 
@@ -291,7 +299,7 @@ def test_compile_arms_the_cusum_only_where_its_limit_can_be_fitted():
                                      {"median": 1.0, "allowance": 0.3},
                                      {"median": 1.0, "allowance": 0.3, "limit": 8.0, "cap": 2},
                                      {"median": 1.0, "allowance": 0.3, "limit": 8.0,
-                                      HOLD_KEY: "yes"},
+                                      STATE_CHANGE_KEY: "yes"},
                                      [1.0, 0.3, 8.0]])
 def test_a_malformed_cusum_section_is_refused_when_the_bundle_loads(tmp_path, section):
     with pytest.raises(ValueError, match="cusum"):
