@@ -170,11 +170,11 @@ def tails_text(regimes: dict) -> str:
 def cusum_line(report: dict) -> str:
     """compile's line on the CUSUM (threshold_policy's report)."""
     if report["section"] is not None:
-        held = (" of steady running (a window holding a change of operating state counts "
-                "as normal)" if report["section"].get(STATE_CHANGE_KEY) else "")
+        steady = (" of steady running (a window holding a change of operating state counts "
+                  "as normal)" if report["section"].get(STATE_CHANGE_KEY) else "")
         return (f"cusum: a rise held over many hops also alerts (evidence limit "
                 f"{report['section']['limit']:.3g}, fitted on {report['excursions']} "
-                f"excursions of the normal history{held}); it shares the budget")
+                f"excursions of the normal history{steady}); it shares the budget")
     return f"cusum: off; {report['why_off']}"
 
 
@@ -365,9 +365,9 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
                                       means[cal_start:cal_end][np.isfinite(
                                           means[cal_start:cal_end]).all(axis=1)], seed)
     steps = max(1, window // SCORED_FRACTION)
-    rows, res, hop_means, _, hop_pieces = replay_training(model, scorer, window, hop, drift,
-                                              score_section(combine=COMBINE, steps=steps,
-                                                            statistic=STATISTIC))
+    rows, res, hop_means, _, hop_pieces = replay_training(
+        model, scorer, window, hop, drift,
+        score_section(combine=COMBINE, steps=steps, statistic=STATISTIC))
     cal = rows >= cal_start
     if cal.sum() < 2:
         raise ValueError("the calibration span holds fewer than 2 windows; train with a longer "
