@@ -311,6 +311,40 @@ def test_calibrated_score_has_one_scale_across_regimes(tmp_path):
           f"uncalibrated mean residual {uncalibrated:.2f}x")
     assert calibrated < 1.5
     assert uncalibrated > 3.0
+    _state_changes_are_the_windows_across_a_block_edge(model, scorer, bundle, df, busy)
+
+
+def _state_changes_are_the_windows_across_a_block_edge(model, scorer, bundle, df, busy):
+    """The CUSUM's state-change flag (runtime/score.py) on the same two-regime series: on the
+    gateway, a window wholly inside one regime never holds a change, and one with at least a
+    whole piece (4 of its 16 steps) on each side always does; compile's replay of the training
+    rows (calibrate.replay_training, which the CUSUM's limit is fitted on) flags the same
+    windows as the gateway's Detector."""
+    from ganlet.compile.calibrate import replay_training
+    from ganlet.runtime.detector import Detector
+    from ganlet.runtime.score import ScoreRule
+
+    def gateway_flags(start, end):
+        det, flags = Detector(bundle, scorer), {}
+        seconds = (df["time"] - pd.Timestamp(0)).dt.total_seconds().to_numpy()
+        for k in range(start, end):
+            before = det.counters["hops"]
+            det.feed(float(seconds[k]), df[["a", "b", "c"]].to_numpy()[k])
+            if det.counters["hops"] > before:
+                flags[k] = det.last_hop["state_change"]
+        return flags
+
+    test = gateway_flags(2880, len(df))
+    busy_steps = {k: int(busy[k - 15:k + 1].sum()) for k in test}
+    assert not any(test[k] for k in test if busy_steps[k] in (0, 16))
+    across = [k for k in test if 4 <= busy_steps[k] <= 12]
+    assert across and all(test[k] for k in across)
+    rule = ScoreRule(bundle.manifest["score"])
+    rows, _, means, _, pieces = replay_training(model, scorer, 16, 1, bundle.manifest["drift"],
+                                                bundle.manifest["score"])
+    compiled = dict(zip(rows.tolist(), rule.state_changes(means, pieces).tolist()))
+    training = gateway_flags(0, 2880)
+    assert compiled == training and any(compiled.values())
 
 
 def test_a_channel_with_a_heavy_normal_tail_does_not_carry_the_score():
