@@ -46,8 +46,10 @@ def main() -> None:
                     help="train on the first N rows (at most 400); the rows after 400 are "
                          "counted either way")
     a = ap.parse_args()
-    if not 0 < a.train_rows <= skab_protocol.TRAIN_ROWS:
-        ap.error(f"--train-rows must be 1..{skab_protocol.TRAIN_ROWS}")
+    try:
+        skab_protocol.check_train_rows(a.train_rows)
+    except ValueError as err:
+        ap.error(f"--train-rows: {err}")
     files = skab_protocol.skab_files(a.skab, a.group)
     if not files:
         raise SystemExit(f"no SKAB CSV files under {a.skab / a.group}")

@@ -284,6 +284,9 @@ class Detector:
         self.ring = Ring(bundle.window, len(bundle.channels))
         self.judge = Judge(bundle.bundle_id, bundle.channels, bundle.units,
                            bundle.threshold_policy, bundle.alerting)
+        # only a CUSUM that counts state changes as normal needs them (cusum.py)
+        cusum = self.judge.cusum
+        self.watch_state_changes = cusum is not None and cusum.state_change_as_median
         self.counters = {k: 0 for k in COUNTERS}
         self.errors = {}  # type: Dict[str, int]  # rejected rows by kind (the service counts)
         self.last_time = None  # type: Optional[float]
@@ -416,8 +419,8 @@ class Detector:
         recon = self.scorer.reconstruct(window[None])
         residuals = self.rule.residuals(window[None], recon)
         scores, parts = self.rule.apply(residuals, means[None])
-        change = bool(self.rule.state_changes(means[None],
-                                              piece_means(window[None], self.rule.steps))[0])
+        change = self.watch_state_changes and bool(self.rule.state_changes(
+            means[None], piece_means(window[None], self.rule.steps))[0])
         self.counters["hops"] += 1
         self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],
                          "score": float(scores[0]), "parts": parts[0], "state_change": change}

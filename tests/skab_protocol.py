@@ -125,13 +125,19 @@ def pooled(outs: list) -> dict:
     return metrics
 
 
+def check_train_rows(train_rows: int) -> None:
+    """The protocol's test rows are those after TRAIN_ROWS: fewer training rows may be asked
+    for, never more."""
+    if not 0 < train_rows <= TRAIN_ROWS:
+        raise ValueError(f"train rows must be 1..{TRAIN_ROWS}: the rows after {TRAIN_ROWS} "
+                         "are the protocol's test rows")
+
+
 def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
         files=None, baselines=None, train_rows: int = TRAIN_ROWS) -> dict:
     """Every valve1 file at one seed, `workers` processes; pooled metrics per method (the
     baselines named, all of evaluate.BASELINES by default). train_rows: see run_file."""
-    if not 0 < train_rows <= TRAIN_ROWS:
-        raise ValueError(f"train_rows must be 1..{TRAIN_ROWS}: the rows after {TRAIN_ROWS} "
-                         "are the protocol's test rows")
+    check_train_rows(train_rows)
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 

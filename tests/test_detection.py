@@ -320,12 +320,22 @@ def _state_changes_are_the_windows_across_a_block_edge(model, scorer, bundle, df
     whole piece (4 of its 16 steps) on each side always does; compile's replay of the training
     rows (calibrate.replay_training, which the CUSUM's limit is fitted on) flags the same
     windows as the gateway's Detector."""
-    from ganlet.compile.calibrate import replay_training
+    from ganlet.compile.calibrate import detector_bundle, replay_training
+    from ganlet.runtime.cusum import STATE_CHANGE_KEY
     from ganlet.runtime.detector import Detector
     from ganlet.runtime.score import ScoreRule
 
-    def gateway_flags(start, end):
-        det, flags = Detector(bundle, scorer), {}
+    # a CUSUM that counts state changes as normal, which is what makes the gateway look
+    cusum = {"median": 1.0, "allowance": 0.5, "limit": 1e9, STATE_CHANGE_KEY: True}
+    watching = detector_bundle(model, 16, 1, bundle.manifest["score"],
+                               {"kind": "static", "level": 1e300, "cusum": cusum},
+                               bundle.alerting, bundle.manifest["drift"])
+    plain = detector_bundle(model, 16, 1, bundle.manifest["score"],
+                            {"kind": "static", "level": 1e300}, bundle.alerting,
+                            bundle.manifest["drift"])
+
+    def gateway_flags(start, end, b=watching):
+        det, flags = Detector(b, scorer), {}
         seconds = (df["time"] - pd.Timestamp(0)).dt.total_seconds().to_numpy()
         for k in range(start, end):
             before = det.counters["hops"]
@@ -345,6 +355,8 @@ def _state_changes_are_the_windows_across_a_block_edge(model, scorer, bundle, df
     compiled = dict(zip(rows.tolist(), rule.state_changes(means, pieces).tolist()))
     training = gateway_flags(0, 2880)
     assert compiled == training and any(compiled.values())
+    # a bundle whose CUSUM does not use them (or has none) never spends a hop on them
+    assert not any(gateway_flags(2880, len(df), plain).values())
 
 
 def test_a_channel_with_a_heavy_normal_tail_does_not_carry_the_score():
