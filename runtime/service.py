@@ -559,16 +559,8 @@ def run_stream(bundle, scorer, opts: StreamOptions, stdout=None, stderr=None, st
     stderr = stderr or sys.stderr
     stderr.write("NOTICE: " + ADVISORY_NOTICE + "\n")
     stderr.flush()
-    link = _mqtt_link(bundle, opts, stderr)
-    try:
-        return _serve(bundle, scorer, opts, stdout, stderr, stdin, link)
-    finally:
-        if link is not None:
-            link.close()
-
-
-def _serve(bundle, scorer, opts: StreamOptions, stdout, stderr, stdin, link) -> int:
-    service = Service(bundle, scorer, opts, stdout, stderr, link=link)
+    # the handlers come first: once the broker shows the gateway online, a SIGTERM must stop it
+    # cleanly (exit 0), not kill it mid-start
     control = Control()
     old_handlers = {}
     for sig in (signal.SIGTERM, signal.SIGINT):
@@ -576,6 +568,21 @@ def _serve(bundle, scorer, opts: StreamOptions, stdout, stderr, stdin, link) -> 
             old_handlers[sig] = signal.signal(sig, control.handler)
         except ValueError:  # not the main thread: no signal handling
             pass
+    try:
+        link = _mqtt_link(bundle, opts, stderr)
+        try:
+            return _serve(bundle, scorer, opts, stdout, stderr, stdin, link, control)
+        finally:
+            if link is not None:
+                link.close()
+    finally:
+        for sig, old in old_handlers.items():
+            signal.signal(sig, old)
+
+
+def _serve(bundle, scorer, opts: StreamOptions, stdout, stderr, stdin, link,
+           control: Control) -> int:
+    service = Service(bundle, scorer, opts, stdout, stderr, link=link)
     reader = None
     try:
         if opts.mqtt is not None and opts.mqtt.subscribe is not None:
@@ -592,5 +599,3 @@ def _serve(bundle, scorer, opts: StreamOptions, stdout, stderr, stdin, link) -> 
     finally:
         if reader is not None:
             reader.close()
-        for sig, old in old_handlers.items():
-            signal.signal(sig, old)
