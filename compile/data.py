@@ -10,7 +10,7 @@ from __future__ import annotations
 import csv
 import json
 import warnings
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Optional, Sequence
 
@@ -498,6 +498,40 @@ class RobustScaler:
     def from_json(cls, d: dict) -> RobustScaler:
         return cls(center=list(d["center"]), scale=list(d["scale"]),
                    features=d.get("features"))
+
+
+def constant_channels(frame: Frame, span: tuple) -> dict:
+    """{name: value} of the channels that hold one value over `span` (RobustScaler.fit's test)."""
+    values = frame.values[span[0]:span[1]]
+    center = np.nanmedian(values, axis=0)
+    std = np.nanstd(values, axis=0)
+    return {name: float(center[j]) for j, name in enumerate(frame.channels)
+            if not np.isfinite(std[j]) or std[j] <= 1e-12 * max(1.0, abs(center[j]))}
+
+
+def without_constant_channels(frame: Frame, spans: Spans, named: bool) -> tuple:
+    """(frame, notes): a channel picked by default (all numeric columns) that holds one value
+    over the fit span is left out, with a note: the network cannot learn what never moved, and
+    a setpoint or a status column often does not. A channel the engineer named (`named`: from
+    --channels) stays, so the scaler's error says what to do."""
+    constant = {} if named else constant_channels(frame, spans.fit)
+    if not constant:
+        return frame, []
+    if len(constant) == len(frame.channels):
+        raise IntakeError("every channel is constant over the training span; train on a history "
+                          "where the machine runs")
+    keep = [j for j, name in enumerate(frame.channels) if name not in constant]
+    notes = [f"channel {name!r} is constant over the training span (value {value:g}): left out, "
+             "as it carries no information; if it moves in service, train on a history where "
+             "it moves, or name it in --channels to be told so" for name, value in constant.items()]
+    report = replace(frame.report, channels=[frame.channels[j] for j in keep],
+                     units=[frame.units[j] for j in keep],
+                     excluded=frame.report.excluded + list(constant),
+                     channel_ranges={frame.channels[j]: frame.report.channel_ranges[
+                         frame.channels[j]] for j in keep},
+                     warnings=frame.report.warnings + notes)
+    return Frame(frame.times, frame.values[:, keep], report.channels, report.units,
+                 frame.period_s, report), notes
 
 
 def trending_channels(frame: Frame, span: tuple, min_rho: float = TREND_RHO) -> dict:

@@ -42,6 +42,7 @@ from ganlet.compile.data import (
     save_json,
     split_spans,
     trending_channels,
+    without_constant_channels,
 )
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.export import build_onnx
@@ -157,6 +158,9 @@ def train_from_file(data: Path, out: Path, options: TrainOptions,
     echo(frame.report.summary())
     config = options.detector_config()
     spans = split_spans(frame, options.train_until, options.calibration)
+    frame, notes = without_constant_channels(frame, spans, named=bool(options.channels))
+    for note in notes:
+        echo(f"note: {note}")
     window = choose_window(frame, spans, config.window)
     if window != config.window:
         config = replace(config, window=window)

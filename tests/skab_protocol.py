@@ -49,14 +49,16 @@ def train_and_compile(path: Path, train_rows: int, seed: int, out: Path, options
     compile` (CompileOptions `options`) of one file: (frame, model_dir); the bundle is out/bundle."""
     import torch
 
-    from ganlet.compile.data import load_frame, split_spans
+    from ganlet.compile.data import load_frame, split_spans, without_constant_channels
     from ganlet.compile.model import TeacherConfig
     from ganlet.compile.pipeline import compile_model
     from ganlet.compile.train import save_model, train
 
     torch.set_num_threads(1)
     frame = load_frame(path)
-    model = train(frame, split_spans(frame, train_rows, 0.2), replace(TeacherConfig(), seed=seed))
+    spans = split_spans(frame, train_rows, 0.2)
+    frame = without_constant_channels(frame, spans, named=False)[0]   # as `ganlet train` does
+    model = train(frame, spans, replace(TeacherConfig(), seed=seed))
     model_dir = save_model(model, out / "model")
     compile_model(model, out / "bundle", options, model_dir=model_dir)
     return frame, model_dir

@@ -99,14 +99,32 @@ def test_missing_file(tmp_path):
     assert not (tmp_path / "m").exists()
 
 
-def test_constant_channel(tmp_path, write_csv):
+def test_a_constant_channel_picked_by_default_is_left_out_with_a_note(tmp_path, write_csv,
+                                                                      config_file):
+    df = correlated_series(300)
+    df["setpoint"] = 4.0                               # a column that never moved in training
+    out = tmp_path / "m"
+    result = run("train", write_csv(df), "--out", out, "--config", config_file())
+    assert result.exit_code == 0, result.output
+    assert "note: channel 'setpoint' is constant over the training span (value 4): left out" \
+        in result.output
+    assert len(json.loads((out / "scaler.json").read_text())["center"]) == 3
+    summary = json.loads((out / "data_summary.json").read_text())
+    assert summary["channels"] == ["flow", "power", "temp"] and "setpoint" in summary["excluded"]
+
+
+def test_a_constant_channel_the_engineer_named_is_refused(tmp_path, write_csv):
     df = correlated_series(300)
     df["power"] = 4.0
-    result = run("train", write_csv(df), "--out", tmp_path / "m", "--quiet")
+    named = ("--channels", "flow,power,temp")
+    result = run("train", write_csv(df), "--out", tmp_path / "m", "--quiet", *named)
     assert_one_error_line(result, "channel 'power' is constant over the training span")
     assert result.stderr.count("\n") == 1
-    noisy = run("train", write_csv(df), "--out", tmp_path / "m")   # summary first, then the error
+    noisy = run("train", write_csv(df), "--out", tmp_path / "m", *named)   # summary, then error
     assert_one_error_line(noisy, "channel 'power' is constant")
+    df["flow"] = df["temp"] = 1.0
+    assert_one_error_line(run("train", write_csv(df), "--out", tmp_path / "m"),
+                          "every channel is constant over the training span")
 
 
 @pytest.mark.parametrize("period, fragment", [
