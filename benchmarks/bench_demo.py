@@ -10,10 +10,11 @@ in alert outside them (an alert running on after its incident counts there), eac
 incident's delay, whether the first alert's `moved` channel is one the incident moves
 (examples/pump_station.MOVES), and what opened it; then the totals. One seed is one draw: the
 README's demo figure is seed 7's, and a change to detection should be judged over several. The
-default draws were looked at while the detector was tuned, and so, since the CUSUM's hold on
-state changes, were 13 17 19 23; --seeds 29 31 37 41 were not (the README gives all three), so
-judge a change on those too, and keep them held out: tune on the others. Once a held-out draw
-has been looked at to find a rule, name a fresh set.
+default draws were looked at while the detector was tuned, and so were 13 17 19 23 (to find the
+CUSUM's state-change rule) and 29 31 37 41 (to choose its form). --seeds 43 47 53 59 were run
+only before and after that rule: judge a change on those too, and keep them held out: tune on
+the others. Once a held-out draw has been looked at to find or choose a rule, name a fresh set
+(docs/detection.md gives what each set showed).
 """
 
 from __future__ import annotations
