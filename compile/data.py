@@ -472,7 +472,7 @@ class RobustScaler:
         scale = (q75 - q25) / 1.349
         std = np.nanstd(values, axis=0)
         for j, name in enumerate(channels):
-            if not np.isfinite(std[j]) or std[j] <= 1e-12 * max(1.0, abs(center[j])):
+            if holds_one_value(std[j], center[j]):
                 what = "(its rate) is" if features[j] == "rate" else "is"
                 raise IntakeError(f"channel {name!r} {what} constant over the training span "
                                   f"(value {center[j]:g}); it carries no information — drop "
@@ -500,13 +500,18 @@ class RobustScaler:
                    features=d.get("features"))
 
 
+def holds_one_value(std: float, center: float) -> bool:
+    """A channel whose spread is nil against its level (or not known) carries no information."""
+    return not np.isfinite(std) or std <= 1e-12 * max(1.0, abs(center))
+
+
 def constant_channels(frame: Frame, span: tuple) -> dict:
-    """{name: value} of the channels that hold one value over `span` (RobustScaler.fit's test)."""
+    """{name: value} of the channels whose level holds one value over `span`."""
     values = frame.values[span[0]:span[1]]
     center = np.nanmedian(values, axis=0)
     std = np.nanstd(values, axis=0)
     return {name: float(center[j]) for j, name in enumerate(frame.channels)
-            if not np.isfinite(std[j]) or std[j] <= 1e-12 * max(1.0, abs(center[j]))}
+            if holds_one_value(std[j], center[j])}
 
 
 def without_constant_channels(frame: Frame, spans: Spans, named: bool) -> tuple:
@@ -523,7 +528,8 @@ def without_constant_channels(frame: Frame, spans: Spans, named: bool) -> tuple:
     keep = [j for j, name in enumerate(frame.channels) if name not in constant]
     notes = [f"channel {name!r} is constant over the training span (value {value:g}): left out, "
              "as it carries no information; if it moves in service, train on a history where "
-             "it moves, or name it in --channels to be told so" for name, value in constant.items()]
+             "it moves (named in --channels, it is refused instead)"
+             for name, value in constant.items()]
     report = replace(frame.report, channels=[frame.channels[j] for j in keep],
                      units=[frame.units[j] for j in keep],
                      excluded=frame.report.excluded + list(constant),

@@ -40,10 +40,10 @@ the largest normal error there is, so counted it carried the history's longest e
 set the limit (the demo's midday stops; windows holding a change are about a sixth of its
 hops), and on the gateway a stop's transient, added to a fault's evidence, crossed the limit
 after the fault had ended. Holding the evidence still instead (neither adding nor taking
-away) kept an alert open through the duty change after a fault, for an hour (docs/detection.md). The
-median and the allowance stay those of every hop, so a steady hop needs what it needed before
-to add evidence; the limit falls because the excursions lose their transients. A section
-without the key (bundles from before it) counts every hop's score.
+away) kept an alert open through the duty change after a fault, for an hour
+(docs/detection.md). The median and the allowance stay those of every hop, so a steady hop
+needs what it needed before to add evidence; the limit falls because the excursions lose their
+transients. A section without the key (bundles from before it) counts every hop's score.
 """
 
 import math
