@@ -43,6 +43,7 @@ rate = ["temp"]
 [[asset]]
 id = "broken"
 data = "broken.csv"
+channels = ["flow", "power", "temp"]
 """
 
 
@@ -54,7 +55,7 @@ def fleet_dir(tmp_path_factory):
     bravo.iloc[[100, 101]] = bravo.iloc[[101, 100]].to_numpy()   # intake warns: out of order
     bravo.to_csv(root / "bravo.csv", index=False)
     broken = correlated_series(900, seed=3)
-    broken["power"] = 4.2          # a constant channel: intake refuses it, naming the channel
+    broken["power"] = 4.2          # a constant channel it names: intake refuses it, naming it
     broken.to_csv(root / "broken.csv", index=False)
     (root / "fleet.toml").write_text(FLEET_TOML)
     return root
