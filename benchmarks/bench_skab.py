@@ -11,7 +11,9 @@ its own calibration, and the baselines under the same policy, budget and alert m
 FAR / MAR / ROC AUC pooled over every test row, per seed and their mean, and where the false
 alarms and misses sit: before or after a labelled incident in an alert that reaches it (the
 alert and the label disagree on the incident's edges), apart from any label, at an incident's
-onset, in an incident no alert reaches, or after its alert closed. --train-rows below 400
+onset, in an incident no alert reaches, or after its alert closed; and per file, the bundle's
+FAR and MAR and its share of every wrong row (do the errors spread, or sit in a few files?).
+--train-rows below 400
 trains on fewer rows and counts the same rows after 400: how much the figures lean on the
 training length (the held-out files' spans differ). The SKAB folder is test data beside the
 repository, not part of it.
@@ -80,12 +82,34 @@ def main() -> None:
     for name, rows in table.items():
         print(f"{'mean':>4}  {name:28s}  " + "  ".join(
             f"{np.mean([r['sites'][k] for r in rows]):7.3f}" for k in keys))
+    print_files(table)
     print("mean of seeds, reference rule for comparison: score > 99th percentile of the file's "
           "training scores, per row, no alert machine")
     for name, rows in table.items():
         mean = {key: float(np.mean([r["p99"][key] for r in rows])) for key in ("f1", "far", "mar")}
         print(f"{'p99':>4}  {name:28s}  {mean['f1']:6.3f}  {mean['far']:6.3f}  "
               f"{mean['mar']:6.3f}")
+
+
+def print_files(table: dict) -> None:
+    """Per file, the bundle's FAR and MAR (mean of seeds) and its share of all false-alarm and
+    missed rows: whether the errors spread over the files or sit in a few."""
+    bundle = next((name for name in table if name.startswith("bundle")), None)
+    if bundle is None:
+        return
+    runs = [r["files"] for r in table[bundle]]
+    false_all = sum(f["false"] for files in runs for f in files.values())
+    missed_all = sum(f["missed"] for files in runs for f in files.values())
+    print(f"mean of seeds, {bundle} per file: FAR and MAR in the file, and its share of every "
+          "false-alarm and missed row")
+    print(f"{'file':>6}  {'FAR':>6}  {'MAR':>6}  {'of false':>8}  {'of missed':>9}")
+    for name in runs[0]:
+        f = [files[name] for files in runs]
+        far = np.mean([x["false"] / max(1, x["normal"]) for x in f])
+        mar = np.mean([x["missed"] / max(1, x["labelled"]) for x in f])
+        print(f"{name:>6}  {far:6.3f}  {mar:6.3f}  "
+              f"{sum(x['false'] for x in f) / max(1, false_all):8.3f}  "
+              f"{sum(x['missed'] for x in f) / max(1, missed_all):9.3f}")
 
 
 if __name__ == "__main__":

@@ -87,7 +87,7 @@ def run_file(args) -> dict:
     mask[rows] = True
     r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir,
                  baselines=baselines)
-    return {"labels": labels[TRAIN_ROWS:],
+    return {"file": path.stem, "labels": labels[TRAIN_ROWS:],
             "alert": {m.name: m.alert[rows] for m in r.methods.values()},
             "score": {m.name: m.scores[rows] for m in r.methods.values()},
             "train_score": {m.name: m.scores[trained] for m in r.methods.values()}}
@@ -123,8 +123,17 @@ def pooled(outs: list) -> dict:
         normal, labelled = int((~y).sum()), int(y.sum())
         m["sites"] = {k: sum(r[k] for r in rows) / (normal if k in FALSE_ALARM_SITES
                                                      else labelled) for k in rows[0]}
+        m["files"] = {o.get("file", str(i)): per_file(o["labels"], o["alert"][name])
+                      for i, o in enumerate(outs)}
         metrics[name] = m
     return metrics
+
+
+def per_file(labels: np.ndarray, alert: np.ndarray) -> dict:
+    """One file's false-alarm and missed rows, and its normal and labelled rows."""
+    labels, alert = np.asarray(labels, bool), np.asarray(alert, bool)
+    return {"false": int((alert & ~labels).sum()), "normal": int((~labels).sum()),
+            "missed": int((~alert & labels).sum()), "labelled": int(labels.sum())}
 
 
 def check_train_rows(train_rows: int) -> None:
