@@ -41,13 +41,12 @@ from ganlet.compile.gateway import (
     run_bundle,
 )
 from ganlet.runtime.clock import JUMP, REFUSE, Timeline
-from ganlet.runtime.cusum import STATE_CHANGE_KEY
 from ganlet.runtime.detector import Detector, Judge
 from ganlet.runtime.intake import Dialect, RowError
 from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
 from ganlet.runtime.scorer import NetworkScorer, make_scorer
 from ganlet.runtime.sources import CsvSource
-from ganlet.runtime.thresholds import CUSUM_KEY, HELD_KEY
+from ganlet.runtime.thresholds import HELD_KEY
 
 STRICT = ("onnxruntime", "numpy")          # share the int8 weights with the device
 
@@ -150,10 +149,19 @@ class Replay:
     refused: dict
 
 
-def replay_feed(bundle: Bundle, scorer, feed: Path) -> Replay:
+def replay_feed(bundle: Bundle, scorer, feed: Path,
+                device_scores: Optional[dict] = None) -> Replay:
     """Feed a CSV through runtime.detector.Detector as `run.py stream --replay` does, with
-    `scorer`: the bundle's time zone, and jumps in time held until confirmed (clock.Timeline)."""
+    `scorer`: the bundle's time zone, and jumps in time held until confirmed (clock.Timeline).
+    With `device_scores` ({hop time in epoch milliseconds: score}) the Judge takes the device's
+    score at each of its hops instead of the scorer's, while drift, steps, state changes and
+    held readings still come from the rows: does the device's alert column follow from its
+    own scores?"""
     det = Detector(bundle, scorer)
+    if device_scores is not None:
+        judge_step = det.judge.step
+        det.judge.step = lambda t, score, *context: judge_step(
+            t, device_scores.get(round(t * 1000), score), *context)
     timeline = Timeline(bundle.period_s, bundle.max_gap_periods)
     refused = {}
     hops = []
@@ -398,30 +406,22 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
             device = read_scores(device_scores)
             check_scores_bundle(device, bundle.bundle_id, bundle.manifest["name"])
             source = f"device capture {device_scores}"
-        replays = {name: replay_feed(bundle, scorer, feed)
-                   for name, scorer in workstation_scorers(bundle, model_dir, notes).items()}
-    times = device["time"].to_numpy()
-    dev = {"score": device["score"].to_numpy(float), "threshold": device["threshold"].to_numpy(),
-           "alert": device["alert"].to_numpy(bool)}
+        times = device["time"].to_numpy()
+        dev = {"score": device["score"].to_numpy(float),
+               "threshold": device["threshold"].to_numpy(), "alert": device["alert"].to_numpy(bool)}
+        scorers = workstation_scorers(bundle, model_dir, notes)
+        replays = {name: replay_feed(bundle, scorer, feed) for name, scorer in scorers.items()}
+        # the device's own scores, judged with the context of the rows (the first scorer only
+        # supplies what the Judge needs beside the score)
+        own = replay_feed(bundle, next(iter(scorers.values())), feed,
+                          device_scores=dict(zip(epoch_ms(times), dev["score"])))
+    _note_alignment(notes, times, next(iter(replays.values())))
+    replay_agreement = float(np.mean(_at_device_hops(times, own)["alert"] == dev["alert"]))
+    _note_replay(notes, replay_agreement)
     series, pairs = {"device": dev}, {}
     for name, r in replays.items():
         series[name] = _at_device_hops(times, r)
         pairs[name] = compare(times, dev, series[name], tol, strict=name in STRICT)
-    _note_alignment(notes, times, next(iter(replays.values())))
-    _, replayed = replay_alerts(dev["score"], bundle.threshold_policy, bundle.alerting)
-    replay_agreement = float(np.mean(replayed == dev["alert"]))
-    if replay_agreement < 1.0:
-        why = ("an alert on a held reading, judged on the readings and not on the score, or "
-               if HELD_KEY in bundle.threshold_policy else "")
-        if (bundle.manifest.get("drift") or {}).get("alert_steps"):
-            why += "an alert on a level step, judged on the window levels, or "
-        if (bundle.threshold_policy.get(CUSUM_KEY) or {}).get(STATE_CHANGE_KEY):
-            why += ("a CUSUM that counts a window holding a change of operating state as "
-                    "normal, which the scores alone do not show, or ")
-        notes.append(f"replaying the device's own scores through the threshold policy and alert "
-                     f"machine reproduces its alert column on {replay_agreement:.2%} of hops "
-                     f"({why}a restart from a checkpoint mid-stream, or a different runtime, "
-                     "would explain a difference)")
     provenance = {"report": rep.workstation(), "bundle": rep.bundle_facts(bundle),
                   "data": rep.data_facts(data, bundle.time_column),
                   "device": rep.device_facts(device.attrs.get("provenance", {}), source)}
@@ -429,6 +429,19 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
                         times=times, series=series, pairs=pairs, tolerances=tol, notes=notes,
                         hops=len(times), device_replay_agreement=replay_agreement,
                         provenance=provenance)
+
+
+def _note_replay(notes: list, agreement: float) -> None:
+    if agreement < 1.0:
+        notes.append(f"replaying the device's own scores through the gateway's judge (with the "
+                     "drift, steps, state changes and held readings of DATA) reproduces its "
+                     f"alert column on {agreement:.2%} of hops (a restart from a checkpoint "
+                     "mid-stream, or a different runtime, would explain a difference)")
+
+
+def epoch_ms(times: np.ndarray) -> list:
+    """Naive UTC datetimes -> epoch milliseconds, the key replay_feed's device_scores takes."""
+    return [int(v) for v in np.asarray(times).astype("datetime64[ms]").astype(np.int64)]
 
 
 def _at_device_hops(times: np.ndarray, r: Replay) -> dict:

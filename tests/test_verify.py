@@ -61,21 +61,22 @@ def test_parity_passes_and_reports(built, tmp_path):
     assert result.passed, result.summary()
     assert result.pairs["onnxruntime"]["strict"] and not result.pairs["teacher"]["strict"]
     assert set(result.pairs["teacher"]["checks"]) == {"spearman"}
-    # the device's own scores through its threshold policy and alert machine give its alert
-    # column again, except while the alert the frozen temperature opened (held readings are
-    # judged on the readings, which a score series does not carry); the note says so
+    # the device's own scores through the gateway's judge, with the context of the rows, give
+    # its alert column again, the frozen temperature's alert included; a score series alone
+    # does not (held readings are judged on the readings): replayed without them, the alert
+    # column differs from the freeze on
     from ganlet.compile.verify import replay_alerts
     from ganlet.runtime.manifest import load_bundle
 
     policy = load_bundle(built["bundle"]).threshold_policy
     assert policy["held"]["limits"][2] is not None  # precondition: temp is watched
     device = result.series["device"]
-    _, replayed = replay_alerts(device["score"], policy, load_bundle(built["bundle"]).alerting)
-    differ = result.times[replayed != device["alert"]]
+    assert result.device_replay_agreement == 1.0
+    assert not any("replaying the device's own scores" in n for n in result.notes)
+    _, scores_only = replay_alerts(device["score"], policy, load_bundle(built["bundle"]).alerting)
+    differ = result.times[scores_only != device["alert"]]
     frozen_from = pd.Timestamp("2026-01-05") + pd.Timedelta(minutes=766)  # synthetic.inject
     assert len(differ) > 0 and (differ >= frozen_from).all()
-    assert result.device_replay_agreement == pytest.approx(1 - len(differ) / result.hops)
-    assert any("held reading" in n for n in result.notes)
     # the device's hops: one per sample once the window is full (hop 1 on this board)
     assert result.hops == 900 - TINY.window + 1
 
@@ -146,6 +147,19 @@ def drifted_capture(scores: Path, out: Path) -> Path:
     df.loc[k:k + 5, "score"] *= 1.01
     out.write_text("".join(head) + df.to_csv(index=False))
     return out
+
+
+def test_an_alert_column_its_own_scores_do_not_give_is_noted(built, tmp_path):
+    scores = run_bundle(built["bundle"], built["data"], tmp_path / "dev").scores
+    head = [ln for ln in scores.read_text().splitlines(keepends=True) if ln.startswith("#")]
+    df = pd.read_csv(scores, comment="#")
+    quiet = np.flatnonzero(df["alert"].to_numpy() == 0)[:9]
+    df.loc[quiet, "alert"] = 1                         # a device that alerts on its own
+    flipped = tmp_path / "flipped.csv"
+    flipped.write_text("".join(head) + df.to_csv(index=False))
+    result = verify(built["bundle"], built["data"], device_scores=flipped)
+    assert result.device_replay_agreement == pytest.approx(1 - 9 / result.hops)
+    assert any("reproduces its alert column on" in n for n in result.notes)
 
 
 def test_tampered_device_capture_fails(built, tmp_path):
