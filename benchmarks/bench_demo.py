@@ -1,6 +1,6 @@
 """Benchmark: the demo station's detection over several draws of its invented data (printed).
 
-    python benchmarks/bench_demo.py [--seeds 3 5 7 11] [--quick]
+    python benchmarks/bench_demo.py [--seeds 3 5 7 11] [--quick] [--keep DIR]
 
 Per seed, `ganlet demo`'s steps 1-4 (compile/demo.replay_on_gateway): invent the week with that
 seed, train the teacher on its normal span, compile for the default board, replay the test span
@@ -26,11 +26,12 @@ import warnings
 from pathlib import Path
 
 
-def one_seed(seed: int, quick: bool, out: Path) -> dict:
+def one_seed(seed: int, quick: bool, out: Path, reuse_model: bool = False) -> dict:
     from ganlet.compile.demo import incident_hits, moved_channel, replay_on_gateway
     from ganlet.examples.pump_station import MOVES
 
-    info, _, compiled, _, replay = replay_on_gateway(out, quick, seed, echo=lambda t: None)
+    info, _, compiled, _, replay = replay_on_gateway(out, quick, seed, echo=lambda t: None,
+                                                     reuse_model=reuse_model)
     hits, others = incident_hits(replay["alerts"], Path(info["incidents"]))
     rows = []
     for inc, found in hits:
@@ -65,13 +66,19 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--seeds", type=int, nargs="+", default=[3, 5, 7, 11])
     ap.add_argument("--quick", action="store_true", help="the demo's smoke-run training")
+    ap.add_argument("--keep", type=Path, default=None,
+                    help="work in DIR/SEED and keep it; a model trained there earlier with the "
+                         "same configuration is reused, so a change after training (compile, "
+                         "calibration, the gateway) is judged in a fraction of the time; after "
+                         "a change to training use a fresh DIR")
     a = ap.parse_args()
     warnings.simplefilter("ignore")  # the invented data's deliberate glitches
     totals = {"found": 0, "incidents": 0, "outside": 0, "right": 0, "delays": [], "minutes": 0}
     with tempfile.TemporaryDirectory(prefix="ganlet-demo-seeds-") as tmp:
         for seed in a.seeds:
             started = time.perf_counter()
-            r = one_seed(seed, a.quick, Path(tmp) / str(seed))
+            r = one_seed(seed, a.quick, (a.keep or Path(tmp)) / str(seed),
+                         reuse_model=a.keep is not None)
             found = [row for row in r["rows"] if row[1] is not None]
             print(f"seed {seed}: {len(found)} of {len(r['rows'])} incidents alerted, "
                   f"{r['outside']} alert(s) outside them, {r['minutes_outside']} min in alert "

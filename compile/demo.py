@@ -10,7 +10,7 @@ from __future__ import annotations
 import csv
 import json
 import time
-from dataclasses import replace
+from dataclasses import asdict, replace
 from pathlib import Path
 from typing import Callable
 
@@ -21,7 +21,14 @@ from ganlet.compile import verify as verify_mod
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.gateway import run_bundle
 from ganlet.compile.model import TeacherConfig
-from ganlet.compile.pipeline import CompileOptions, TrainOptions, compile_dir, train_from_file
+from ganlet.compile.pipeline import (
+    CompileOptions,
+    TrainOptions,
+    TrainResult,
+    compile_dir,
+    train_from_file,
+)
+from ganlet.compile.train import load_model
 from ganlet.examples import pump_station
 
 
@@ -60,9 +67,12 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     return summary
 
 
-def replay_on_gateway(out: Path, quick: bool, seed: int, echo: Callable[[str], None]) -> tuple:
+def replay_on_gateway(out: Path, quick: bool, seed: int, echo: Callable[[str], None],
+                      reuse_model: bool = False) -> tuple:
     """Steps 1-4: invent the data, train, compile for the default board and replay the test
-    span through the bundle's run.py; returns (info, trained, compiled, test_csv, replay)."""
+    span through the bundle's run.py; returns (info, trained, compiled, test_csv, replay).
+    reuse_model: a model already trained in out/model with the same configuration is kept
+    (benchmarks judging a change after training; a change to training needs a fresh `out`)."""
     out.mkdir(parents=True, exist_ok=True)
     echo("== 1. invented data: Hollowmere booster station, pump P2 (all values invented)")
     info = pump_station.generate(out / "data", seed=seed)
@@ -70,9 +80,13 @@ def replay_on_gateway(out: Path, quick: bool, seed: int, echo: Callable[[str], N
     echo(f"   {info['rows']} rows -> {info['data']}; incidents -> {info['incidents']}")
 
     echo("== 2. train the teacher on the normal span (until " + info["train_end"] + ")")
-    options = TrainOptions(train_until=info["train_end"], config=demo_config(quick, seed),
-                           seed=seed)
-    result = train_from_file(Path(info["data"]), out / "model", options, echo=echo)
+    config = demo_config(quick, seed)
+    asked = out / "model_asked.json"   # the configuration the kept model was trained with
+    result = kept_model(out / "model", asked, config) if reuse_model else None
+    if result is None:
+        options = TrainOptions(train_until=info["train_end"], config=config, seed=seed)
+        result = train_from_file(Path(info["data"]), out / "model", options, echo=echo)
+        asked.write_text(json.dumps(asdict(config)))
     echo("   " + result.describe())
 
     echo("== 3. compile for the default board")
@@ -88,6 +102,16 @@ def replay_on_gateway(out: Path, quick: bool, seed: int, echo: Callable[[str], N
     write_test_span(Path(info["data"]), info["test_start"], compiled.plan.window, test_csv)
     replay = replay_through_bundle(compiled.bundle, test_csv, out / "gateway")
     return info, result, compiled, test_csv, replay
+
+
+def kept_model(model_dir: Path, asked: Path, config: TeacherConfig):
+    """The TrainResult of a model trained earlier in model_dir with `config` (as recorded in
+    `asked`), else None."""
+    if not (asked.is_file() and (model_dir / "model.json").is_file()):
+        return None
+    if json.loads(asked.read_text()) != json.loads(json.dumps(asdict(config))):
+        return None
+    return TrainResult(load_model(model_dir), model_dir, 0.0)
 
 
 def write_reports(bundle: Path, model_dir: Path, info: dict, test_csv: Path, replay: dict,

@@ -99,6 +99,25 @@ def test_missing_file(tmp_path):
     assert not (tmp_path / "m").exists()
 
 
+def test_a_kept_model_is_reused_only_with_the_configuration_it_was_trained_with(
+        tmp_path, write_csv, config_file):
+    from dataclasses import asdict, replace
+
+    from ganlet.compile.demo import kept_model  # bench_demo.py --keep
+
+    out, asked = tmp_path / "model", tmp_path / "model_asked.json"
+    trained = run("train", write_csv(correlated_series(300)), "--out", out, "--config",
+                  config_file())
+    assert trained.exit_code == 0, trained.output
+    config = TeacherConfig(**TINY)
+    assert kept_model(out, asked, config) is None          # no record of how it was trained
+    asked.write_text(json.dumps(asdict(config)))
+    kept = kept_model(out, asked, config)
+    assert kept is not None and kept.out == out and kept.model.channels == ["flow", "power", "temp"]
+    assert kept_model(out, asked, replace(config, seed=config.seed + 1)) is None
+    assert kept_model(tmp_path / "elsewhere", asked, config) is None
+
+
 def test_a_constant_channel_picked_by_default_is_left_out_with_a_note(tmp_path, write_csv,
                                                                       config_file):
     df = correlated_series(300)
