@@ -12,8 +12,9 @@ incident's delay, whether the first alert's `moved` channel is one the incident 
 README's demo figure is seed 7's, and a change to detection should be judged over several. The
 default draws were looked at while the detector was tuned, and so were 13 17 19 23 (to find the
 CUSUM's state-change rule) and 29 31 37 41 (to choose its form). --seeds 43 47 53 59 were run
-only before and after that rule: judge a change on those too, and keep them held out: tune on
-the others. Once a held-out draw has been looked at to find or choose a rule, name a fresh set
+only before and after that rule, and 61 67 71 73 79 83 89 97 101 103 107 109 only once, to
+measure the detector as it stood (stop 28): judge a change on those too, and keep them held
+out: tune on the others. Once a held-out draw has been looked at to find or choose a rule, name a fresh set
 (docs/detection.md gives what each set showed).
 """
 
