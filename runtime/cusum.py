@@ -13,7 +13,9 @@ CUSUM (Page, Biometrika 1954) accumulates the evidence of such a hold:
   decile adds evidence, any lower hop takes it away, so on normal data S returns to 0 within a
   few hops of every excursion;
 - limit: the evidence passed once per the budget's share of alarms, fitted by POT (a GPD on
-  the history's excursion peaks above their median, as the threshold's own tail, thresholds.py);
+  the history's excursion peaks above their median, as the threshold's own tail, thresholds.py;
+  a fitted tail heavier than exponential is extrapolated as exponential, tail_fit), and never
+  below the largest excursion peak of the history, which is normal;
 - CAP = 2: a long fault's evidence stops at twice the limit, so the alert it holds open closes
   about limit / allowance normal hops after the fault ends (a normal hop takes the allowance
   away on average); without a cap the demo's hours-long bearing wear held its alert open over
@@ -51,7 +53,7 @@ from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
-from .thresholds import CUSUM_KEY, _num, fit_gpd, pot_quantile
+from .thresholds import CUSUM_KEY, _num, pot_quantile, tail_fit
 
 CAP = 2.0                    # evidence stops at CAP x limit (see above)
 ALLOWANCE_QUANTILE = 0.9     # the normal score quantile a hop must pass to add evidence
@@ -169,10 +171,11 @@ def calibrate_cusum(pieces: Sequence[np.ndarray], risk: float,
     excesses = peaks[peaks > u] - u
     if excesses.size == 0:
         return cusum_off("every excursion of the evidence peaks alike", peaks.size)
-    xi, sigma = fit_gpd(excesses)
+    xi, sigma = tail_fit(excesses)
     chance = risk * scores.size / peaks.size  # exceedances allowed per excursion
     limit = pot_quantile(u, xi, sigma, chance, int(peaks.size), int(excesses.size))
-    section = {"median": median, "allowance": allowance, "limit": max(limit, u)}
+    # the history is normal: a limit one of its own excursions passed would have alarmed on it
+    section = {"median": median, "allowance": allowance, "limit": max(limit, float(peaks.max()))}
     if state_changes is not None:
         section[STATE_CHANGE_KEY] = True
     return {"section": section, "excursions": int(peaks.size), "why_off": None}
