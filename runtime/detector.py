@@ -17,6 +17,9 @@ Per row (Detector.feed):
   - m missing periods with m <= max_gap_periods -> the m rows are filled by linear
     interpolation in raw units; more -> the window is reset, a "gap" event is emitted and
     scoring waits until the ring is full again;
+  - a blank cell (NaN) is held from the channel's last reading for up to max_gap_periods rows;
+    a longer blank loses the channel and the score goes on without it (blanks.py); a row with
+    every cell blank is rejected "missing_value";
   - each channel's feature (its level, or its rate: features.py; a rate needs the row before,
     so after a start or a gap the first row only primes it), scaled (f - center) / scale into
     the ring; every `hop` new rows once the ring is full, exactly one window is scored;
@@ -44,6 +47,7 @@ from .alerts import (
     WARMED_UP,
     AlertMachine,
 )
+from .blanks import BlankCells
 from .cusum import Cusum
 from .drift import DriftMonitor, window_level
 from .held import HeldReadings
@@ -60,6 +64,7 @@ COUNTERS = (
     "lines",  # data lines read (after the header)
     "blank_lines",
     "samples",  # accepted input rows
+    "blank_cells",  # channel cells blank in accepted rows (blanks.py)
     "interpolated",  # samples filled in across short gaps
     "gaps",  # long gaps that reset the window
     "hops",  # windows scored
@@ -287,6 +292,8 @@ class Detector:
         # only a CUSUM that counts state changes as normal needs them (cusum.py)
         cusum = self.judge.cusum
         self.watch_state_changes = cusum is not None and cusum.state_change_as_median
+        self.blanks = BlankCells(bundle.channels, bundle.max_gap_periods,
+                                 bundle.window + int(bundle.rate.any()))
         self.counters = {k: 0 for k in COUNTERS}
         self.errors = {}  # type: Dict[str, int]  # rejected rows by kind (the service counts)
         self.last_time = None  # type: Optional[float]
@@ -299,10 +306,13 @@ class Detector:
             "ring": self.ring.state(),
             "judge": self.judge.state(),
             "drift": self.drift.state() if self.drift is not None else None,
+            "blanks": self.blanks.state(),
             "counters": dict(self.counters),
             "errors": dict(self.errors),
             "last_time": self.last_time,
-            "last_raw": None if self.last_raw is None else [float(v) for v in self.last_raw],
+            # a lost channel's cell is NaN, kept as null: the checkpoint stays strict JSON
+            "last_raw": None if self.last_raw is None else [finite_or_none(v)
+                                                            for v in self.last_raw],
         }
 
     def restore(self, d: dict) -> None:
@@ -310,21 +320,29 @@ class Detector:
         self.judge.restore(d["judge"])
         if self.drift is not None:
             self.drift.restore(d["drift"])
+        self.blanks.restore(d.get("blanks"))
         self.counters.update(d["counters"])
         self.errors.update(d["errors"])
         self.last_time = d["last_time"]
-        self.last_raw = None if d["last_raw"] is None else np.asarray(d["last_raw"], np.float64)
+        self.last_raw = None if d["last_raw"] is None else np.asarray(
+            [np.nan if v is None else v for v in d["last_raw"]], np.float64)
 
     # ------------------------------------------------------------------ rows
     def feed(self, t: float, values: Sequence[float]) -> List[dict]:
         """One parsed row. Raises RowError for rows it refuses (nothing changes then)."""
         self._check_order(t)
         raw = np.asarray(values, dtype=np.float64)
+        blank = int(np.isnan(raw).sum())
+        if blank == len(raw):
+            raise RowError("missing_value", "every channel is blank")
         grid, gap = self._grid_rows(t, raw)
-        rows = self._scaled_rows(grid, None if gap else self.last_raw)
+        last = None if gap else self.last_raw
+        filled, blank_events, blanks_after = self.blanks.plan(grid, last, format_time)
+        rows = self._scaled_rows(filled, last)
         # the row is accepted: from here on the state changes
         events = []
         self.counters["samples"] += 1
+        self.counters["blank_cells"] += blank
         if gap:
             self.counters["gaps"] += 1
             events.append({
@@ -338,11 +356,13 @@ class Detector:
             if self.drift is not None:
                 self.drift.reset()
         self.counters["interpolated"] += len(rows) - 1
+        self.blanks.commit(blanks_after)
+        events += blank_events
         for (tk, x), (_, r) in zip(rows, grid):
-            self.judge.see(r)
+            self.judge.see(r)  # blank cells as NaN: they neither hold nor move a reading
             if x is not None:
                 events += self._push(x, tk)
-        self.last_raw = raw
+        self.last_raw = filled[-1][1]
         self.last_time = t
         return events
 
@@ -380,21 +400,21 @@ class Detector:
                    previous + (raw - previous) * (k / steps)) for k in range(1, steps)]
         return filled + [(t, raw)], 0
 
-    def _scaled_rows(self, grid, previous):
+    def _scaled_rows(self, filled, previous):
         """(time, scaled features or None while a rate channel has no previous row) per grid
-        row; RowError when a value is absurdly far out."""
+        row (time, raw, channels left out); RowError when a value is absurdly far out."""
         rows = []
-        for tk, r in grid:
+        for tk, r, left_out in filled:
             f = features.row(r, previous, self.bundle.rate)
             previous = r
-            known = ~np.isnan(f)
             x = self.bundle.scaled(f)
+            known = ~np.isnan(x)  # a lost channel's cell stays NaN: each hop fills it
             if not (np.abs(x[known]) <= MAX_SCALED_ABS).all():  # also float32 overflow (inf)
                 raise RowError(
                     "out_of_range",
                     f"a value is more than {MAX_SCALED_ABS:g} scale units from center",
                 )
-            rows.append((tk, x if known.all() else None))
+            rows.append((tk, x if (known | left_out).all() else None))
         return rows
 
     def _push(self, row: np.ndarray, t: float) -> List[dict]:
@@ -406,21 +426,27 @@ class Detector:
 
     def _hop(self, t: float, window: np.ndarray) -> List[dict]:
         """Score one window: drift re-centring, network, score rule, then the Judge."""
+        left_out = self.blanks.left_out
+        live = ~left_out if left_out.any() else None
+        if live is not None and not live.any():
+            return []  # nothing left to score until a channel rejoins
+        if np.isnan(window).any():
+            window = self.rule.fill(window)
         means = window.mean(axis=0, dtype=np.float64)
         drift_events, drifting, steps, levels = [], False, None, None
         if self.drift is not None:
             levels = window_level(window)
             offset, drift_events, steps = self.drift.step(format_time(t), levels,
-                                                          self.judge.alert_channels())
+                                                          self.judge.alert_channels(), left_out)
             drifting = bool(offset.any())
             if drifting:
                 window = (window - offset).astype(np.float32)
                 means = means - offset
         recon = self.scorer.reconstruct(window[None])
         residuals = self.rule.residuals(window[None], recon)
-        scores, parts = self.rule.apply(residuals, means[None])
+        scores, parts = self.rule.apply(residuals, means[None], live)
         change = self.watch_state_changes and bool(self.rule.state_changes(
-            means[None], piece_means(window[None], self.rule.steps))[0])
+            means[None], piece_means(window[None], self.rule.steps), live)[0])
         self.counters["hops"] += 1
         self.last_hop = {"time": t, "window": window, "means": means, "residuals": residuals[0],
                          "score": float(scores[0]), "parts": parts[0], "state_change": change}
@@ -430,12 +456,13 @@ class Detector:
             if e["event"] == "alert_opened":
                 e["moved"] = self.judge.alert["moved"] = self._moved(
                     self.judge.alert["opened_by"], window, recon, float(scores[0]), steps,
-                    levels)
+                    levels, live)
             if e["event"] in ("alert_opened", "alert_closed"):
                 self.counters["alerts_" + e["event"].split("_")[1]] += 1
         return events + drift_events
 
-    def _moved(self, opened_by: str, window, recon, score: float, steps, levels) -> dict:
+    def _moved(self, opened_by: str, window, recon, score: float, steps, levels,
+               live=None) -> dict:
         """The alert's `moved` channel: the held reading's, the step's (its window level as the
         drift monitor saw it, before any re-centring), or the network's."""
         if opened_by == BY_HELD:
@@ -444,9 +471,9 @@ class Detector:
             c = int(np.argmax(steps))
             return {"name": self.judge.channels[c], "unit": self.judge.units[c],
                     **self.drift.departure(levels, c), "score": finite_or_none(score)}
-        return self.moved(window, recon, score)
+        return self.moved(window, recon, score, live)
 
-    def moved(self, window: np.ndarray, recon: np.ndarray, score: float) -> dict:
+    def moved(self, window: np.ndarray, recon: np.ndarray, score: float, live=None) -> dict:
         """The channel whose newest scored steps, replaced by the network's own reconstruction
         of them, lower the score most (one forward pass per channel, at an alert's opening).
         A reconstruction error spreads to the channels the latent can no longer explain, so
@@ -457,8 +484,8 @@ class Detector:
         trial = np.repeat(window[None], window.shape[1], axis=0)
         for c in range(window.shape[1]):
             trial[c, -steps:, c] = recon[0, -steps:, c]
-        without = self.rule.score(trial, self.scorer.reconstruct(trial))[0]
-        c = int(np.argmin(without))
+        without = self.rule.score(trial, self.scorer.reconstruct(trial), live)[0]
+        c = int(np.argmin(np.where(live, without, np.inf) if live is not None else without))
         return {"name": self.judge.channels[c], "unit": self.judge.units[c],
                 "score_without": finite_or_none(float(without[c])),
                 "score": finite_or_none(score)}

@@ -144,17 +144,21 @@ class DriftMonitor:
         return {"excess": round(float(self.excess(levels)[c]), 6),
                 "side": "above" if levels[c] > self.hi[c] else "below"}
 
-    def step(self, time_text: str, levels, blocked) -> tuple:
+    def step(self, time_text: str, levels, blocked, left_out=None) -> tuple:
         """One scored hop, given the window's levels [C]: (offset [C] to subtract from the
         window, events, steps [C]: each channel's excess in MARGINs where it is a step and
-        alert_steps is on, else 0)."""
-        m = np.asarray(levels, dtype=np.float64)
+        alert_steps is on, else 0). A channel `left_out` (blanks.py) is not watched: its state
+        stays as it was and its level counts as its last one."""
+        m = np.array(levels, dtype=np.float64)
+        frozen = np.zeros(len(m), dtype=bool) if left_out is None else np.asarray(left_out)
+        if frozen.any() and self.past:
+            m[frozen] = self.past[-1][frozen]
         full = len(self.past) == self.past.maxlen
         speed = np.abs(m - self.past[0]) if full else np.full(len(m), np.inf)
         self.past.append(m)
         e = self.excess(m)
         events = []
-        for c in range(len(m)):
+        for c in np.flatnonzero(~frozen):
             if self.in_drift[c]:
                 self.outside[c] += 1
                 self.inside[c] = self.inside[c] + 1 if e[c] <= 0 else 0
@@ -179,8 +183,9 @@ class DriftMonitor:
                                "time": time_text, "since": self.since[c],
                                **self.departure(m, c),
                                "action": ACTION_TEXT[self.action] + "; " + OPERATOR_ACTION})
-        offset = np.where(self.in_drift & self.recentre, np.where(m > self.hi, e, -e), 0.0)
-        return offset, events, self._steps(e)
+        offset = np.where(self.in_drift & self.recentre & ~frozen,
+                          np.where(m > self.hi, e, -e), 0.0)
+        return offset, events, np.where(frozen, 0.0, self._steps(e))
 
     def _steps(self, e: np.ndarray) -> np.ndarray:
         """Excess in MARGINs of the channels that are steps this hop (0 elsewhere)."""

@@ -52,6 +52,8 @@ EVENTS = (
     "alert_opened",
     "alert_closed",
     "gap",  # a long gap reset the window
+    "channel_lost",  # a channel's cells stayed blank past max_gap_periods: scored without it
+    "channel_back",  # a lost channel reads again; it rejoins the score after a window
     "drift",  # a channel slowly left its training range and is re-centred (drift.py)
     "drift_ended",  # a reported drift is over: back inside the range, or moving too fast
     "time_jump",  # the feed's times jumped and enough rows confirmed it (clock.py): from, to

@@ -71,11 +71,15 @@ class HeldReadings:
         return cls(limits)
 
     def add(self, row: Sequence[float]) -> None:
-        """One grid row's readings (raw units)."""
+        """One grid row's readings (raw units; NaN where a cell is blank: it ends the run and
+        starts none, as in run_lengths)."""
         for c, limit in enumerate(self.limits):
             if limit is None:
                 continue
             v = float(row[c])
+            if math.isnan(v):
+                self.runs[c], self.last[c] = 0, None
+                continue
             self.runs[c] = self.runs[c] + 1 if v == self.last[c] else 1
             self.last[c] = v
 

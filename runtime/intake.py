@@ -54,7 +54,7 @@ REJECT_KINDS = (
     "bad_encoding",  # not UTF-8, or a NUL / carriage return inside the line
     "column_count",  # fewer or more cells than the header
     "bad_time",  # time cell empty or not a time we read (see the docstring)
-    "missing_value",  # a channel cell is empty
+    "missing_value",  # every channel cell is blank (one blank cell is read as NaN: blanks.py)
     "non_numeric",  # a channel cell is not a number
     "non_finite",  # NaN or +-inf
     "out_of_range",  # finite, but absurdly far from the scaler's center (service)
@@ -66,6 +66,11 @@ REJECT_KINDS = (
     "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
+# Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
+# gateway reads a file's gaps as the workstation did when it trained on such a file.
+BLANK_CELLS = frozenset((
+    "", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
+    "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"))
 
 
 class RowError(Exception):
@@ -127,8 +132,9 @@ class Dialect:
             raise RowError("bad_time", str(exc)) from None
 
     def number(self, name: str, cell: str) -> float:
-        if not cell:
-            raise RowError("missing_value", f"channel {name!r} is empty")
+        """A channel cell's value; NaN for a blank cell (BLANK_CELLS)."""
+        if cell in BLANK_CELLS:
+            return math.nan
         text = cell.replace(",", ".") if self.decimal == "," else cell
         try:
             v = float(text)
@@ -202,7 +208,10 @@ class Header:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")
         t = self.dialect.time(cells[self.time_index])
         number = self.dialect.number
-        return t, [number(name, cells[i]) for name, i in zip(self.channels, self.channel_index)]
+        values = [number(name, cells[i]) for name, i in zip(self.channels, self.channel_index)]
+        if all(math.isnan(v) for v in values):
+            raise RowError("missing_value", "every channel cell is blank")
+        return t, values
 
 
 def _check_columns(cells: List[str], time_column: str, channels: Sequence[str]) -> None:

@@ -235,7 +235,7 @@ class Topics:
 # ---------------------------------------------------------------------- sample messages
 def _number(name: str, value) -> float:
     if value is None:
-        raise RowError("missing_value", f"channel {name!r} is null")
+        return math.nan  # a blank reading (blanks.py)
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise RowError("non_numeric", f"channel {name!r}: {str(value)[:40]!r}")
     v = float(value)
@@ -266,15 +266,13 @@ def sample_record(item, channels: List[str], lineno: int) -> Record:
         return Record(lineno, time=t, error=RowError(
             "bad_message", "a sample needs a 'values' object {channel: number}"))
     try:
-        row = [_number(name, values[name]) if name in values else _missing(name)
-               for name in channels]
+        row = [_number(name, values.get(name)) for name in channels]
     except RowError as exc:
         return Record(lineno, time=t, error=exc)
+    if all(math.isnan(v) for v in row):  # null or absent: a blank reading (blanks.py)
+        return Record(lineno, time=t, error=RowError(
+            "missing_value", f"no channel of {channels[:5]} has a number"))
     return Record(lineno, time=t, values=row)
-
-
-def _missing(name: str) -> float:
-    raise RowError("missing_value", f"channel {name!r} is absent")
 
 
 def message_records(payload: bytes, channels: List[str], first_lineno: int) -> List[Record]:

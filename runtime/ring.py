@@ -2,7 +2,7 @@
 
 push() writes one row in place (no allocation per sample); window() returns the rows oldest
 first. `filled` counts rows pushed since the last reset, so the service knows when the ring is
-full and when a hop is due.
+full and when a hop is due. A lost channel's cell is NaN (blanks.py); each hop fills it.
 """
 
 
@@ -40,19 +40,24 @@ class Ring:
         self.filled = 0
 
     def state(self) -> dict:
-        # float32 -> float (exactly representable as a double) keeps the checkpoint JSON exact
+        # float32 -> float (exactly representable as a double) keeps the checkpoint JSON exact;
+        # a lost channel's cell (NaN, blanks.py) is null
+        rows = [[None if v != v else v for v in row] for row in self.buf.astype(float).tolist()]
         return {
             "size": self.size,
             "n_channels": self.n_channels,
             "next": self.next,
             "filled": self.filled,
-            "rows": self.buf.astype(float).tolist(),
+            "rows": rows,
         }
 
     @classmethod
     def from_state(cls, d: dict) -> "Ring":
         ring = cls(d["size"], d["n_channels"])
-        rows = np.asarray(d["rows"], dtype=np.float32)
+        if not (isinstance(d["rows"], list) and all(isinstance(r, list) for r in d["rows"])):
+            raise ValueError("ring state rows must be a list of rows")
+        rows = np.asarray([[np.nan if v is None else v for v in row] for row in d["rows"]],
+                          dtype=np.float32)
         if rows.shape != ring.buf.shape:
             raise ValueError(f"ring state has shape {rows.shape}, expected {ring.buf.shape}")
         ring.buf[:] = rows

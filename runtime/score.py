@@ -29,6 +29,13 @@ counts as much as a noisy one's and the score has one scale in every regime:
 A channel's share in an alert is its share of the summed contributions over the alert's hops:
 the squared parts for rms (they add up to the squared score), the parts otherwise.
 
+A channel left out (its transmitter lost, blanks.py) has part 0, as if it were reconstructed
+exactly, and the regime is the one the others sit nearest. Its 0 stays in the combination (the
+rms still divides by every channel): a fault on another channel scores as it would with the
+channel there, and the score of normal running is a little lower, never higher; dividing by
+the channels left instead raised a one-channel excursion by sqrt(C / (C - 1)) (1.15 on the
+demo's four channels) and opened an alert on a stop after a dead transmitter came back.
+
 A window holds a change of operating state when one of its pieces of k steps (counted back from
 the newest) sits nearest another regime than the whole window (`state_changes`): a start, a
 stop, a duty change inside the window. The score is the same on such windows; only the CUSUM
@@ -109,34 +116,56 @@ class ScoreRule:
             res = res + np.float32(err.shape[1]) * offset * offset
         return res
 
-    def score(self, windows, recon) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def score(self, windows, recon, live=None) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(scores [N], parts [N, C], residuals [N, C]) of windows and their reconstructions;
         the regime comes from the windows' per-channel means."""
         res = self.residuals(windows, recon)
-        scores, parts = self.apply(res, np.asarray(windows, np.float64).mean(axis=1))
+        scores, parts = self.apply(res, np.asarray(windows, np.float64).mean(axis=1), live)
         return scores, parts, res
 
-    def regime(self, means) -> np.ndarray:
-        """The nearest regime centre to each window's per-channel means [N, C] -> [N]."""
+    def regime(self, means, live=None) -> np.ndarray:
+        """The nearest regime centre to each window's per-channel means [N, C] -> [N], over
+        the `live` channels (all when None)."""
         m = np.asarray(means, dtype=np.float64)
         if self.centres is None or len(self.centres) == 1:
             return np.zeros(len(m), dtype=np.int64)
-        d = ((m[:, None, :] - self.centres[None, :, :]) ** 2).sum(axis=2)
+        centres = self.centres
+        if live is not None:
+            m, centres = m[:, live], centres[:, live]
+        d = ((m[:, None, :] - centres[None, :, :]) ** 2).sum(axis=2)
         return np.argmin(d, axis=1)
 
-    def state_changes(self, means, pieces) -> np.ndarray:
+    def fill(self, window) -> np.ndarray:
+        """The window [L, C] with its lost cells (NaN, blanks.py) filled: each row's at the
+        centre of the regime that row's known channels sit nearest, so the network sees the lost
+        channel follow the starts and stops the others show; the scaler's centre (0) without
+        regimes."""
+        w = np.array(window, dtype=np.float32)
+        lost = np.isnan(w)
+        if self.centres is None:
+            w[lost] = 0.0
+            return w
+        for t in np.flatnonzero(lost.any(axis=1)):
+            known = ~lost[t]
+            g = self.regime(w[t][None].astype(np.float64), known)[0]
+            w[t, lost[t]] = self.centres[g, lost[t]]
+        return w
+
+    def state_changes(self, means, pieces, live=None) -> np.ndarray:
         """Whether each window holds a change of operating state: one of its pieces (piece_means)
         sits nearest another regime than the whole window's per-channel means [N, C] -> [N].
         Never without regimes. The CUSUM (cusum.py) counts such windows as its median."""
         p = np.asarray(pieces, dtype=np.float64)
-        whole = self.regime(means)
+        whole = self.regime(means, live)
         if self.centres is None or len(self.centres) == 1 or p.shape[1] == 0:
             return np.zeros(len(whole), dtype=bool)
         n, count, channels = p.shape
-        each = self.regime(p.reshape(n * count, channels)).reshape(n, count)
+        each = self.regime(p.reshape(n * count, channels), live).reshape(n, count)
         return (each != whole[:, None]).any(axis=1)
 
-    def apply(self, residuals, means=None) -> Tuple[np.ndarray, np.ndarray]:
+    def apply(self, residuals, means=None, live=None) -> Tuple[np.ndarray, np.ndarray]:
+        """(scores, parts) of residuals [N, C]; `live` [C]: the channels whose parts count (all
+        when None); the others' parts are 0, as if reconstructed exactly (blanks.py)."""
         res = np.asarray(residuals, dtype=np.float32)
         if res.ndim != 2:
             raise ValueError(f"residuals must have shape [N, C], got {res.shape}")
@@ -146,7 +175,9 @@ class ScoreRule:
             if means is None:
                 raise ValueError("a calibrated score needs the windows' per-channel means")
             u = np.sqrt(np.maximum(res.astype(np.float64), 0.0))
-            parts = (u / self.scale[self.regime(means)]).astype(np.float32)
+            parts = (u / self.scale[self.regime(means, live)]).astype(np.float32)
+        if live is not None and not live.all():
+            parts = np.where(live, parts, np.float32(0.0)).astype(np.float32)
         return combine(parts, self.combine), parts
 
     def contributions(self, parts) -> np.ndarray:

@@ -86,6 +86,19 @@ def write_csv(path, values: np.ndarray, times: Optional[Sequence[float]] = None,
     return lines
 
 
+def blank_out(path, rows: Sequence[int], channel: int, cell: str = "") -> None:
+    """Rewrite a write_csv file with `channel` (index in CHANNELS order) written as `cell` on
+    data rows `rows` (0 = the first data row): a transmitter that stopped sending."""
+    lines = Path(path).read_text().splitlines()
+    rows = set(rows)
+    for k in range(1, len(lines)):
+        if k - 1 in rows:
+            cells = lines[k].split(",")
+            cells[1 + channel] = cell
+            lines[k] = ",".join(cells)
+    Path(path).write_text("\n".join(lines) + "\n")
+
+
 def windows_of(x: np.ndarray, window: int, hop: int) -> np.ndarray:
     """Every hop-th window of length `window` (stream order), [N, L, C]."""
     starts = range(0, len(x) - window + 1, hop)

@@ -30,8 +30,10 @@ def bundle_and_feed(tmp_path_factory):
     folder = tmp_path_factory.mktemp("gateways")
     bundle = fx.build_bundle(folder / "bundle")
     feed = folder / "feed.csv"
-    # one injected fault so the scores span normal and anomalous windows
+    # one injected fault so the scores span normal and anomalous windows; the vibration
+    # transmitter silent on rows 40-89, so the blank-cell path (runtime/blanks.py) runs too
     fx.write_csv(feed, fx.raw_values(N_ROWS, anomalies=[(120, 12, 0, 7.0)]))
+    fx.blank_out(feed, range(40, 90), channel=2)
     return bundle, feed
 
 

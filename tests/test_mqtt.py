@@ -9,6 +9,7 @@ samples from a CSV file: alerts, the SQLite store and the scores file must come 
 """
 
 import json
+import math
 import os
 import pwd
 import shutil
@@ -278,7 +279,7 @@ def test_sample_messages_parse_and_reject_by_kind():
         {"time": 1709251201, "values": {"flow": 1, "pressure": 2, "vibration": None}},
         {"time": "yesterday", "values": {"flow": 1, "pressure": 2, "vibration": 3}},
         {"time": 1709251203, "values": {"flow": "1", "pressure": 2, "vibration": 3}},
-        {"time": 1709251204, "values": {"flow": 1, "pressure": 2}},
+        {"time": 1709251204, "values": {"flow": None}},
         {"time": 1709251205, "values": [1, 2, 3]},
         "flow=1",
     ]).encode() + b"", NAMES, first_lineno=7)
@@ -286,10 +287,14 @@ def test_sample_messages_parse_and_reject_by_kind():
     # (worked out by hand: 19783 days x 86400 s)
     assert recs[0].time == 1709251200.0 and recs[0].values == [1.0, 2.5, 3.0]
     kinds = [r.error.kind if r.error else None for r in recs]
-    assert kinds == [None, "missing_value", "bad_time", "non_numeric", "missing_value",
+    assert kinds == [None, None, "bad_time", "non_numeric", "missing_value",
                      "bad_message", "bad_message"]
     assert [r.lineno for r in recs] == list(range(7, 14))
-    assert recs[1].time == 1709251201.0  # a rejected sample keeps its time (resume skipping)
+    # a null channel is a blank reading, as an absent one is: the row goes on without it
+    assert recs[1].values[:2] == [1.0, 2.0] and math.isnan(recs[1].values[2])
+    absent = message_records(b'{"time": 1, "values": {"flow": 1}}', NAMES, 1)[0]
+    assert absent.error is None and [math.isnan(v) for v in absent.values] == [False, True, True]
+    assert recs[4].time == 1709251204.0  # a rejected sample keeps its time (resume skipping)
     # Python's json module reads NaN (not RFC 8259 JSON, but senders emit it): refused
     nan = message_records(b'{"time": 1, "values": {"flow": NaN, "pressure": 1, "vibration": 1}}',
                           NAMES, 1)
@@ -362,7 +367,7 @@ def test_feed_in_alerts_out_match_the_csv_run(setup, broker, tmp_path, capsys):
     t0 = time.monotonic()
     sent = feeder.send(values[:300], 0)
     feeder.send_raw("{not json")  # rejected: counted and reported, the stream goes on
-    feeder.send_raw(json.dumps({"time": format_time(fx.T0 + 300), "values": {"flow": 1.0}}))
+    feeder.send_raw(json.dumps({"time": format_time(fx.T0 + 300), "values": {"flow": None}}))
     sent += 2 + feeder.send(values[300:], 300, batch=10)  # arrays of 10 samples too
     wait_until(lambda: processed_all(hmi, N_ROWS), what="every sample to be scored")
     elapsed = time.monotonic() - t0

@@ -1,0 +1,219 @@
+"""Blank cells (runtime/blanks.py): one channel's reading missing while the others arrive.
+
+The gateway must keep detecting on the channels it still has: a short blank is held from the
+channel's last reading, a long one loses the channel (one `channel_lost` event) and the score
+goes on without it until a whole window holds its readings again (`channel_back`)."""
+
+import json
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+import runtime_fixtures as fx
+from test_stream import HOP, WINDOW, of, stream
+
+from ganlet.runtime.blanks import BlankCells
+from ganlet.runtime.detector import Detector
+from ganlet.runtime.held import HeldReadings
+from ganlet.runtime.intake import BLANK_CELLS, Dialect, format_time
+from ganlet.runtime.lstm import Network
+from ganlet.runtime.manifest import load_bundle
+from ganlet.runtime.score import ScoreRule, score_section
+from ganlet.runtime.scorer import make_scorer
+from ganlet.runtime.weights import load_weights
+
+MAX_GAP = 3  # the fixture bundle's max_gap_periods
+VIB = 2  # vibration, the channel that goes blank
+
+
+@pytest.fixture(scope="module")
+def bundle_dir(tmp_path_factory):
+    return fx.build_bundle(tmp_path_factory.mktemp("b") / "bundle", window=WINDOW, hop=HOP,
+                           max_gap_periods=MAX_GAP)
+
+
+def write_with_blanks(path, values, blank_rows, cell=""):
+    """The fixture CSV with vibration written as `cell` on blank_rows."""
+    fx.write_csv(path, values)
+    fx.blank_out(path, blank_rows, VIB, cell)
+
+
+def written_out_scores(bundle_dir, x, left_out_from=None, rejoin_at=None):
+    """Scores computed here for every hop of x [T, C] (scaled, NaN where the channel is lost),
+    the rule written out: the network sees a lost cell at 0 (the scaler's centre: the fixture's
+    score has no regimes); a hop whose newest row is at or after left_out_from and before
+    rejoin_at counts its residual as 0 in the mean over all channels ("mean" combine)."""
+    net = Network(load_weights(bundle_dir / "weights.npz"))
+    rule = ScoreRule(score_section())
+    scores = []
+    for end in range(WINDOW, len(x) + 1, HOP):
+        w = x[end - WINDOW:end].copy()
+        newest = end - 1
+        left_out = (left_out_from is not None and newest >= left_out_from
+                    and (rejoin_at is None or newest < rejoin_at))
+        w = np.nan_to_num(w, nan=0.0)
+        res = rule.residuals(w[None], net.reconstruct(w[None]))[0]
+        if left_out:
+            res[VIB] = 0.0
+        scores.append(float(np.mean(res)))
+    return np.asarray(scores)
+
+
+def test_a_short_blank_is_held_from_the_last_reading(bundle_dir, tmp_path):
+    values = fx.raw_values(120, seed=21)
+    write_with_blanks(tmp_path / "a.csv", values, range(60, 60 + MAX_GAP))
+    events, df, _ = stream(bundle_dir, tmp_path / "a.csv", tmp_path, "--backend", "numpy")
+    assert of(events, "channel_lost") == [] and of(events, "channel_back") == []
+    assert events[-1]["counters"]["blank_cells"] == MAX_GAP
+    assert events[-1]["counters"]["samples"] == 120
+    x = fx.scaled(values)
+    x[60:60 + MAX_GAP, VIB] = x[59, VIB]
+    np.testing.assert_allclose(df.score.to_numpy(), written_out_scores(bundle_dir, x), rtol=1e-5)
+
+
+def test_a_dead_channel_is_named_once_and_the_others_are_still_watched(bundle_dir, tmp_path):
+    # vibration dead from row 100 to the end; a flow fault at rows 200-223 while it is dead
+    values = fx.raw_values(300, seed=22, anomalies=[(200, 24, 0, 8.0)])
+    write_with_blanks(tmp_path / "dead.csv", values, range(100, 300))
+    fx.write_csv(tmp_path / "whole.csv", values)
+    events, df, _ = stream(bundle_dir, tmp_path / "dead.csv", tmp_path, "--backend", "numpy")
+    _, whole, _ = stream(bundle_dir, tmp_path / "whole.csv", tmp_path, "--backend", "numpy",
+                         tag="whole")
+    # every hop is still scored: before, each row with the blank cell was refused whole
+    assert len(df) == len(whole) and events[-1]["errors"]["missing_value"] == 0
+    lost = of(events, "channel_lost")
+    assert len(lost) == 1 and of(events, "channel_back") == []
+    assert lost[0]["channel"] == "vibration" and lost[0]["blank_rows"] == MAX_GAP + 1
+    assert lost[0]["time"] == format_time(fx.T0 + 100 + MAX_GAP)
+    assert lost[0]["since"] == format_time(fx.T0 + 100)
+    x = fx.scaled(values)
+    x[100:100 + MAX_GAP, VIB] = x[99, VIB]  # held for MAX_GAP rows, then lost
+    x[100 + MAX_GAP:, VIB] = np.nan
+    expected = written_out_scores(bundle_dir, x, left_out_from=100 + MAX_GAP)
+    np.testing.assert_allclose(df.score.to_numpy(), expected, rtol=1e-5)
+    opened, closed = of(events, "alert_opened"), of(events, "alert_closed")
+    assert len(opened) == 1 and opened[0]["moved"]["name"] == "flow"
+    assert format_time(fx.T0 + 200) <= opened[0]["opened"] <= format_time(fx.T0 + 224)
+    shares = {c["name"]: c["share"] for c in closed[0]["channels"]}
+    assert shares["flow"] > 0.5 and shares["vibration"] == 0.0
+
+
+def test_a_channel_that_comes_back_rejoins_once_a_window_holds_its_readings(bundle_dir,
+                                                                             tmp_path):
+    values = fx.raw_values(260, seed=23)
+    write_with_blanks(tmp_path / "a.csv", values, range(80, 140), cell="NaN")
+    events, df, _ = stream(bundle_dir, tmp_path / "a.csv", tmp_path, "--backend", "numpy")
+    (back,) = of(events, "channel_back")
+    assert back["channel"] == "vibration" and back["time"] == format_time(fx.T0 + 140)
+    assert back["since"] == format_time(fx.T0 + 80)
+    assert back["blank_rows"] == 60 and back["rejoins_after_rows"] == WINDOW
+    x = fx.scaled(values)
+    x[80:80 + MAX_GAP, VIB] = x[79, VIB]
+    x[80 + MAX_GAP:140, VIB] = np.nan
+    expected = written_out_scores(bundle_dir, x, left_out_from=80 + MAX_GAP,
+                                  rejoin_at=140 + WINDOW)
+    np.testing.assert_allclose(df.score.to_numpy(), expected, rtol=1e-5)
+    # `ganlet demo` says it in words, from the same events
+    from ganlet.compile.demo import feed_notes
+
+    assert feed_notes(events) == [
+        f"vibration lost at {format_time(fx.T0 + 83)} (blank since {format_time(fx.T0 + 80)}): "
+        "scored on the other channels",
+        f"vibration back at {format_time(fx.T0 + 140)} after 60 blank rows; rejoins the score "
+        f"after {WINDOW} rows"]
+    # once rejoined, the hops are the ones of the file without blanks
+    fx.write_csv(tmp_path / "whole.csv", values)
+    _, whole, _ = stream(bundle_dir, tmp_path / "whole.csv", tmp_path, "--backend", "numpy",
+                         tag="whole")
+    after = pd.to_datetime(df.time, utc=True) >= pd.Timestamp(fx.T0 + 140 + WINDOW, unit="s",
+                                                               tz="UTC")
+    assert after.sum() > 10
+    np.testing.assert_allclose(df.score[after], whole.score[after], rtol=1e-6)
+
+
+def test_a_restart_while_a_channel_is_lost_changes_nothing(bundle_dir):
+    """Detector.state() through JSON, as the checkpoint keeps it, in the middle of a loss."""
+    b = load_bundle(bundle_dir)
+    values = fx.raw_values(200, seed=24, anomalies=[(150, 20, 1, 8.0)])
+    values[60:130, VIB] = np.nan
+
+    def run(rows, det):
+        return [e for k in rows for e in det.feed(fx.T0 + k, values[k])]
+
+    whole = run(range(200), Detector(b, make_scorer(b, "numpy")))
+    first = Detector(b, make_scorer(b, "numpy"))
+    events = run(range(100), first)
+    second = Detector(b, make_scorer(b, "numpy"))
+    second.restore(json.loads(json.dumps(first.state(), allow_nan=False)))
+    events += run(range(100, 200), second)
+    assert events == whole
+    assert [e["event"] for e in whole if e["event"].startswith("channel")] == [
+        "channel_lost", "channel_back"]
+
+
+def test_a_row_with_every_channel_blank_is_refused(bundle_dir, tmp_path):
+    b = load_bundle(bundle_dir)
+    det = Detector(b, make_scorer(b, "numpy"))
+    from ganlet.runtime.intake import RowError
+
+    with pytest.raises(RowError) as err:
+        det.feed(fx.T0, [math.nan] * 3)
+    assert err.value.kind == "missing_value" and det.counters["samples"] == 0
+
+
+def test_blank_cells_are_the_cells_pandas_reads_as_missing():
+    """Reference: pandas.read_csv's default missing-value strings (pandas IO docs, `na_values`:
+    "By default the following values are interpreted as NaN"), which the workstation trains
+    with: the gateway reads a file's gaps as training read them."""
+    from pandas._libs.parsers import STR_NA_VALUES
+
+    assert BLANK_CELLS == frozenset(STR_NA_VALUES)
+    d = Dialect()
+    assert all(math.isnan(d.number("flow", cell)) for cell in STR_NA_VALUES)
+    assert d.number("flow", "1.5") == 1.5
+
+
+def test_a_blank_neither_holds_nor_moves_a_reading():
+    held = HeldReadings([3])
+    for v in (1.0, 1.0, math.nan, 1.0, 1.0):
+        held.add([v])
+    assert held.runs == [2]  # the blank ended the run of 1.0 (as held.run_lengths counts it)
+
+
+def test_a_blank_before_any_reading_loses_the_channel_at_once():
+    blanks = BlankCells(["a", "b"], max_gap_periods=3, rejoin_rows=4)
+    rows = [(0.0, np.array([np.nan, 1.0])), (1.0, np.array([2.0, 1.0]))]
+    filled, events, after = blanks.plan(rows, None, str)
+    assert [e["event"] for e in events] == ["channel_lost", "channel_back"]
+    assert np.isnan(filled[0][1][0]) and filled[1][2].tolist() == [True, False]
+    assert blanks.left_out.tolist() == [False, False]  # plan changes nothing
+    blanks.commit(after)
+    assert blanks.left_out.tolist() == [True, False] and blanks.to_rejoin == [4, 0]
+
+
+def test_the_fill_is_the_centre_of_the_regime_each_row_s_known_channels_are_in():
+    rule = ScoreRule(score_section(centres=[[0.0, 0.0, 0.0], [2.0, 2.0, -1.0]],
+                                   scale=[[1.0, 1.0, 1.0], [2.0, 2.0, 2.0]], combine="rms"))
+    window = np.array([[0.1, -0.1, np.nan],   # the known channels at regime 0
+                       [1.9, 2.1, np.nan],    # at regime 1: the pump started
+                       [1.8, 2.2, 5.0]], dtype=np.float32)
+    filled = rule.fill(window)
+    assert filled[:, 2].tolist() == [0.0, -1.0, 5.0] and filled[:, :2].tolist() == \
+        window[:, :2].tolist()
+    assert np.isnan(window[0, 2])  # the ring's window is not changed
+    # without regimes: the scaler's centre
+    assert ScoreRule(score_section()).fill(window)[:, 2].tolist() == [0.0, 0.0, 5.0]
+
+
+def test_a_channel_left_out_counts_as_reconstructed_exactly():
+    rule = ScoreRule(score_section(centres=[[0.0, 0.0, 0.0], [2.0, 2.0, -1.0]],
+                                   scale=[[1.0, 1.0, 1.0], [2.0, 2.0, 2.0]], combine="rms"))
+    live = np.array([True, True, False])
+    # the live channels sit at regime 1; the left-out one's mean (9) must not decide it
+    scores, parts = rule.apply(np.array([[4.0, 16.0, 100.0]]), np.array([[1.9, 2.1, 9.0]]),
+                               live)
+    # regime 1 scales 2: parts sqrt(4)/2 = 1 and sqrt(16)/2 = 2, the left-out one 0; the rms
+    # over all three sqrt(5 / 3): a one-channel excursion scores as with the channel there
+    assert parts.tolist() == [[1.0, 2.0, 0.0]]
+    assert scores[0] == pytest.approx(math.sqrt(5 / 3), rel=1e-6)
