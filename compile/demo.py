@@ -46,6 +46,8 @@ def run(out: Path, quick: bool = False, seed: int = 7, echo: Callable[[str], Non
     echo(alerts_beside_incidents(replay["alerts"], Path(info["incidents"])))
     echo(f"   {replay['hops']} hops scored; input errors {replay['errors']}; "
          f"events in {replay['events']}")
+    for line in replay["feed_notes"]:
+        echo("   " + line)
 
     reports = out / "reports"
     parity, detection = write_reports(compiled.bundle, result.out, info, test_csv, replay,
@@ -156,8 +158,26 @@ def replay_through_bundle(bundle: Path, data: Path, out: Path) -> dict:
     run = run_bundle(bundle, data, out, keep_state=True)
     errors = {k: v for k, v in run.stop.get("errors", {}).items() if v}
     return {"alerts": run.alerts, "hops": run.stop.get("counters", {}).get("hops", 0),
+            "feed_notes": feed_notes(run.events),
             "errors": errors, "events": str(out / "events.jsonl"), "scores": str(run.scores),
             "alert_db": str(out / "alerts.sqlite")}
+
+
+def feed_notes(events: list) -> list:
+    """What the gateway said of the feed itself, a line per event: long gaps and channels
+    that went blank and came back."""
+    notes = []
+    for e in events:
+        if e["event"] == "gap":
+            notes.append(f"gap {e['start']} .. {e['end']}: {e['missing_periods']} periods "
+                         "missing, window reset")
+        elif e["event"] == "channel_lost":
+            notes.append(f"{e['channel']} lost at {e['time']} (blank since {e['since']}): "
+                         "scored on the other channels")
+        elif e["event"] == "channel_back":
+            notes.append(f"{e['channel']} back at {e['time']} after {e['blank_rows']} blank "
+                         f"rows; rejoins the score after {e['rejoins_after_rows']} rows")
+    return notes
 
 
 def moved_channel(alert: dict) -> str:

@@ -30,7 +30,9 @@ The story:
   ~1 h at normal current).
 - Data-quality faults for intake to report: a few rows out of order, two duplicate timestamps
   (one exact re-send, one second poll with different values), a short gap of 3 missing samples
-  (training span) and a ~40 min comms outage (start of the test span).
+  (training span) and a ~40 min comms outage (start of the test span). A dead transmitter: the
+  motor current's cells are blank for two hours in the test span, two hours after the incident
+  followed by the longest quiet stretch (the gateway scores on without it, runtime/blanks.py).
 
 Run as a script: `python examples/pump_station.py --out DIR [--days N] [--seed S] [--plot]`.
 """
@@ -46,6 +48,7 @@ import pandas as pd
 
 START = pd.Timestamp("2026-03-02T00:00:00")  # a Monday; naive station-local time (no DST in span)
 CHANNELS = ("vibration_mm_s", "bearing_temp_c", "discharge_bar", "motor_current_a")
+DEAD_TRANSMITTER = "motor_current_a"  # blank for two hours in the test span (_with_glitches)
 TRAIN_FRACTION = 0.6  # faults only after this fraction of the span
 TIME_FORMAT = "%Y-%m-%dT%H:%M:%S"
 KINDS = ("bearing_wear", "cavitation", "stuck_sensor", "pressure_sag")
@@ -253,10 +256,15 @@ def _simulate(n: int, period_s: int, rng: np.random.Generator):
 
 
 def _with_glitches(frame: pd.DataFrame, incidents, test_idx: int, spm: float, rng) -> pd.DataFrame:
-    """Gaps, duplicates and out-of-order rows, placed away from the incidents."""
+    """Gaps, duplicates, out-of-order rows and a dead transmitter, placed away from the
+    incidents."""
     n = len(frame)
     m = lambda minutes: max(1, int(round(minutes * spm)))  # noqa: E731
     mid = [(incidents[k][2] + incidents[k + 1][1]) // 2 for k in range(len(incidents) - 1)]
+    quiet = max(range(len(incidents) - 1), key=lambda k: incidents[k + 1][1] - incidents[k][2])
+    dead = incidents[quiet][2] + m(120)
+    frame = frame.copy()
+    frame.loc[dead:dead + m(120) - 1, DEAD_TRANSMITTER] = np.nan
 
     short_gap = range(int(0.23 * n), int(0.23 * n) + m(3))
     long_gap = range(test_idx + m(30), test_idx + m(30) + m(40))  # comms outage

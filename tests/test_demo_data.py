@@ -52,8 +52,9 @@ def test_columns_rows_and_no_label(demo):
     assert not any("label" in c or "anomal" in c or "incident" in c for c in raw.columns)
     # 7 days of 1-minute samples, minus 3 + 40 missing, plus 2 duplicate rows
     assert len(raw) == info["rows"] == 7 * 1440 - 3 - 40 + 2
-    assert raw[COLUMNS[1:]].notna().all().all()
-    assert (raw["motor_current_a"] >= 0).all() and (raw["vibration_mm_s"] > 0).all()
+    # every cell holds a number but the dead transmitter's (test_a_dead_transmitter_...)
+    assert raw[[c for c in COLUMNS[1:] if c != ps.DEAD_TRANSMITTER]].notna().all().all()
+    assert (raw["motor_current_a"].dropna() >= 0).all() and (raw["vibration_mm_s"] > 0).all()
     text = Path(info["data"]).read_text().splitlines()
     assert text[1].startswith("2026-03-02T00:00:00,")
 
@@ -101,6 +102,17 @@ def test_data_quality_faults_exist(demo):
     for row in demo["inc"].itertuples():
         span = demo["clean"].loc[row.start : row.end]
         assert len(span) == (row.end - row.start) / MINUTE + 1
+
+
+def test_a_dead_transmitter_in_the_test_span_away_from_the_incidents(demo):
+    raw, info = demo["raw"], demo["info"]
+    blank = raw.loc[raw[ps.DEAD_TRANSMITTER].isna(), "time"]
+    # reference: pandas.isna; two hours of one-minute rows in one run, the other cells read
+    assert len(blank) == 120 and (blank.diff().dropna() == MINUTE).all()
+    assert blank.min() > pd.Timestamp(info["test_start"])
+    assert raw.loc[raw[ps.DEAD_TRANSMITTER].isna(), COLUMNS[1:4]].notna().all().all()
+    for row in demo["inc"].itertuples():  # an hour clear of every incident on either side
+        assert blank.max() + 60 * MINUTE < row.start or blank.min() - 60 * MINUTE > row.end
 
 
 def test_duty_cycle_structure(demo):
