@@ -175,8 +175,8 @@ def feed_notes(events: list) -> list:
             notes.append(f"{e['channel']} lost at {e['time']} (blank since {e['since']}): "
                          "scored on the other channels")
         elif e["event"] == "channel_back":
-            notes.append(f"{e['channel']} back at {e['time']} after {e['blank_rows']} blank "
-                         f"rows; rejoins the score after {e['rejoins_after_rows']} rows")
+            notes.append(f"{e['channel']} back in the score at {e['time']} (reading again "
+                         f"since {e['reading_since']})")
     return notes
 
 

@@ -12,9 +12,10 @@ Per channel, counted in grid rows:
     of the operating regime the row's other channels sit nearest (ScoreRule.fill), so the
     network still sees the pump start and stop. Its part counts 0 in the score, as if it were
     reconstructed exactly, and the held-reading check and the drift monitor leave it alone;
-  - when readings come back, `channel_back`; its part rejoins the score once the window holds
-    only its readings again (`window` rows, one more for a rate channel), so no scored part
-    mixes the fill with readings.
+  - it is back (`channel_back`) once it has read for a whole window in a row (`window` rows,
+    one more for a rate channel): its part rejoins the score, and no scored part mixes the
+    fill with readings. A blank before that keeps it lost, with no second event, so a channel
+    that reads only now and then (logged slower than the others) is lost once, not flapping.
 A blank before any reading of the channel has nothing to hold: the channel is lost at once.
 A row with every channel blank carries nothing but a time and is refused (`missing_value`).
 """
@@ -25,21 +26,23 @@ import numpy as np
 
 
 class BlankCells:
+    STATE_KEYS = ("run", "blank_since", "lost_since", "read", "read_since")
+
     def __init__(self, channels: Sequence[str], max_gap_periods: int, rejoin_rows: int):
         self.channels = list(channels)
         self.max_gap = int(max_gap_periods)
         self.rejoin_rows = int(rejoin_rows)
         n = len(self.channels)
-        self.run = [0] * n  # blank grid rows in a row, per channel
-        self.blank_since = [None] * n  # type: List[Optional[str]]  # time of the run's first
-        self.lost_since = [None] * n  # type: List[Optional[str]]  # time of the lost event
-        self.to_rejoin = [0] * n  # rows still to come before a channel that is back rejoins
+        self.run = [0] * n  # blank grid rows in a row
+        self.blank_since = [None] * n  # type: List[Optional[str]]  # that run's first row
+        self.lost_since = [None] * n  # type: List[Optional[str]]  # first blank row of a loss
+        self.read = [0] * n  # readings in a row since a lost channel read again
+        self.read_since = [None] * n  # type: List[Optional[str]]  # the first of them
 
     @property
     def left_out(self) -> np.ndarray:
-        """Channels whose part the score leaves out: lost, or back but not yet rejoined."""
-        return np.asarray([s is not None or r > 0
-                           for s, r in zip(self.lost_since, self.to_rejoin)], dtype=bool)
+        """The channels lost: left out of the score until they rejoin."""
+        return np.asarray([s is not None for s in self.lost_since], dtype=bool)
 
     def plan(self, rows: List[Tuple[float, np.ndarray]], last: Optional[np.ndarray],
              time_text) -> Tuple[list, list, dict]:
@@ -47,67 +50,72 @@ class BlankCells:
         ([(time, raw filled where held, NaN where lost; the channels left out after it)],
         events, the state after them). Changes nothing: `commit` the state once the row is
         accepted."""
-        run, lost, rejoin = list(self.run), list(self.lost_since), list(self.to_rejoin)
-        since = list(self.blank_since)
+        st = {k: list(getattr(self, k)) for k in self.STATE_KEYS}
         filled, events = [], []
         for t, raw in rows:
             raw = np.array(raw, dtype=np.float64)
+            now = time_text(t)
             for c in range(len(raw)):
                 if np.isnan(raw[c]):
-                    run[c] += 1
-                    if run[c] == 1:
-                        since[c] = time_text(t)
-                    held = (last is not None and not np.isnan(last[c]) and lost[c] is None
-                            and run[c] <= self.max_gap)
-                    raw[c] = last[c] if held else np.nan
-                    if not held and lost[c] is None:
-                        lost[c], rejoin[c] = time_text(t), 0
-                        events.append(self._lost(c, lost[c], since[c], run[c]))
+                    events += self._blank(st, c, now, last, raw)
                 else:
-                    if lost[c] is not None:
-                        events.append(self._back(c, since[c], time_text(t), run[c]))
-                        lost[c], rejoin[c] = None, self.rejoin_rows
-                    elif rejoin[c] > 0:
-                        rejoin[c] -= 1
-                    run[c], since[c] = 0, None
-            left_out = [s is not None or r > 0 for s, r in zip(lost, rejoin)]
-            filled.append((t, raw, np.asarray(left_out, dtype=bool)))
+                    events += self._reading(st, c, now)
+            filled.append((t, raw, np.asarray([s is not None for s in st["lost_since"]])))
             last = raw
-        return filled, events, {"run": run, "blank_since": since, "lost_since": lost,
-                                "to_rejoin": rejoin}
+        return filled, events, st
+
+    def _blank(self, st: dict, c: int, now: str, last, raw: np.ndarray) -> list:
+        """A blank cell: held while the blank is short, else the channel is (or stays) lost;
+        a lost channel that had begun to read again is lost again, with no second event."""
+        st["run"][c] += 1
+        if st["run"][c] == 1:
+            st["blank_since"][c] = now
+        if st["lost_since"][c] is not None:
+            st["read"][c], st["read_since"][c] = 0, None
+            return []
+        if last is not None and not np.isnan(last[c]) and st["run"][c] <= self.max_gap:
+            raw[c] = last[c]
+            return []
+        st["lost_since"][c] = st["blank_since"][c]
+        return [{"event": "channel_lost", "channel": self.channels[c], "time": now,
+                 "since": st["blank_since"][c], "blank_rows": st["run"][c],
+                 "max_gap_periods": self.max_gap,
+                 "action": ("scored without it until it reads again for a whole window; "
+                            "check the transmitter, its wiring and its tag")}]
+
+    def _reading(self, st: dict, c: int, now: str) -> list:
+        """A reading: a lost channel rejoins once rejoin_rows readings in a row have come."""
+        st["run"][c], st["blank_since"][c] = 0, None
+        if st["lost_since"][c] is None:
+            return []
+        st["read"][c] += 1
+        if st["read"][c] == 1:
+            st["read_since"][c] = now
+        if st["read"][c] < self.rejoin_rows:
+            return []
+        event = {"event": "channel_back", "channel": self.channels[c], "time": now,
+                 "since": st["lost_since"][c], "reading_since": st["read_since"][c],
+                 "readings": st["read"][c]}
+        st["lost_since"][c], st["read"][c], st["read_since"][c] = None, 0, None
+        return [event]
 
     def commit(self, state: dict) -> None:
-        self.run = list(state["run"])
-        self.blank_since = list(state["blank_since"])
-        self.lost_since = list(state["lost_since"])
-        self.to_rejoin = list(state["to_rejoin"])
-
-    def _lost(self, c: int, now: str, since: str, run: int) -> dict:
-        return {"event": "channel_lost", "channel": self.channels[c], "time": now,
-                "since": since, "blank_rows": run, "max_gap_periods": self.max_gap,
-                "action": ("scored without it: its part is left out of the score until a "
-                           "whole window holds its readings again; check the transmitter "
-                           "and its wiring")}
-
-    def _back(self, c: int, since: str, now: str, run: int) -> dict:
-        return {"event": "channel_back", "channel": self.channels[c], "time": now,
-                "since": since, "blank_rows": run, "rejoins_after_rows": self.rejoin_rows}
+        for k in self.STATE_KEYS:
+            setattr(self, k, list(state[k]))
 
     def state(self) -> dict:
-        return {"run": list(self.run), "blank_since": list(self.blank_since),
-                "lost_since": list(self.lost_since), "to_rejoin": list(self.to_rejoin)}
+        return {k: list(getattr(self, k)) for k in self.STATE_KEYS}
 
     def restore(self, d: Optional[dict]) -> None:
         """A state from before blank cells were accepted has none."""
         n = len(self.channels)
         if d is None:
-            d = {"run": [0] * n, "blank_since": [None] * n, "lost_since": [None] * n,
-                 "to_rejoin": [0] * n}
-        keys = ("run", "blank_since", "lost_since", "to_rejoin")
+            d = {k: [0 if k in ("run", "read") else None] * n for k in self.STATE_KEYS}
         ok = (isinstance(d, dict) and all(isinstance(d.get(k), list) and len(d[k]) == n
-                                          for k in keys)
-              and all(type(v) is int and v >= 0 for v in d["run"] + d["to_rejoin"])
-              and all(v is None or isinstance(v, str) for v in d["blank_since"] + d["lost_since"]))
+                                          for k in self.STATE_KEYS)
+              and all(type(v) is int and v >= 0 for v in d["run"] + d["read"])
+              and all(v is None or isinstance(v, str)
+                      for v in d["blank_since"] + d["lost_since"] + d["read_since"]))
         if not ok:
             raise ValueError("the blank-cell state is malformed")
         self.commit(d)

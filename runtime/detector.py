@@ -366,6 +366,11 @@ class Detector:
         self.last_time = t
         return events
 
+    def channels_lost(self) -> List[str]:
+        """The channels scored without at the moment (blanks.py): heartbeats and the stop
+        event carry them, so a loss announced before a restart is not forgotten."""
+        return [c for c, lost in zip(self.bundle.channels, self.blanks.left_out) if lost]
+
     def restart_clock(self) -> None:
         """The feed's clock was set back (a jump the service's clock guard confirmed): the next
         row starts a new timeline, as after a long gap (window reset, no filling across it)."""

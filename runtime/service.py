@@ -347,7 +347,7 @@ class Service:
             last = self.det.last_time
             self.emit("heartbeat", uptime_s=round(now - t.started, 3),
                       last_time=format_time(last) if last is not None else None,
-                      counters=dict(self.det.counters))
+                      counters=dict(self.det.counters), channels_lost=self.det.channels_lost())
         if opts.checkpoint_every and now - t.checkpoint >= opts.checkpoint_every:
             t.checkpoint = now
             self.checkpoint()
@@ -426,7 +426,8 @@ class Service:
         fields = {"reason": reason, "last_time": format_time(last) if last is not None else None,
                   "counters": dict(det.counters), "errors": dict(det.errors),
                   "already_processed": self.already, "held_rows": self.timeline.pending,
-                  "open_alert": det.judge.alert["alert_id"] if det.judge.alert else None}
+                  "open_alert": det.judge.alert["alert_id"] if det.judge.alert else None,
+                  "channels_lost": det.channels_lost()}
         if control.stop_signal is not None:
             fields["signal"] = signal.Signals(control.stop_signal).name
         self.emit("stop", **fields)

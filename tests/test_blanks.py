@@ -78,12 +78,14 @@ def test_a_dead_channel_is_named_once_and_the_others_are_still_watched(bundle_di
     write_with_blanks(tmp_path / "dead.csv", values, range(100, 300))
     fx.write_csv(tmp_path / "whole.csv", values)
     events, df, _ = stream(bundle_dir, tmp_path / "dead.csv", tmp_path, "--backend", "numpy")
-    _, whole, _ = stream(bundle_dir, tmp_path / "whole.csv", tmp_path, "--backend", "numpy",
-                         tag="whole")
+    whole_events, whole, _ = stream(bundle_dir, tmp_path / "whole.csv", tmp_path, "--backend",
+                                    "numpy", tag="whole")
     # every hop is still scored: before, each row with the blank cell was refused whole
     assert len(df) == len(whole) and events[-1]["errors"]["missing_value"] == 0
     lost = of(events, "channel_lost")
     assert len(lost) == 1 and of(events, "channel_back") == []
+    # the stop event (as each heartbeat) names the channels lost at the moment
+    assert events[-1]["channels_lost"] == ["vibration"] and whole_events[-1]["channels_lost"] == []
     assert lost[0]["channel"] == "vibration" and lost[0]["blank_rows"] == MAX_GAP + 1
     assert lost[0]["time"] == format_time(fx.T0 + 100 + MAX_GAP)
     assert lost[0]["since"] == format_time(fx.T0 + 100)
@@ -104,15 +106,16 @@ def test_a_channel_that_comes_back_rejoins_once_a_window_holds_its_readings(bund
     values = fx.raw_values(260, seed=23)
     write_with_blanks(tmp_path / "a.csv", values, range(80, 140), cell="NaN")
     events, df, _ = stream(bundle_dir, tmp_path / "a.csv", tmp_path, "--backend", "numpy")
+    # back once it has read for a whole window: rows 140 .. 140 + WINDOW - 1
     (back,) = of(events, "channel_back")
-    assert back["channel"] == "vibration" and back["time"] == format_time(fx.T0 + 140)
+    rejoin = 140 + WINDOW - 1
+    assert back["channel"] == "vibration" and back["time"] == format_time(fx.T0 + rejoin)
     assert back["since"] == format_time(fx.T0 + 80)
-    assert back["blank_rows"] == 60 and back["rejoins_after_rows"] == WINDOW
+    assert back["reading_since"] == format_time(fx.T0 + 140) and back["readings"] == WINDOW
     x = fx.scaled(values)
     x[80:80 + MAX_GAP, VIB] = x[79, VIB]
     x[80 + MAX_GAP:140, VIB] = np.nan
-    expected = written_out_scores(bundle_dir, x, left_out_from=80 + MAX_GAP,
-                                  rejoin_at=140 + WINDOW)
+    expected = written_out_scores(bundle_dir, x, left_out_from=80 + MAX_GAP, rejoin_at=rejoin)
     np.testing.assert_allclose(df.score.to_numpy(), expected, rtol=1e-5)
     # `ganlet demo` says it in words, from the same events
     from ganlet.compile.demo import feed_notes
@@ -120,16 +123,25 @@ def test_a_channel_that_comes_back_rejoins_once_a_window_holds_its_readings(bund
     assert feed_notes(events) == [
         f"vibration lost at {format_time(fx.T0 + 83)} (blank since {format_time(fx.T0 + 80)}): "
         "scored on the other channels",
-        f"vibration back at {format_time(fx.T0 + 140)} after 60 blank rows; rejoins the score "
-        f"after {WINDOW} rows"]
+        f"vibration back in the score at {format_time(fx.T0 + rejoin)} (reading again since "
+        f"{format_time(fx.T0 + 140)})"]
     # once rejoined, the hops are the ones of the file without blanks
     fx.write_csv(tmp_path / "whole.csv", values)
     _, whole, _ = stream(bundle_dir, tmp_path / "whole.csv", tmp_path, "--backend", "numpy",
                          tag="whole")
-    after = pd.to_datetime(df.time, utc=True) >= pd.Timestamp(fx.T0 + 140 + WINDOW, unit="s",
-                                                               tz="UTC")
+    after = pd.to_datetime(df.time, utc=True) >= pd.Timestamp(fx.T0 + rejoin, unit="s", tz="UTC")
     assert after.sum() > 10
     np.testing.assert_allclose(df.score[after], whole.score[after], rtol=1e-6)
+
+
+def test_a_channel_read_only_now_and_then_is_lost_once_not_flapping(bundle_dir, tmp_path):
+    """A channel logged every 10th row (slower than the others), from row 50 on."""
+    values = fx.raw_values(300, seed=25)
+    write_with_blanks(tmp_path / "slow.csv", values, [k for k in range(50, 300) if k % 10])
+    events, df, _ = stream(bundle_dir, tmp_path / "slow.csv", tmp_path, "--backend", "numpy")
+    assert [e["event"] for e in events if e["event"].startswith("channel")] == ["channel_lost"]
+    assert events[-1]["counters"]["hops"] == (300 - WINDOW) // HOP + 1  # every hop scored
+    assert events[-1]["counters"]["blank_cells"] == 225
 
 
 def test_a_restart_while_a_channel_is_lost_changes_nothing(bundle_dir):
@@ -185,11 +197,11 @@ def test_a_blank_before_any_reading_loses_the_channel_at_once():
     blanks = BlankCells(["a", "b"], max_gap_periods=3, rejoin_rows=4)
     rows = [(0.0, np.array([np.nan, 1.0])), (1.0, np.array([2.0, 1.0]))]
     filled, events, after = blanks.plan(rows, None, str)
-    assert [e["event"] for e in events] == ["channel_lost", "channel_back"]
+    assert [e["event"] for e in events] == ["channel_lost"]
     assert np.isnan(filled[0][1][0]) and filled[1][2].tolist() == [True, False]
     assert blanks.left_out.tolist() == [False, False]  # plan changes nothing
     blanks.commit(after)
-    assert blanks.left_out.tolist() == [True, False] and blanks.to_rejoin == [4, 0]
+    assert blanks.left_out.tolist() == [True, False] and blanks.read == [1, 0]
 
 
 def test_the_fill_is_the_centre_of_the_regime_each_row_s_known_channels_are_in():
