@@ -4,9 +4,14 @@ A transmitter fails, a cable is cut, a bus stops updating one tag: the rows keep
 one cell empty. Refusing such rows whole would stop all detection for the sake of one channel
 (it did: SKAB's healthy rig with its pressure blank from row 3,500 on scored nothing after).
 
-Per channel, counted in grid rows:
-  - a blank of at most max_gap_periods rows is filled with the channel's last reading, the
-    same bound within which whole missing rows are filled (detector.py);
+Per channel, counted in the grid rows read (not those filled in across a gap):
+  - a blank of at most max_gap_periods rows (the bound within which whole missing rows are
+    filled, detector.py) is filled with the channel's last reading while it lasts; the reading
+    that ends it replaces those cells in the ring by the straight line between the two
+    readings (a level channel), as the workstation's intake fills a short gap, so the windows
+    after it see what training saw. Rows filled in across a short gap of whole rows hold it
+    too without counting (the row ending the gap is what is blank), and a blank right after a
+    long gap is held from the reading before it;
   - a longer blank loses the channel: a `channel_lost` event names it (and its first blank
     row). Its cells stay NaN in the ring; each hop shows the network, in their place, the centre
     of the operating regime the row's other channels sit nearest (ScoreRule.fill), so the
@@ -16,7 +21,8 @@ Per channel, counted in grid rows:
     one more for a rate channel): its part rejoins the score, and no scored part mixes the
     fill with readings. A blank before that keeps it lost, with no second event, so a channel
     that reads only now and then (logged slower than the others) is lost once, not flapping.
-A blank before any reading of the channel has nothing to hold: the channel is lost at once.
+A blank before any reading of the channel (at the start, or after the clock was reset) has
+nothing to hold: the channel is lost at once.
 A row with every channel blank carries nothing but a time and is refused (`missing_value`).
 """
 
@@ -46,21 +52,33 @@ class BlankCells:
 
     def plan(self, rows: List[Tuple[float, np.ndarray]], last: Optional[np.ndarray],
              time_text) -> Tuple[list, list, dict]:
-        """Grid rows (time, raw with NaN where blank) and the last filled raw row before them ->
-        ([(time, raw filled where held, NaN where lost; the channels left out after it)],
-        events, the state after them). Changes nothing: `commit` the state once the row is
-        accepted."""
+        """Grid rows (time, raw with NaN where blank: the rows filled in across a short gap of
+        whole rows, then the row read) and the last filled raw row before them ->
+        ([(time, raw filled where held, NaN where lost; the channels left out after it; the
+        short blanks it ends as (channel, rows))], events, the state after them). Changes
+        nothing: `commit` the state once the row is accepted."""
         st = {k: list(getattr(self, k)) for k in self.STATE_KEYS}
         filled, events = [], []
-        for t, raw in rows:
+        for i, (t, raw) in enumerate(rows):
             raw = np.array(raw, dtype=np.float64)
             now = time_text(t)
+            ended = []  # (channel, rows) of the short blanks this reading ends
+            filled_in = i < len(rows) - 1  # a row filled in across a short gap of whole rows
             for c in range(len(raw)):
+                if np.isnan(raw[c]) and filled_in:
+                    # blank only because the row ending the gap is: held, not counted, so a
+                    # short gap and one blank cell do not add up to a lost channel
+                    if st["lost_since"][c] is None and last is not None:
+                        raw[c] = last[c]
+                    continue
                 if np.isnan(raw[c]):
                     events += self._blank(st, c, now, last, raw)
-                else:
-                    events += self._reading(st, c, now)
-            filled.append((t, raw, np.asarray([s is not None for s in st["lost_since"]])))
+                    continue
+                if st["run"][c] and st["lost_since"][c] is None:
+                    ended.append((c, st["run"][c]))
+                events += self._reading(st, c, now)
+            filled.append((t, raw, np.asarray([s is not None for s in st["lost_since"]]),
+                           ended))
             last = raw
         return filled, events, st
 

@@ -336,8 +336,10 @@ class Detector:
         if blank == len(raw):
             raise RowError("missing_value", "every channel is blank")
         grid, gap = self._grid_rows(t, raw)
-        last = None if gap else self.last_raw
-        filled, blank_events, blanks_after = self.blanks.plan(grid, last, format_time)
+        # a blank is held from the last reading even across a long gap: the ring is refilled
+        # after one, and a blank in the refill would otherwise lose its channel for a window
+        filled, blank_events, blanks_after = self.blanks.plan(grid, self.last_raw, format_time)
+        last = None if gap else self.last_raw  # a rate starts afresh after a long gap
         rows = self._scaled_rows(filled, last)
         # the row is accepted: from here on the state changes
         events = []
@@ -358,10 +360,14 @@ class Detector:
         self.counters["interpolated"] += len(rows) - 1
         self.blanks.commit(blanks_after)
         events += blank_events
-        for (tk, x), (_, r) in zip(rows, grid):
+        previous = last
+        for (tk, x), (_, r), (_, now, _, ended) in zip(rows, grid, filled):
             self.judge.see(r)  # blank cells as NaN: they neither hold nor move a reading
+            if ended:
+                self._redraw_short_blanks(ended, previous, now)
             if x is not None:
                 events += self._push(x, tk)
+            previous = now
         self.last_raw = filled[-1][1]
         self.last_time = t
         return events
@@ -405,11 +411,22 @@ class Detector:
                    previous + (raw - previous) * (k / steps)) for k in range(1, steps)]
         return filled + [(t, raw)], 0
 
+    def _redraw_short_blanks(self, ended, held, now) -> None:
+        """The reading `now` ends short blanks [(channel, rows)] that were held at `held`: their
+        cells in the ring become the straight line between the two readings (blanks.py); a
+        rate channel keeps the held cells."""
+        for c, rows in ended:
+            if self.bundle.rate[c]:
+                continue
+            for k in range(1, min(rows, self.ring.filled) + 1):  # k rows back from the newest
+                v = held[c] + (now[c] - held[c]) * (rows + 1 - k) / (rows + 1)
+                self.ring.set_back(k, c, (v - self.bundle.center[c]) / self.bundle.scale[c])
+
     def _scaled_rows(self, filled, previous):
         """(time, scaled features or None while a rate channel has no previous row) per grid
         row (time, raw, channels left out); RowError when a value is absurdly far out."""
         rows = []
-        for tk, r, left_out in filled:
+        for tk, r, left_out, _ in filled:
             f = features.row(r, previous, self.bundle.rate)
             previous = r
             x = self.bundle.scaled(f)

@@ -28,6 +28,10 @@ class Ring:
         self.next = (self.next + 1) % self.size
         self.filled += 1
 
+    def set_back(self, k: int, c: int, value: float) -> None:
+        """Overwrite channel c of the row k rows back from the newest (k = 1: the newest)."""
+        self.buf[(self.next - k) % self.size, c] = value
+
     def window(self) -> np.ndarray:
         """The last `size` rows, oldest first, as a new [size, channels] array."""
         if not self.is_full:

@@ -60,16 +60,24 @@ def written_out_scores(bundle_dir, x, left_out_from=None, rejoin_at=None):
     return np.asarray(scores)
 
 
-def test_a_short_blank_is_held_from_the_last_reading(bundle_dir, tmp_path):
+def test_a_short_blank_is_held_then_drawn_as_a_line_once_it_ends(bundle_dir, tmp_path):
     values = fx.raw_values(120, seed=21)
-    write_with_blanks(tmp_path / "a.csv", values, range(60, 60 + MAX_GAP))
+    start, end = 61, 61 + MAX_GAP  # end: the reading that ends the blank (a hop at 63)
+    write_with_blanks(tmp_path / "a.csv", values, range(start, end))
     events, df, _ = stream(bundle_dir, tmp_path / "a.csv", tmp_path, "--backend", "numpy")
     assert of(events, "channel_lost") == [] and of(events, "channel_back") == []
     assert events[-1]["counters"]["blank_cells"] == MAX_GAP
     assert events[-1]["counters"]["samples"] == 120
-    x = fx.scaled(values)
-    x[60:60 + MAX_GAP, VIB] = x[59, VIB]
-    np.testing.assert_allclose(df.score.to_numpy(), written_out_scores(bundle_dir, x), rtol=1e-5)
+    held = fx.scaled(values)
+    held[start:end, VIB] = held[start - 1, VIB]  # the hops while the blank lasts
+    line = values.copy()  # the hops after it; reference: numpy.interp, as pandas fills a gap
+    line[start:end, VIB] = np.interp(np.arange(start, end), [start - 1, end],
+                                     values[[start - 1, end], VIB])
+    newest = np.arange(WINDOW - 1, 120, HOP)
+    expected = np.where(newest >= end, written_out_scores(bundle_dir, fx.scaled(line)),
+                        written_out_scores(bundle_dir, held))
+    np.testing.assert_allclose(df.score.to_numpy(), expected, rtol=1e-5)
+    assert (newest >= end).sum() > 10 and ((newest >= start) & (newest < end)).sum() >= 1
 
 
 def test_a_dead_channel_is_named_once_and_the_others_are_still_watched(bundle_dir, tmp_path):
@@ -195,13 +203,34 @@ def test_a_blank_neither_holds_nor_moves_a_reading():
 
 def test_a_blank_before_any_reading_loses_the_channel_at_once():
     blanks = BlankCells(["a", "b"], max_gap_periods=3, rejoin_rows=4)
-    rows = [(0.0, np.array([np.nan, 1.0])), (1.0, np.array([2.0, 1.0]))]
-    filled, events, after = blanks.plan(rows, None, str)
-    assert [e["event"] for e in events] == ["channel_lost"]
-    assert np.isnan(filled[0][1][0]) and filled[1][2].tolist() == [True, False]
+    filled, events, after = blanks.plan([(0.0, np.array([np.nan, 1.0]))], None, str)
+    assert [e["event"] for e in events] == ["channel_lost"] and np.isnan(filled[0][1][0])
     assert blanks.left_out.tolist() == [False, False]  # plan changes nothing
     blanks.commit(after)
-    assert blanks.left_out.tolist() == [True, False] and blanks.read == [1, 0]
+    filled, events, after = blanks.plan([(1.0, np.array([2.0, 1.0]))], filled[0][1], str)
+    blanks.commit(after)
+    assert events == [] and filled[0][2].tolist() == [True, False] and blanks.read == [1, 0]
+
+
+def test_a_blank_right_after_a_long_gap_is_held_not_lost(bundle_dir, tmp_path):
+    values = fx.raw_values(200, seed=27)
+    keep = np.r_[0:100, 110:200]  # rows 100-109 missing: the window is reset
+    fx.write_csv(tmp_path / "a.csv", values[keep], times=fx.T0 + keep.astype(float))
+    fx.blank_out(tmp_path / "a.csv", [100, 101], VIB)  # the first two rows after the gap
+    events, _, _ = stream(bundle_dir, tmp_path / "a.csv", tmp_path, "--backend", "numpy")
+    assert len(of(events, "gap")) == 1 and events[-1]["counters"]["blank_cells"] == 2
+    assert of(events, "channel_lost") == [] and events[-1]["channels_lost"] == []
+
+
+def test_a_short_gap_of_rows_and_one_blank_cell_do_not_add_up_to_a_lost_channel():
+    """Rows 1 and 2 missing, row 3 read without channel a: the filled-in rows hold a's last
+    reading and only row 3's cell counts as blank (one row, within max_gap_periods)."""
+    blanks = BlankCells(["a", "b"], max_gap_periods=1, rejoin_rows=4)
+    grid = [(1.0, np.array([np.nan, 1.5])), (2.0, np.array([np.nan, 2.0])),
+            (3.0, np.array([np.nan, 2.5]))]
+    filled, events, after = blanks.plan(grid, np.array([5.0, 1.0]), str)
+    assert events == [] and [r[1][0] for r in filled] == [5.0, 5.0, 5.0]
+    assert after["run"] == [1, 0]
 
 
 def test_the_fill_is_the_centre_of_the_regime_each_row_s_known_channels_are_in():
