@@ -85,6 +85,8 @@ class IntakeReport:
     channel_ranges: dict       # name -> [min, max] in raw units
     warnings: list = field(default_factory=list)
     time_zone: str = "UTC"     # the zone zone-less times were read in
+    # name -> grid points where the channel alone is blank (the row has other readings)
+    blank_cells: dict = field(default_factory=dict)
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -279,6 +281,8 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     period = opts.period_s or snapped_period(float(np.median(positive)), notes)
     grid, grid_times, duplicates = on_grid(times_np, values, period, float(np.median(positive)),
                                            notes)
+    absent = np.isnan(grid)
+    blank = (absent & ~absent.all(axis=1, keepdims=True)).sum(axis=0)
     missing, filled, long_gaps = fill_short_gaps(grid, grid_times, opts.max_fill_periods)
     for j, name in enumerate(channels):
         if np.isnan(grid[:, j]).all():
@@ -296,6 +300,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
         long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
         time_zone=dialect.zone_name,
+        blank_cells={str(c): int(n) for c, n in zip(channels, blank)},
     )
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
 
@@ -598,10 +603,23 @@ def choose_window(frame: Frame, spans: Spans, requested: int) -> int:
             f"too few points for any usable window: the longest gap-free run is {fit_len} points "
             f"in the fit span and {cal_len} in the calibration span; a window of {MIN_WINDOW} "
             f"needs at least {need_fit} and {MIN_WINDOW + 8}, i.e. about {need_total} "
-            "gap-free training points in all")
+            "gap-free training points in all" + sparse_channel_hint(frame.report))
     warnings.warn(f"short history: using a window of {usable} points instead of {requested}",
                   stacklevel=2)
     return int(usable)
+
+
+def sparse_channel_hint(report: IntakeReport) -> str:
+    """Training needs rows with every channel read: name the channels blank on at least a
+    tenth of the grid's rows, which is what breaks a history into pieces when a channel is
+    logged slower than the others (the gateway scores without such a channel: blanks.py)."""
+    sparse = {c: n for c, n in report.blank_cells.items() if n >= 0.1 * report.grid_points}
+    if not sparse:
+        return ""
+    worst = sorted(sparse, key=lambda c: -sparse[c])
+    said = ", ".join(f"{c!r} on {sparse[c]} of {report.grid_points}" for c in worst)
+    return (f". Blank while the other channels read: {said} grid points (logged slower than "
+            f"the others?); leave it out with --exclude {','.join(worst)}")
 
 
 def spans_fraction(spans: Spans) -> float:

@@ -349,6 +349,19 @@ def test_too_few_points_says_how_many_are_needed(write_csv):
         assert choose_window(enough, split_spans(enough, None, 0.2), 32) >= 8
 
 
+def test_a_channel_logged_slower_than_the_others_is_named_with_what_to_do(write_csv):
+    df = correlated_series(400)
+    df.loc[df.index % 10 != 0, "flow"] = np.nan       # flow on every tenth row only
+    frame = load_frame(write_csv(df))
+    assert frame.report.blank_cells["flow"] == 360 and frame.report.blank_cells["power"] == 0
+    with pytest.raises(IntakeError, match="too few points") as info:
+        choose_window(frame, split_spans(frame, None, 0.2), 32)
+    assert "'flow' on 360 of 400 grid points" in str(info.value)
+    assert str(info.value).endswith("leave it out with --exclude flow")
+    without = load_frame(write_csv(df.drop(columns="flow"), "without.csv"))
+    assert choose_window(without, split_spans(without, None, 0.2), 32) == 32
+
+
 def test_short_history_picks_a_shorter_window_with_a_warning(write_csv):
     frame = load_frame(write_csv(correlated_series(400)))
     spans = split_spans(frame, None, 0.2)                # fit 320 points, calibration 80
