@@ -360,14 +360,14 @@ class Detector:
         self.counters["interpolated"] += len(rows) - 1
         self.blanks.commit(blanks_after)
         events += blank_events
-        previous = last
+        held = self.last_raw  # what a short blank's cells were held at (plan)
         for (tk, x), (_, r), (_, now, _, ended) in zip(rows, grid, filled):
             self.judge.see(r)  # blank cells as NaN: they neither hold nor move a reading
             if ended:
-                self._redraw_short_blanks(ended, previous, now)
+                self._redraw_short_blanks(ended, held, now)
             if x is not None:
                 events += self._push(x, tk)
-            previous = now
+            held = now
         self.last_raw = filled[-1][1]
         self.last_time = t
         return events
@@ -414,7 +414,7 @@ class Detector:
     def _redraw_short_blanks(self, ended, held, now) -> None:
         """The reading `now` ends short blanks [(channel, rows)] that were held at `held`: their
         cells in the ring become the straight line between the two readings (blanks.py); a
-        rate channel keeps the held cells."""
+        rate channel keeps the held cells, and so do cells a long gap's window reset dropped."""
         for c, rows in ended:
             if self.bundle.rate[c]:
                 continue

@@ -214,11 +214,13 @@ def test_a_blank_before_any_reading_loses_the_channel_at_once():
 
 def test_a_blank_right_after_a_long_gap_is_held_not_lost(bundle_dir, tmp_path):
     values = fx.raw_values(200, seed=27)
-    keep = np.r_[0:100, 110:200]  # rows 100-109 missing: the window is reset
+    keep = np.r_[0:100, 110:150, 160:200]  # rows 100-109 and 150-159 missing: window resets
     fx.write_csv(tmp_path / "a.csv", values[keep], times=fx.T0 + keep.astype(float))
-    fx.blank_out(tmp_path / "a.csv", [100, 101], VIB)  # the first two rows after the gap
+    # the last row before the first gap and the first two after it (data rows 99, 100, 101);
+    # the last row before the second gap, whose blank the first row after it ends (row 139)
+    fx.blank_out(tmp_path / "a.csv", [99, 100, 101, 139], VIB)
     events, _, _ = stream(bundle_dir, tmp_path / "a.csv", tmp_path, "--backend", "numpy")
-    assert len(of(events, "gap")) == 1 and events[-1]["counters"]["blank_cells"] == 2
+    assert len(of(events, "gap")) == 2 and events[-1]["counters"]["blank_cells"] == 4
     assert of(events, "channel_lost") == [] and events[-1]["channels_lost"] == []
 
 
