@@ -39,7 +39,7 @@ class BlankCells:
         self.max_gap = int(max_gap_periods)
         self.rejoin_rows = int(rejoin_rows)
         n = len(self.channels)
-        self.run = [0] * n  # blank grid rows in a row
+        self.run = [0] * n  # blank rows read in a row (rows filled in across a gap not counted)
         self.blank_since = [None] * n  # type: List[Optional[str]]  # that run's first row
         self.lost_since = [None] * n  # type: List[Optional[str]]  # first blank row of a loss
         self.read = [0] * n  # readings in a row since a lost channel read again
