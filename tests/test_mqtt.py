@@ -401,6 +401,32 @@ def test_feed_in_alerts_out_match_the_csv_run(setup, broker, tmp_path, capsys):
 
 
 @needs_broker
+def test_a_channel_the_samples_stop_carrying_is_reported_at_qos_1(setup, broker, tmp_path):
+    out = tmp_path / "gw"
+    out.mkdir()
+    hmi = Listener(broker.port)
+    feeder = Feeder(broker.port)
+    proc = start_gateway(gateway_cmd(setup["bundle"], broker.port, out), hmi)
+    values = setup["values"][:200]
+    feeder.send(values[:100], 0)
+    for k in range(100, 200):  # the vibration transmitter stops: the key is absent
+        feeder.send_raw(json.dumps({"time": format_time(fx.T0 + k),
+                                    "values": {"flow": values[k, 0], "pressure": values[k, 1]}}))
+    wait_until(lambda: processed_all(hmi, 200), what="every sample to be scored")
+    wait_until(lambda: hmi.last_heartbeat()["channels_lost"] == ["vibration"], 10,
+               "a heartbeat naming the lost channel")
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(timeout=30) == 0
+    lost = hmi.of("channels")
+    # QoS 1 received by a QoS 1 subscriber: published at QoS 1 (OASIS MQTT 3.1.1 section 3.8.4)
+    assert [(p["event"], p["channel"], q) for p, q, _ in lost] == [
+        ("channel_lost", "vibration", 1)]
+    assert hmi.payloads("input_errors") == []  # the rows were scored, none refused
+    hmi.close()
+    feeder.close()
+
+
+@needs_broker
 def test_broker_restart_mid_stream_loses_no_alert(setup, broker, tmp_path, capsys):
     out = tmp_path / "gw"
     out.mkdir()
