@@ -44,11 +44,19 @@ class BlankCells:
         self.lost_since = [None] * n  # type: List[Optional[str]]  # first blank row of a loss
         self.read = [0] * n  # readings in a row since a lost channel read again
         self.read_since = [None] * n  # type: List[Optional[str]]  # the first of them
+        self.none_left_out = np.zeros(n, dtype=bool)
 
     @property
     def left_out(self) -> np.ndarray:
         """The channels lost: left out of the score until they rejoin."""
+        if all(s is None for s in self.lost_since):
+            return self.none_left_out
         return np.asarray([s is not None for s in self.lost_since], dtype=bool)
+
+    @property
+    def quiet(self) -> bool:
+        """No channel in a blank or lost: a row without a blank cell changes nothing."""
+        return not any(self.run) and all(s is None for s in self.lost_since)
 
     def plan(self, rows: List[Tuple[float, np.ndarray]], last: Optional[np.ndarray],
              time_text) -> Tuple[list, list, dict]:
@@ -56,7 +64,11 @@ class BlankCells:
         whole rows, then the row read) and the last filled raw row before them ->
         ([(time, raw filled where held, NaN where lost; the channels left out after it; the
         short blanks it ends as (channel, rows))], events, the state after them). Changes
-        nothing: `commit` the state once the row is accepted."""
+        nothing: `commit` the state once the row is accepted (None: nothing changes)."""
+        if self.quiet and not np.isnan(rows[-1][1]).any():
+            # every row's common case: the rows filled in before the row read lie between it
+            # and `last`, neither with a blank, so nothing is blank and nothing changes
+            return [(t, raw, self.none_left_out, []) for t, raw in rows], [], None
         st = {k: list(getattr(self, k)) for k in self.STATE_KEYS}
         filled, events = [], []
         for i, (t, raw) in enumerate(rows):
@@ -117,7 +129,9 @@ class BlankCells:
         st["lost_since"][c], st["read"][c], st["read_since"][c] = None, 0, None
         return [event]
 
-    def commit(self, state: dict) -> None:
+    def commit(self, state: Optional[dict]) -> None:
+        if state is None:
+            return
         for k in self.STATE_KEYS:
             setattr(self, k, list(state[k]))
 

@@ -436,7 +436,7 @@ class Detector:
                     "out_of_range",
                     f"a value is more than {MAX_SCALED_ABS:g} scale units from center",
                 )
-            rows.append((tk, x if (known | left_out).all() else None))
+            rows.append((tk, x if known.all() or (known | left_out).all() else None))
         return rows
 
     def _push(self, row: np.ndarray, t: float) -> List[dict]:

@@ -145,10 +145,11 @@ class ScoreRule:
         if self.centres is None:
             w[lost] = 0.0
             return w
-        for t in np.flatnonzero(lost.any(axis=1)):
-            known = ~lost[t]
-            g = self.regime(w[t][None].astype(np.float64), known)[0]
-            w[t, lost[t]] = self.centres[g, lost[t]]
+        rows = lost.any(axis=1)
+        x = w[rows].astype(np.float64)  # [R, C]: regime() per row, its lost channels left out
+        d = np.where(np.isnan(x)[:, None, :], 0.0, x[:, None, :] - self.centres[None]) ** 2
+        nearest = self.centres[np.argmin(d.sum(axis=2), axis=1)]
+        w[rows] = np.where(lost[rows], nearest, w[rows])
         return w
 
     def state_changes(self, means, pieces, live=None) -> np.ndarray:
