@@ -272,6 +272,8 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     time_col = find_time_column(df, opts.time_col)
     channels, excluded = pick_channels(df, time_col, opts, path)
     times_np, values, unparsable = timed_rows(df, time_col, channels, dialect, notes)
+    channels, values, excluded = without_blank_columns(channels, values, excluded,
+                                                       bool(opts.channels), notes)
     times_np, values, out_of_order = sorted_by_time(times_np, values, notes)
 
     dt = np.diff(times_np).astype("timedelta64[ns]").astype(np.int64) / 1e9
@@ -284,9 +286,6 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     absent = np.isnan(grid)
     blank = (absent & ~absent.all(axis=1, keepdims=True)).sum(axis=0)
     missing, filled, long_gaps = fill_short_gaps(grid, grid_times, opts.max_fill_periods)
-    for j, name in enumerate(channels):
-        if np.isnan(grid[:, j]).all():
-            raise IntakeError(f"channel {name!r} has no numeric values; drop it with --channels")
 
     segs = runs(~np.isnan(grid).any(axis=1))
     ranges = {name: [float(np.nanmin(grid[:, j])), float(np.nanmax(grid[:, j]))]
@@ -343,7 +342,7 @@ def timed_rows(df: pd.DataFrame, time_col, channels: list, dialect, notes: list)
     if bad_time.mean() > 0.01 or bad_time.all():
         first = int(np.flatnonzero(bad_time)[0])
         raise IntakeError(f"column {time_col!r}: {int(bad_time.sum())} of {len(df)} times cannot "
-                          f"be parsed (first at data row {first + 1}: {raw_times.iloc[first]!r}); "
+                          f"be parsed (first at data row {first + 1}: {str(raw_times.iloc[first])!r}); "
                           f"{time_problem(raw_times.iloc[first], dialect)}; use ISO 8601 "
                           "(2026-03-02T10:00:00) or epoch seconds, or pick another column with "
                           "--time-col")
@@ -353,6 +352,27 @@ def timed_rows(df: pd.DataFrame, time_col, channels: list, dialect, notes: list)
     if bad_time.any():
         notes.append(f"{int(bad_time.sum())} rows with unparsable times dropped")
     return times.to_numpy()[~bad_time], values[~bad_time], int(bad_time.sum())
+
+
+def without_blank_columns(channels: list, values: np.ndarray, excluded: list, named: bool,
+                          notes: list) -> tuple:
+    """(channels, values, excluded): a column with no number in any row (a spare input, a tag
+    never wired) is left out with a note when picked by default; named in --channels, it is
+    refused. Checked before the gap filling, which reads a row with any blank cell as a gap and
+    would otherwise blank every channel."""
+    blank = [j for j in range(len(channels)) if np.isnan(values[:, j]).all()]
+    if not blank:
+        return channels, values, excluded
+    names = [str(channels[j]) for j in blank]
+    if named or len(blank) == len(channels):
+        raise IntakeError(f"channel(s) {', '.join(map(repr, names))} hold no number in any row; "
+                          "leave them out of --channels, or check --sep and --decimal")
+    for name in names:
+        notes.append(f"column {name!r} holds no number in any row: left out")
+        warnings.warn(notes[-1], stacklevel=3)
+    keep = [j for j in range(len(channels)) if j not in blank]
+    return ([channels[j] for j in keep], values[:, keep],
+            excluded + [channels[j] for j in blank])
 
 
 def sorted_by_time(times_np: np.ndarray, values: np.ndarray, notes: list) -> tuple:

@@ -144,6 +144,21 @@ def test_no_numeric_channel(write_csv):
         load_frame(write_csv(df))
 
 
+
+def test_a_column_blank_in_every_row_is_left_out_or_refused_when_named(write_csv):
+    # A spare input or a tag never wired: every cell empty. Before, the gap filling read every
+    # row as a gap and the error named the first channel, not the blank one.
+    df = correlated_series(100)
+    df["spare"] = np.nan
+    with pytest.warns(UserWarning, match="column 'spare' holds no number in any row: left out"):
+        frame = load_frame(write_csv(df))
+    assert frame.channels == CHANNELS
+    assert frame.report.excluded == ["spare"]
+    np.testing.assert_allclose(frame.values, df[CHANNELS].to_numpy())
+    with pytest.raises(IntakeError, match=r"channel\(s\) 'spare' hold no number in any row"):
+        load_frame(write_csv(df), IntakeOptions(channels=["flow", "spare"]))
+
+
 # ------------------------------------------------------------------------------------------
 # the grid
 
