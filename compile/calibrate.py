@@ -158,13 +158,18 @@ def detector_policy(kind: str, pieces: list, risk: float, history: Optional[np.n
 
 
 def tails_text(regimes: dict) -> str:
-    """The channels whose score scale a heavy normal tail raised, for the compile report."""
-    raised = sorted(((f, name) for name, f in regimes.get("tail_factor", {}).items()
-                     if round(f, 1) > 1.0), reverse=True)
-    if not raised:
-        return ""
-    return ("; a heavy normal tail reads " + ", ".join(f"{n} at {f:.1f}x" for f, n in raised)
-            + " its median error (tail_matched_scale)")
+    """The channels whose score scale a heavy normal tail or the fit span raised, for the
+    compile report."""
+    def raised(key: str) -> str:
+        big = sorted(((f, name) for name, f in regimes.get(key, {}).items()
+                      if round(f, 1) > 1.0), reverse=True)
+        return ", ".join(f"{n} at {f:.1f}x" for f, n in big)
+
+    tails, fit = raised("tail_factor"), raised("fit_factor")
+    return ((f"; a heavy normal tail reads {tails} its median error (tail_matched_scale)"
+             if tails else "")
+            + (f"; the fit span's errors read {fit} the calibration span's (normal_scale)"
+               if fit else ""))
 
 
 def cusum_line(report: dict) -> str:
@@ -372,7 +377,8 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
     if cal.sum() < 2:
         raise ValueError("the calibration span holds fewer than 2 windows; train with a longer "
                          "history or a larger --calibration fraction")
-    scale = regime_scale(res[cal], hop_means[cal], centres)
+    cal_scale = regime_scale(res[cal], hop_means[cal], centres)
+    scale = normal_scale(cal_scale, res[~cal], hop_means[~cal], centres)
     score = score_section(centres, scale, COMBINE, steps, STATISTIC)
     rule = ScoreRule(score)
     scores = rule.apply(res[cal], hop_means[cal])[0]
@@ -382,8 +388,9 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
     policy, cusum, held = detector_policy(kind, pieces, risk, model.raw[:cal_end], hop,
                                           [changes[cal], changes[~cal]][:len(pieces)])
     false_alarms = budget_record(alarms_per_week, risk, policy, model.period_s * hop)
-    tails = scale / regime_scale(res[cal], hop_means[cal], centres, match_tails=False)
-    regimes = {**regimes, "tail_factor": dict(zip(model.channels, tails.max(axis=0).tolist()))}
+    tails = cal_scale / regime_scale(res[cal], hop_means[cal], centres, match_tails=False)
+    regimes = {**regimes, "tail_factor": dict(zip(model.channels, tails.max(axis=0).tolist())),
+               "fit_factor": dict(zip(model.channels, (scale / cal_scale).max(axis=0).tolist()))}
     report = {"regimes": regimes, "threshold_kind": policy["kind"], "cusum": cusum,
               "held": {**held, "names": list(model.channels)},
               "calibration_scores": int(cal.sum()), "false_alarms": false_alarms}
@@ -416,6 +423,24 @@ def tail_scores(cal_scores: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarr
     fit_rule = ScoreRule(score_section(centres, regime_scale(fit_res, fit_means, centres),
                                        COMBINE, steps, STATISTIC))
     return [cal_scores, fit_rule.apply(fit_res, fit_means)[0]]
+
+
+def normal_scale(cal_scale: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarray,
+                 centres: np.ndarray) -> np.ndarray:
+    """Per regime and channel, the RMS error that reads as 1: the calibration span's
+    (`cal_scale`, regime_scale's), never below the fit span's.
+
+    The calibration span is the end of the training history (a fifth by default). It can hold
+    a slow channel at one level, near the value the network puts out for that channel whatever
+    its level (a network that learned a slowly wandering channel as a constant): the channel's
+    error there is tiny, and every later move of its level reads as many normal errors. The fit
+    span, longer (four times by default), shows how far such a channel's error goes in normal
+    running. For a channel the network follows, its error on the fit span, which it trained on,
+    is the smaller, and the calibration span's stands (issue 11's notes: SKAB valve1 file 11's
+    thermocouple, put out at 0.81 to 0.85 scaled units whatever its level)."""
+    if len(fit_res) < 2:
+        return cal_scale
+    return np.maximum(cal_scale, regime_scale(fit_res, fit_means, centres))
 
 
 def regime_scale(res: np.ndarray, means: np.ndarray, centres: np.ndarray,

@@ -222,6 +222,14 @@ def test_manifest_describes_the_detector(teacher, bundle):
     for name, factor in tails.items():
         named = f"{name} at {factor:.1f}x" in bundle["stdout"]
         assert named == (round(factor, 1) > 1.0), (name, factor, bundle["stdout"])
+    # the fit span's errors only ever raise a scale too, and are named the same way
+    # (compile/calibrate.py normal_scale)
+    fit = bundle["report"]["regimes"]["fit_factor"]
+    assert sorted(fit) == ["flow", "power", "temp"] and min(fit.values()) >= 1.0
+    said = re.search(r"the fit span's errors read (.*?) the calibration span's", bundle["stdout"])
+    for name, factor in fit.items():
+        named = bool(said) and f"{name} at {factor:.1f}x" in said.group(1)
+        assert named == (round(factor, 1) > 1.0), (name, factor, bundle["stdout"])
     # a 300-row calibration span is plenty for the tail fit: no fallback
     assert m["threshold"]["kind"] == "pot"
     # the false-alarm budget the threshold was calibrated to: q = budget x hop period / week

@@ -390,6 +390,38 @@ def test_a_channel_with_a_heavy_normal_tail_does_not_carry_the_score():
     assert score > p99, (score, p99)
 
 
+
+def test_a_slow_channel_the_network_holds_still_is_scaled_by_the_fit_span_too():
+    """Score scale (compile/calibrate.py, normal_scale): a network that puts out one value for
+    a slowly wandering channel (SKAB valve1 file 11's thermocouple, issue 11's notes) has an
+    error that is the level's distance from that value. When the calibration span happens to
+    hold the level near it, the calibration span's scale alone is tiny and a level the fit span
+    held in normal running reads as tens of normal errors; the fit span's scale bounds it from
+    below. A channel the network follows (its fit-span error smaller, as it trained on them)
+    keeps the calibration span's scale."""
+    from ganlet.compile.calibrate import normal_scale, regime_scale
+
+    rng = np.random.default_rng(1)
+    fit, cal = 1200, 300
+    level = np.concatenate([np.cumsum(rng.normal(0, 0.05, fit)),   # wanders in the fit span
+                            rng.normal(0, 0.02, cal)])              # sits still at the end
+    level[:fit] -= level[fit - 1]                                   # no jump between the spans
+    held = 0.0                                                      # what the network puts out
+    followed = rng.normal(0, 1, fit + cal) * np.r_[np.full(fit, 0.7), np.ones(cal)]
+    res = np.stack([(level - held) ** 2, followed ** 2], axis=1)
+    is_cal = np.arange(fit + cal) >= fit
+    means, centres = np.zeros((fit + cal, 2)), np.zeros((1, 2))
+
+    only_cal = regime_scale(res[is_cal], means[is_cal], centres)[0]
+    both = normal_scale(regime_scale(res[is_cal], means[is_cal], centres), res[~is_cal],
+                        means[~is_cal], centres)[0]
+    assert both[1] == only_cal[1]                                   # followed: unchanged
+    np.testing.assert_allclose(both[0], regime_scale(res[~is_cal], means[~is_cal], centres)[0][0])
+    seen = np.quantile(np.abs(level[:fit]), 0.9)                    # a level normal running held
+    assert seen / only_cal[0] > 20                                  # read as a fault before
+    assert seen / both[0] < 5                                       # a normal error's order now
+
+
 def _drift_entry_hop(levels):
     """The hop at which `_drift_trace` puts the channel in drift, or None."""
     return next((k for k, d in enumerate(_drift_trace(levels)[0]) if d), None)
