@@ -664,18 +664,24 @@ def parse_times(raw: pd.Series, dialect: Optional[Dialect] = None) -> pd.Series:
     if pd.api.types.is_numeric_dtype(raw) and not pd.api.types.is_bool_dtype(raw):
         seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=np.float64)
     else:
-        dialect = dialect or Dialect()
-        seconds = np.array([_seconds_or_nan(cell, dialect) for cell in raw], dtype=np.float64)
+        seconds = _seconds_in_file_order(raw, dialect or Dialect())
     return pd.Series(epoch_to_datetime(seconds), index=raw.index)
 
 
-def _seconds_or_nan(cell, dialect: Dialect) -> float:
-    if not isinstance(cell, str):
-        return float("nan")
-    try:
-        return dialect.time(cell.strip())
-    except RowError:
-        return float("nan")
+def _seconds_in_file_order(raw: pd.Series, dialect: Dialect) -> np.ndarray:
+    """Each text cell read as the gateway reads a row, after the row before it (NaN where
+    unparsable): a local time in the hour that repeats when clocks go back is placed by the
+    time before it (runtime/times.py parse_time)."""
+    seconds = np.full(len(raw), np.nan)
+    after = None
+    for i, cell in enumerate(raw):
+        if not isinstance(cell, str):
+            continue
+        try:
+            seconds[i] = after = dialect.time(cell.strip(), after)
+        except RowError:
+            continue
+    return seconds
 
 
 # datetime64[ns] reaches 2262-04-11; the gateway's parser accepts up to year 9999

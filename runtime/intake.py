@@ -30,8 +30,9 @@ Time cells (our own parser, times.py; the same answers on every supported Python
                     names, anything before 1900 or after 9999 (epoch 1e15, 1e308, -1e11, and
                     0001-01-01T00:00+05:00 among them), and a local time the clocks skip when
                     they go forward in the --tz zone. In the hour that repeats when they go
-                    back, a zone-less time is read as its first pass (log with an offset or in
-                    UTC to avoid that hour's out_of_order rows).
+                    back, a zone-less time is read as its first pass, unless that is before
+                    the row before it and the second pass is after: a feed in wall-clock time
+                    goes through the hour twice, in order (times.parse_time).
 
 A rejected row raises RowError whose `kind` is one of REJECT_KINDS; the service counts them.
 """
@@ -123,11 +124,13 @@ class Dialect:
             raise RowError("bad_encoding", f"not one CSV record ({exc})") from None
         return [cell.strip() for cell in cells]
 
-    def time(self, cell: str) -> float:
+    def time(self, cell: str, after: Optional[float] = None) -> float:
+        """`after`: the previous row's time, which places a wall-clock time in the hour that
+        repeats when clocks go back (times.parse_time)."""
         if self.decimal == "," and _EPOCH_COMMA.fullmatch(cell):
             cell = cell.replace(",", ".")
         try:
-            return parse_time_cell(cell, self.zone, self.date_order)
+            return parse_time_cell(cell, self.zone, self.date_order, after)
         except TimeError as exc:
             raise RowError("bad_time", str(exc)) from None
 
@@ -191,22 +194,23 @@ class Header:
         return (self.dialect.sep, self.n_cells, self.time_index, self.channel_index) == (
             other.dialect.sep, other.n_cells, other.time_index, other.channel_index)
 
-    def time_of(self, line: str) -> Optional[float]:
+    def time_of(self, line: str, after: Optional[float] = None) -> Optional[float]:
         """The row's time if its time cell can be read, else None (used when resuming)."""
         try:
             cells = self.dialect.split(line)
             if len(cells) != self.n_cells:
                 return None
-            return self.dialect.time(cells[self.time_index])
+            return self.dialect.time(cells[self.time_index], after)
         except RowError:
             return None
 
-    def parse(self, line: str) -> Tuple[float, List[float]]:
-        """A data line (no newline) -> (epoch seconds, values in model channel order)."""
+    def parse(self, line: str, after: Optional[float] = None) -> Tuple[float, List[float]]:
+        """A data line (no newline) -> (epoch seconds, values in model channel order); `after`:
+        the previous row's time (Dialect.time)."""
         cells = self.dialect.split(line)
         if len(cells) != self.n_cells:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")
-        t = self.dialect.time(cells[self.time_index])
+        t = self.dialect.time(cells[self.time_index], after)
         number = self.dialect.number
         values = [number(name, cells[i]) for name, i in zip(self.channels, self.channel_index)]
         if all(math.isnan(v) for v in values):

@@ -376,6 +376,7 @@ class Service:
         if self.resume_pos is not None and source.resume_at(self.resume_pos):
             self.resume_after = None
             self.already = self.resume_pos.rows
+            source.last_time = self.det.last_time
         return source
 
     def run(self, source, control: Control) -> int:

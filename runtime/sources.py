@@ -281,6 +281,9 @@ class CsvSource:
         self.header_text = None  # type: Optional[str]  # the last header line, usable or not
         self.lineno = 0
         self.rows = 0  # data lines (neither header nor notice)
+        # the last row time read: places a wall-clock time in the hour that repeats when
+        # clocks go back (times.parse_time); the service sets it when resuming mid-file
+        self.last_time = None  # type: Optional[float]
 
     def resume_at(self, pos: Position) -> bool:
         """Continue right after `pos` when the input still holds the same bytes there (same
@@ -336,11 +339,14 @@ class CsvSource:
             return Record(lineno, error=RowError(
                 "unusable_header", f"the header in force lacks a channel: {self.header_text[:80]!r}"))
         try:
-            t, values = self.header.parse(text)
+            t, values = self.header.parse(text, self.last_time)
         except RowError as exc:
             if header_sep(text, self.time_column, self.dialect):
                 return self._header_line(lineno, text)
-            return Record(lineno, time=self.header.time_of(text), error=exc)
+            t = self.header.time_of(text, self.last_time)
+            self.last_time = self.last_time if t is None else t
+            return Record(lineno, time=t, error=exc)
+        self.last_time = t
         return Record(lineno, time=t, values=values)
 
     def _header_line(self, lineno: int, text: str) -> Record:

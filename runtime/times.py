@@ -132,13 +132,14 @@ def zone_name(zone: tzinfo) -> str:
     return getattr(zone, "key", None) or ("UTC" if zone is timezone.utc else str(zone))
 
 
-def _local_offset(zone: tzinfo, y, mo, d, h, mi, s) -> float:
-    """Seconds east of UTC for a wall-clock time in `zone`; the earlier reading in the hour
-    that repeats when clocks go back; TimeError in the hour skipped when they go forward."""
+def _local_offset(zone: tzinfo, y, mo, d, h, mi, s, fold: int = 0) -> float:
+    """Seconds east of UTC for a wall-clock time in `zone`; in the hour that repeats when
+    clocks go back, its earlier reading (fold 0) or its later one (fold 1); TimeError in the
+    hour skipped when they go forward."""
     if zone is timezone.utc:
         return 0.0
     try:
-        local = datetime(y, mo, d, h, mi, s, tzinfo=zone)
+        local = datetime(y, mo, d, h, mi, s, tzinfo=zone, fold=fold)
         back = local.astimezone(timezone.utc).astimezone(zone)
         offset = local.utcoffset()
     except (OverflowError, ValueError):
@@ -150,8 +151,16 @@ def _local_offset(zone: tzinfo, y, mo, d, h, mi, s) -> float:
 
 
 # ---------------------------------------------------------------------- parsing
-def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str] = None) -> float:
-    """One time cell -> epoch seconds. Raises TimeError saying why it cannot."""
+def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str] = None,
+               after: Optional[float] = None) -> float:
+    """One time cell -> epoch seconds. Raises TimeError saying why it cannot.
+
+    A zone-less time in the hour that repeats when clocks go back is read as its earlier
+    instant, unless that lies before `after` (the time of the row before it) and the later
+    instant lies after: a feed written in local wall-clock time goes through that hour twice,
+    and its second pass continues the series. Read as the earlier instant, the second pass
+    went an hour back in time: training averaged the two passes together and left an hour's
+    gap, the gateway restarted its clock and dated that hour's events an hour early."""
     text = cell.strip()
     if not text:
         raise TimeError("empty time cell")
@@ -168,10 +177,14 @@ def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str]
         y, mo, d, rest = _date_fields(text, date_order)
         h, mi, s, frac, offset = _time_fields(rest, text)
     _check_fields(y, mo, d, h, mi, s)
+    wall = days_from_civil(y, mo, d) * 86400.0 + h * 3600 + mi * 60 + s + frac
     if offset is None:
         offset = _local_offset(zone, y, mo, d, h, mi, s)
-    t = days_from_civil(y, mo, d) * 86400.0 + h * 3600 + mi * 60 + s - offset
-    return _checked(t + frac, text)
+        if after is not None and wall - offset < after:
+            later = _local_offset(zone, y, mo, d, h, mi, s, fold=1)
+            if wall - later > after:
+                offset = later
+    return _checked(wall - offset, text)
 
 
 def _checked(t: float, text: str, epoch: bool = False) -> float:

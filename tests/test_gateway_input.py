@@ -415,6 +415,42 @@ def test_a_semicolon_decimal_comma_local_time_file_streams_and_trains_alike(bund
         load_frame(feed, IntakeOptions(tz="Europe/Berlin"))
 
 
+
+def test_a_local_time_feed_through_the_hour_clocks_go_back_streams_and_trains_alike(
+        bundle_dir, tmp_path):
+    # Europe/Berlin went back from 03:00 CEST to 02:00 CET at 2024-10-27T01:00Z (reference:
+    # pandas' zone data in _berlin_local). 240 rows a second around it, in wall-clock time:
+    # 02:58:00 .. 02:59:59, then 02:00:00 .. 02:01:59 again. Before, the gateway restarted its
+    # clock at the step back, then saw an hour's gap (a window reset); training averaged the
+    # two passes together.
+    utc = pd.Timestamp("2024-10-27T00:58:00Z").timestamp() + np.arange(240.0)
+    values, _ = clean_lines(240, seed=41)
+    plain = stream(bundle_dir, write_lines(tmp_path / "plain.csv",
+                                           [HEADER] + rows_text(values, utc)))
+    local = [HEADER] + [",".join([_berlin_local(t)] + [repr(float(v)) for v in row])
+                        for t, row in zip(utc, values)]
+    assert local[121].split(",")[0] == "2024-10-27 02:00:00"   # the second pass begins
+    feed = write_lines(tmp_path / "local.csv", local)
+    run = stream(bundle_dir, feed, "--tz", "Europe/Berlin")
+    assert run.code == 0, run.err
+    assert not run.of("time_jump") and not run.of("gap")
+    assert run.score_times == plain.score_times and run.scores == plain.scores
+    # stopped inside the second pass and resumed on the same file: the same scores
+    state = tmp_path / "state"
+    write_lines(feed, local[:150])
+    first = stream(bundle_dir, feed, "--tz", "Europe/Berlin", "--state", str(state))
+    write_lines(feed, local)
+    rest = stream(bundle_dir, feed, "--tz", "Europe/Berlin", "--state", str(state))
+    assert not first.of("time_jump") + rest.of("time_jump")
+    assert first.score_times + rest.score_times == plain.score_times
+    assert first.scores + rest.scores == plain.scores
+    # the workstation reads the file to the same instants, none averaged, no gap
+    frame = load_frame(feed, IntakeOptions(tz="Europe/Berlin",
+                                           channels=["flow", "pressure", "vibration"]))
+    assert (frame.times == pd.to_datetime(utc, unit="s")).all()
+    assert frame.report.duplicates == 0 and not frame.report.long_gaps
+
+
 def test_the_bundle_zone_is_the_default(tmp_path):
     bundle = fx.build_bundle(tmp_path / "berlin", window=WINDOW, hop=HOP, onnx_model=False,
                              time_zone="Europe/Berlin")

@@ -94,6 +94,35 @@ def test_zoneless_times_in_a_named_zone_match_pandas(zone):
         assert parse_cell(cell, tz) == want, cell
 
 
+
+@pytest.mark.parametrize("zone, back", [("Europe/Berlin", "2026-10-25 01:00"),
+                                        ("America/New_York", "2026-11-01 06:00"),
+                                        ("Australia/Lord_Howe", "2026-04-04 15:00")])
+def test_the_hour_repeated_when_clocks_go_back_is_placed_by_the_row_before(zone, back):
+    # A logger writing local wall-clock time goes through the repeated hour twice (Lord Howe:
+    # half an hour). Read one row after another, the second pass continues the series.
+    # Reference: pandas tz_localize(ambiguous="infer"), which infers the two passes from the
+    # order of the times. (`back`: the instant clocks go back, in UTC, from the zone data.)
+    utc = pd.date_range(pd.Timestamp(back, tz="UTC") - pd.Timedelta("90min"), periods=40,
+                        freq="7min")
+    wall = utc.tz_convert(zone).tz_localize(None)
+    assert (wall[1:] < wall[:-1]).any()                         # the file steps back once
+    tz, after, got = zone_from_name(zone), None, []
+    for ts in wall:
+        after = parse_cell(ts.strftime("%Y-%m-%dT%H:%M:%S"), tz, after=after)
+        got.append(after)
+    want = [epoch(t) for t in wall.tz_localize(zone, ambiguous="infer")]
+    assert got == want == [epoch(t) for t in utc]
+    # alone (no row before) or after a row it repeats, a cell keeps its earlier reading
+    second = wall[[k for k in range(1, len(wall)) if wall[k] < wall[k - 1]][0]]
+    cell = second.strftime("%Y-%m-%dT%H:%M:%S")
+    first = epoch(second.tz_localize(zone, ambiguous=True))
+    assert parse_cell(cell, tz) == first == parse_cell(cell, tz, after=first)
+    # outside the repeated hour the row before changes nothing (a row out of order stays so)
+    assert parse_cell("2026-07-01T12:00:00", tz, after=2e9) == epoch(
+        pd.Timestamp("2026-07-01T12:00:00").tz_localize(zone))
+
+
 def test_explicit_offsets_win_over_the_zone_and_fixed_offsets_work():
     berlin = zone_from_name("Europe/Berlin")
     assert parse_cell("2026-07-01T12:00:00Z", berlin) == epoch(pd.Timestamp("2026-07-01T12:00Z"))
