@@ -19,7 +19,7 @@ import pandas as pd
 
 from ganlet.runtime.features import rate_mask
 from ganlet.runtime.features import series as feature_series
-from ganlet.runtime.intake import Dialect, RowError
+from ganlet.runtime.intake import FALLBACK_ENCODING, UTF16_MARKS, Dialect, RowError
 from ganlet.runtime.times import MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
@@ -203,13 +203,32 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".") -> pd.DataFra
     if sep == decimal:
         raise IntakeError(f"--sep and --decimal are both {sep!r}; give the file's separator")
     try:
-        df = pd.read_csv(path, sep=sep, decimal=decimal)
-    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+        df = read_csv_text(path, sep, decimal)
+    except pd.errors.ParserError as exc:
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
     # One column whose name holds another delimiter: the separator is wrong, not the time column.
     if len(df.columns) == 1 and any(d in str(df.columns[0]) for d in ",;\t|"):
         raise IntakeError(f"{path}: read one column {str(df.columns[0])!r} with delimiter "
                           f"{sep!r}; the delimiter looks wrong, give it with --sep")
+    return df
+
+
+def read_csv_text(path: Path, sep: str, decimal: str) -> pd.DataFrame:
+    """UTF-8, else Windows-1252 with a warning, as the gateway decodes a line
+    (runtime/intake.py FALLBACK_ENCODING); a UTF-16 file is refused."""
+    with open(path, "rb") as fh:
+        if fh.read(2) in UTF16_MARKS:
+            raise IntakeError(f"{path}: the file is UTF-16; save it as UTF-8 (or Windows-1252)")
+    try:
+        return pd.read_csv(path, sep=sep, decimal=decimal)
+    except UnicodeDecodeError as exc:
+        try:
+            df = pd.read_csv(path, sep=sep, decimal=decimal, encoding=FALLBACK_ENCODING)
+        except UnicodeDecodeError:
+            raise IntakeError(f"{path}: neither UTF-8 nor Windows-1252 ({exc}); save it as "
+                              "UTF-8") from None
+    warnings.warn(f"{path.name} is not UTF-8: read as Windows-1252 (as the gateway reads such "
+                  "lines)", stacklevel=3)
     return df
 
 

@@ -235,16 +235,29 @@ def _check_columns(cells: List[str], time_column: str, channels: Sequence[str]) 
         )
 
 
+# A line that is not UTF-8 is read as Windows-1252, the encoding spreadsheets and SCADA tools on
+# Windows write CSV in ('Temperatur °C'); `ganlet train` reads such a file the same way, so a
+# header names the same channels on both sides. A UTF-16 line (its byte-order mark) is refused.
+FALLBACK_ENCODING = "cp1252"
+UTF16_MARKS = (b"\xff\xfe", b"\xfe\xff")
+
+
 def decode_line(raw: bytes) -> Optional[str]:
     """Bytes of one line (newline stripped by the reader) -> text; None for a blank line.
     Leading NUL bytes are dropped: they are the hole a copy-truncate rotation leaves when the
     writer does not append."""
     if len(raw) > MAX_LINE_BYTES:
         raise RowError("too_long", f"{len(raw)} bytes > {MAX_LINE_BYTES}")
+    raw = raw.lstrip(b"\0")
     try:
-        text = raw.lstrip(b"\0").decode("utf-8")
+        text = raw.decode("utf-8")
     except UnicodeDecodeError:
-        raise RowError("bad_encoding", "line is not UTF-8") from None
+        if raw.startswith(UTF16_MARKS):
+            raise RowError("bad_encoding", "line is UTF-16; write the file as UTF-8") from None
+        try:
+            text = raw.decode(FALLBACK_ENCODING)
+        except UnicodeDecodeError:
+            raise RowError("bad_encoding", "line is neither UTF-8 nor Windows-1252") from None
     text = text.rstrip("\r")
     if not text.strip():
         return None

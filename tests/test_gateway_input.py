@@ -451,6 +451,34 @@ def test_a_local_time_feed_through_the_hour_clocks_go_back_streams_and_trains_al
     assert frame.report.duplicates == 0 and not frame.report.long_gaps
 
 
+
+def test_a_windows_1252_file_streams_and_trains_alike_and_utf16_is_refused(bundle_dir, tmp_path):
+    # Spreadsheets and SCADA tools on Windows write CSV in Windows-1252: a note column
+    # 'Störung' and a unit '°C' are bytes 0xF6 and 0xB0, not UTF-8. Before, the gateway refused
+    # every such row (bad_encoding) and training failed with "try --sep". Reference: Python's
+    # own cp1252 codec (the Windows-1252 table) encodes the file.
+    values, lines = clean_lines(80, seed=42)
+    plain = stream(bundle_dir, write_lines(tmp_path / "plain.csv", [HEADER] + lines))
+    text = "\n".join([HEADER + ",Bemerkung"] + [line + ",Störung 5 °C" for line in lines]) + "\n"
+    feed = tmp_path / "windows.csv"
+    feed.write_bytes(text.encode("cp1252"))
+    run = stream(bundle_dir, feed)
+    assert run.code == 0 and not any(run.stop["errors"].values()), run.stop
+    assert run.scores == plain.scores
+    named = tmp_path / "named.csv"
+    named.write_bytes(text.replace("flow", "Durchfluss °C").encode("cp1252"))
+    with pytest.warns(UserWarning, match="not UTF-8: read as Windows-1252"):
+        frame = load_frame(named)
+    assert frame.channels == ["Durchfluss °C", "pressure", "vibration"]
+    np.testing.assert_array_equal(frame.values, values)
+    # UTF-16 (byte-order mark first) is said plainly on both sides
+    wide = tmp_path / "wide.csv"
+    wide.write_bytes(text.encode("utf-16"))
+    with pytest.raises(IntakeError, match="UTF-16; save it as UTF-8"):
+        load_frame(wide)
+    assert "UTF-16" in stream(bundle_dir, wide).err
+
+
 def test_the_bundle_zone_is_the_default(tmp_path):
     bundle = fx.build_bundle(tmp_path / "berlin", window=WINDOW, hop=HOP, onnx_model=False,
                              time_zone="Europe/Berlin")
