@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import json
+import re
 import warnings
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -270,6 +271,61 @@ def find_time_column(df: pd.DataFrame, requested: Optional[str]) -> str:
                       f"{', '.join(map(str, df.columns))})")
 
 
+_DATE_ONLY = re.compile(r"\d{4}-\d{2}-\d{2}|\d{1,2}[./-]\d{1,2}[./-]\d{4}|\d{4}/\d{1,2}/\d{1,2}")
+_TIME_OF_DAY = re.compile(r"\d{1,2}:\d{2}(:\d{2}([.,]\d+)?)?")
+
+
+def refuse_split_time(df: pd.DataFrame, time_col, path) -> None:
+    """A date column beside a time-of-day column (some loggers and spreadsheets write them
+    apart): say to join them, instead of reading every row of a day as one timestamp."""
+    dates = df[time_col].dropna().astype(str).str.strip().head(200)
+    if not len(dates) or not dates.str.fullmatch(_DATE_ONLY).all():
+        return
+    for col in df.columns:
+        cells = df[col].dropna().astype(str).str.strip().head(200)
+        if col != time_col and len(cells) and cells.str.fullmatch(_TIME_OF_DAY).all():
+            raise IntakeError(
+                f"{path}: the time is split over column {time_col!r} (dates) and {col!r} (times "
+                f"of day); join them into one column (e.g. '{dates.iloc[0]} {cells.iloc[0]}') "
+                "for training and for the gateway")
+
+
+def without_units_row(df: pd.DataFrame, time_col, dialect: Dialect, notes: list) -> tuple:
+    """(df, units by column): a first data row whose time cell is not a time and whose cells
+    make otherwise numeric columns text is a units row ('', 'bar', 'degC'), as many SCADA
+    exports write under the header: it is dropped, its cells taken as the columns' units
+    (--units wins), and the columns read as numbers. The gateway refuses that line as
+    bad_time, one line."""
+    if len(df) < 3 or not _unparsable_time(df[time_col].iloc[0], dialect):
+        return df, {}
+    rest = df.iloc[1:]
+    texts = [c for c in df.columns if c != time_col and not pd.api.types.is_numeric_dtype(df[c])]
+    numeric = [c for c in texts
+               if pd.to_numeric(rest[c], errors="coerce").notna().sum() == rest[c].notna().sum()
+               and rest[c].notna().any()]
+    if not numeric:
+        return df, {}
+    units = {str(c): str(df[c].iloc[0]).strip() for c in df.columns
+             if c != time_col and pd.notna(df[c].iloc[0]) and str(df[c].iloc[0]).strip()}
+    out = rest.reset_index(drop=True).copy()
+    for c in numeric:
+        out[c] = pd.to_numeric(out[c])
+    notes.append(f"the first row under the header is a units row, read as units: "
+                 f"{', '.join(f'{c} {u}' for c, u in units.items()) or 'none'}")
+    warnings.warn(notes[-1], stacklevel=3)
+    return out, units
+
+
+def _unparsable_time(cell, dialect: Dialect) -> bool:
+    if cell is None or (not isinstance(cell, str) and pd.isna(cell)):
+        return True
+    try:
+        dialect.time(str(cell).strip())
+    except RowError:
+        return True
+    return False
+
+
 def unit_for(name: str, given: dict) -> str:
     if name in given:
         return given[name]
@@ -289,6 +345,8 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         raise IntakeError(f"{path}: no data rows")
     notes: list = []
     time_col = find_time_column(df, opts.time_col)
+    refuse_split_time(df, time_col, path)
+    df, row_units = without_units_row(df, time_col, dialect, notes)
     channels, excluded = pick_channels(df, time_col, opts, path)
     times_np, values, unparsable = timed_rows(df, time_col, channels, dialect, notes)
     channels, values, excluded = without_blank_columns(channels, values, excluded,
@@ -309,7 +367,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     segs = runs(~np.isnan(grid).any(axis=1))
     ranges = {name: [float(np.nanmin(grid[:, j])), float(np.nanmax(grid[:, j]))]
               for j, name in enumerate(channels)}
-    units = [unit_for(c, opts.units) for c in channels]
+    units = [unit_for(c, {**row_units, **opts.units}) for c in channels]
     report = IntakeReport(
         source=str(path), rows_read=int(len(df)), time_col=str(time_col),
         channels=[str(c) for c in channels], units=units, excluded=[str(c) for c in excluded],

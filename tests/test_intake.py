@@ -159,6 +159,38 @@ def test_a_column_blank_in_every_row_is_left_out_or_refused_when_named(write_csv
         load_frame(write_csv(df), IntakeOptions(channels=["flow", "spare"]))
 
 
+
+def test_a_units_row_under_the_header_gives_the_units(tmp_path):
+    # Many SCADA exports write a units row under the header. Before, it made every channel
+    # text and training said "no numeric channel found".
+    df = correlated_series(100)
+    path = tmp_path / "units.csv"
+    with open(path, "w") as fh:
+        fh.write("time,flow,power,temp\n,l/min,kW,\n")
+        df.to_csv(fh, index=False, header=False)
+    with pytest.warns(UserWarning, match="units row, read as units: flow l/min, power kW"):
+        frame = load_frame(path, IntakeOptions(units={"power": "W"}))
+    assert frame.channels == CHANNELS and frame.units == ["l/min", "W", ""]  # --units wins
+    np.testing.assert_allclose(frame.values, df[CHANNELS].to_numpy())
+    # a file whose first row is data is read as before
+    assert load_frame(write_plain(tmp_path / "plain.csv", df)).report.rows_read == 100
+
+
+def write_plain(path, df):
+    df.to_csv(path, index=False)
+    return path
+
+
+def test_a_time_split_over_a_date_and_a_time_of_day_column_says_to_join_them(tmp_path):
+    df = correlated_series(100)
+    t = pd.to_datetime(df.pop("time"))
+    df.insert(0, "Time", t.dt.strftime("%H:%M:%S"))
+    df.insert(0, "Date", t.dt.strftime("%d.%m.%Y"))
+    with pytest.raises(IntakeError, match=r"split over column 'Date' \(dates\) and 'Time' "
+                                          r"\(times of day\); join them .*'05.01.2026 00:00:00'"):
+        load_frame(write_plain(tmp_path / "split.csv", df))
+
+
 # ------------------------------------------------------------------------------------------
 # the grid
 
