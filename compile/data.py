@@ -8,6 +8,7 @@ inside a segment, and no window that spans a long gap.
 from __future__ import annotations
 
 import csv
+import io
 import json
 import re
 import warnings
@@ -20,7 +21,7 @@ import pandas as pd
 
 from ganlet.runtime.features import rate_mask
 from ganlet.runtime.features import series as feature_series
-from ganlet.runtime.intake import FALLBACK_ENCODING, UTF16_MARKS, Dialect, RowError
+from ganlet.runtime.intake import UTF16_MARKS, Dialect, RowError, decode_text
 from ganlet.runtime.times import MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
@@ -184,7 +185,8 @@ def snapped_period(median: float, notes: list) -> float:
     return median
 
 
-def read_table(path: Path, sep: Optional[str], decimal: str = ".") -> pd.DataFrame:
+def read_table(path: Path, sep: Optional[str], decimal: str = ".",
+               skip_units_row: bool = False) -> pd.DataFrame:
     path = Path(path)
     if not path.exists():
         raise IntakeError(f"{path}: no such file")
@@ -204,7 +206,7 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".") -> pd.DataFra
     if sep == decimal:
         raise IntakeError(f"--sep and --decimal are both {sep!r}; give the file's separator")
     try:
-        df = read_csv_text(path, sep, decimal)
+        df = read_csv_text(path, sep, decimal, skip_units_row)
     except pd.errors.ParserError as exc:
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
     # One column whose name holds another delimiter: the separator is wrong, not the time column.
@@ -214,23 +216,31 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".") -> pd.DataFra
     return df
 
 
-def read_csv_text(path: Path, sep: str, decimal: str) -> pd.DataFrame:
-    """UTF-8, else Windows-1252 with a warning, as the gateway decodes a line
-    (runtime/intake.py FALLBACK_ENCODING); a UTF-16 file is refused."""
-    with open(path, "rb") as fh:
-        if fh.read(2) in UTF16_MARKS:
-            raise IntakeError(f"{path}: the file is UTF-16; save it as UTF-8 (or Windows-1252)")
+def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = False):
+    """The CSV as a table, each line decoded as the gateway decodes it (runtime/intake.py
+    decode_text: UTF-8, else Windows-1252, with a warning here); a UTF-16 file is refused.
+    skip_units_row: leave out the line under the header (without_units_row)."""
+    skip = [1] if skip_units_row else None
+    raw = path.read_bytes()
+    if raw[:2] in UTF16_MARKS:
+        raise IntakeError(f"{path}: the file is UTF-16; save it as UTF-8 (or Windows-1252)")
     try:
-        return pd.read_csv(path, sep=sep, decimal=decimal)
-    except UnicodeDecodeError as exc:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        pass
+    else:
+        return pd.read_csv(path, sep=sep, decimal=decimal, skiprows=skip)
+    lines = []
+    for number, line in enumerate(raw.split(b"\n"), start=1):
         try:
-            df = pd.read_csv(path, sep=sep, decimal=decimal, encoding=FALLBACK_ENCODING)
-        except UnicodeDecodeError:
-            raise IntakeError(f"{path}: neither UTF-8 nor Windows-1252 ({exc}); save it as "
+            lines.append(decode_text(line))
+        except RowError as exc:
+            raise IntakeError(f"{path}: line {number}: {exc.detail}; save the file as "
                               "UTF-8") from None
-    warnings.warn(f"{path.name} is not UTF-8: read as Windows-1252 (as the gateway reads such "
-                  "lines)", stacklevel=3)
-    return df
+    warnings.warn(f"{path.name} is not UTF-8: lines read as Windows-1252, as the gateway "
+                  "reads them", stacklevel=4)
+    text = "\n".join(lines).lstrip("\ufeff")
+    return pd.read_csv(io.StringIO(text), sep=sep, decimal=decimal, skiprows=skip)
 
 
 # A number written with a decimal comma: 1,5  -0,25  1.234,5 (thousands dots allowed)
@@ -290,30 +300,34 @@ def refuse_split_time(df: pd.DataFrame, time_col, path) -> None:
                 "for training and for the gateway")
 
 
-def without_units_row(df: pd.DataFrame, time_col, dialect: Dialect, notes: list) -> tuple:
-    """(df, units by column): a first data row whose time cell is not a time and whose cells
-    make otherwise numeric columns text is a units row ('', 'bar', 'degC'), as many SCADA
-    exports write under the header: it is dropped, its cells taken as the columns' units
-    (--units wins), and the columns read as numbers. The gateway refuses that line as
-    bad_time, one line."""
+def units_row(df: pd.DataFrame, time_col, dialect: Dialect, notes: list) -> Optional[dict]:
+    """{column: unit} when the first data row is a units row, else None: its time cell is not
+    a time and its cells make columns text that are numbers below it ('', 'bar', 'degC' under
+    the header, as many SCADA exports write). The caller reads the file again without it, so
+    the columns are read as numbers with the file's own decimal mark; its cells are the
+    columns' units (--units wins). The gateway refuses that line as bad_time, one line."""
     if len(df) < 3 or not _unparsable_time(df[time_col].iloc[0], dialect):
-        return df, {}
-    rest = df.iloc[1:]
+        return None
+    below = df.iloc[1:]
     texts = [c for c in df.columns if c != time_col and not pd.api.types.is_numeric_dtype(df[c])]
-    numeric = [c for c in texts
-               if pd.to_numeric(rest[c], errors="coerce").notna().sum() == rest[c].notna().sum()
-               and rest[c].notna().any()]
-    if not numeric:
-        return df, {}
+    if not any(below[c].notna().any() and _numbers(below[c], dialect) for c in texts):
+        return None
     units = {str(c): str(df[c].iloc[0]).strip() for c in df.columns
              if c != time_col and pd.notna(df[c].iloc[0]) and str(df[c].iloc[0]).strip()}
-    out = rest.reset_index(drop=True).copy()
-    for c in numeric:
-        out[c] = pd.to_numeric(out[c])
     notes.append(f"the first row under the header is a units row, read as units: "
                  f"{', '.join(f'{c} {u}' for c, u in units.items()) or 'none'}")
     warnings.warn(notes[-1], stacklevel=3)
-    return out, units
+    return units
+
+
+def _numbers(cells: pd.Series, dialect: Dialect) -> bool:
+    """Every non-blank cell of the first 200 is a number as the gateway reads one."""
+    try:
+        for cell in cells.dropna().head(200):
+            dialect.number("", str(cell))
+    except RowError:
+        return False
+    return True
 
 
 def _unparsable_time(cell, dialect: Dialect) -> bool:
@@ -346,7 +360,9 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     notes: list = []
     time_col = find_time_column(df, opts.time_col)
     refuse_split_time(df, time_col, path)
-    df, row_units = without_units_row(df, time_col, dialect, notes)
+    row_units = units_row(df, time_col, dialect, notes)
+    if row_units is not None:
+        df = read_table(Path(path), opts.sep, opts.decimal, skip_units_row=True)
     channels, excluded = pick_channels(df, time_col, opts, path)
     times_np, values, unparsable = timed_rows(df, time_col, channels, dialect, notes)
     channels, values, excluded = without_blank_columns(channels, values, excluded,
@@ -367,7 +383,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     segs = runs(~np.isnan(grid).any(axis=1))
     ranges = {name: [float(np.nanmin(grid[:, j])), float(np.nanmax(grid[:, j]))]
               for j, name in enumerate(channels)}
-    units = [unit_for(c, {**row_units, **opts.units}) for c in channels]
+    units = [unit_for(c, {**(row_units or {}), **opts.units}) for c in channels]
     report = IntakeReport(
         source=str(path), rows_read=int(len(df)), time_col=str(time_col),
         channels=[str(c) for c in channels], units=units, excluded=[str(c) for c in excluded],

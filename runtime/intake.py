@@ -242,23 +242,26 @@ FALLBACK_ENCODING = "cp1252"
 UTF16_MARKS = (b"\xff\xfe", b"\xfe\xff")
 
 
+def decode_text(raw: bytes) -> str:
+    """One line's bytes as text: UTF-8, else Windows-1252 (FALLBACK_ENCODING)."""
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError:
+        if raw.startswith(UTF16_MARKS):
+            raise RowError("bad_encoding", "line is UTF-16; write the file as UTF-8") from None
+        try:
+            return raw.decode(FALLBACK_ENCODING)
+        except UnicodeDecodeError:
+            raise RowError("bad_encoding", "line is neither UTF-8 nor Windows-1252") from None
+
+
 def decode_line(raw: bytes) -> Optional[str]:
     """Bytes of one line (newline stripped by the reader) -> text; None for a blank line.
     Leading NUL bytes are dropped: they are the hole a copy-truncate rotation leaves when the
     writer does not append."""
     if len(raw) > MAX_LINE_BYTES:
         raise RowError("too_long", f"{len(raw)} bytes > {MAX_LINE_BYTES}")
-    raw = raw.lstrip(b"\0")
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        if raw.startswith(UTF16_MARKS):
-            raise RowError("bad_encoding", "line is UTF-16; write the file as UTF-8") from None
-        try:
-            text = raw.decode(FALLBACK_ENCODING)
-        except UnicodeDecodeError:
-            raise RowError("bad_encoding", "line is neither UTF-8 nor Windows-1252") from None
-    text = text.rstrip("\r")
+    text = decode_text(raw.lstrip(b"\0")).rstrip("\r")
     if not text.strip():
         return None
     return text

@@ -177,14 +177,14 @@ def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str]
         y, mo, d, rest = _date_fields(text, date_order)
         h, mi, s, frac, offset = _time_fields(rest, text)
     _check_fields(y, mo, d, h, mi, s)
-    wall = days_from_civil(y, mo, d) * 86400.0 + h * 3600 + mi * 60 + s + frac
+    wall = days_from_civil(y, mo, d) * 86400.0 + h * 3600 + mi * 60 + s
     if offset is None:
         offset = _local_offset(zone, y, mo, d, h, mi, s)
-        if after is not None and wall - offset < after:
+        if after is not None and wall - offset + frac < after:
             later = _local_offset(zone, y, mo, d, h, mi, s, fold=1)
-            if wall - later > after:
+            if wall - later + frac > after:
                 offset = later
-    return _checked(wall - offset, text)
+    return _checked(wall - offset + frac, text)
 
 
 def _checked(t: float, text: str, epoch: bool = False) -> float:

@@ -467,7 +467,7 @@ def test_a_windows_1252_file_streams_and_trains_alike_and_utf16_is_refused(bundl
     assert run.scores == plain.scores
     named = tmp_path / "named.csv"
     named.write_bytes(text.replace("flow", "Durchfluss °C").encode("cp1252"))
-    with pytest.warns(UserWarning, match="not UTF-8: read as Windows-1252"):
+    with pytest.warns(UserWarning, match="not UTF-8: lines read as Windows-1252"):
         frame = load_frame(named)
     assert frame.channels == ["Durchfluss °C", "pressure", "vibration"]
     np.testing.assert_array_equal(frame.values, values)

@@ -172,6 +172,15 @@ def test_a_units_row_under_the_header_gives_the_units(tmp_path):
         frame = load_frame(path, IntakeOptions(units={"power": "W"}))
     assert frame.channels == CHANNELS and frame.units == ["l/min", "W", ""]  # --units wins
     np.testing.assert_allclose(frame.values, df[CHANNELS].to_numpy())
+    # with decimal commas the numbers under it are read as the gateway reads them
+    commas = tmp_path / "commas.csv"
+    with open(commas, "w") as fh:
+        fh.write("time;flow;power;temp\n;l/min;kW;degC\n")
+        df.to_csv(fh, index=False, header=False, sep=";", decimal=",")
+    with pytest.warns(UserWarning, match="units row"):
+        frame = load_frame(commas, IntakeOptions(decimal=","))
+    assert frame.units == ["l/min", "kW", "degC"]
+    np.testing.assert_allclose(frame.values, df[CHANNELS].to_numpy())
     # a file whose first row is data is read as before
     assert load_frame(write_plain(tmp_path / "plain.csv", df)).report.rows_read == 100
 
