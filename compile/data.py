@@ -209,11 +209,24 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".",
         df = read_csv_text(path, sep, decimal, skip_units_row)
     except pd.errors.ParserError as exc:
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
+    df = with_stripped_names(df, path)
     # One column whose name holds another delimiter: the separator is wrong, not the time column.
     if len(df.columns) == 1 and any(d in str(df.columns[0]) for d in ",;\t|"):
         raise IntakeError(f"{path}: read one column {str(df.columns[0])!r} with delimiter "
                           f"{sep!r}; the delimiter looks wrong, give it with --sep")
     return df
+
+
+def with_stripped_names(df: pd.DataFrame, path) -> pd.DataFrame:
+    """Column names as the gateway reads a header, each cell stripped of spaces: 'time, flow'
+    names 'flow', not ' flow' (before, the bundle then refused the header of the very file it
+    was trained on). Two columns that strip to one name are refused, as the gateway does."""
+    names = [str(c).strip() if isinstance(c, str) else c for c in df.columns]
+    twice = sorted({str(n) for n in names if names.count(n) > 1})
+    if twice:
+        raise IntakeError(f"{path}: column(s) {', '.join(map(repr, twice))} named more than "
+                          "once; give every column its own name")
+    return df.set_axis(names, axis=1)
 
 
 def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = False):

@@ -479,6 +479,22 @@ def test_a_windows_1252_file_streams_and_trains_alike_and_utf16_is_refused(bundl
     assert "UTF-16" in stream(bundle_dir, wide).err
 
 
+
+def test_spaces_after_the_separators_name_the_same_columns_on_both_sides(bundle_dir, tmp_path):
+    # 'time, flow, pressure' (a space after each comma, as many tools write): the gateway strips
+    # each header cell; training kept ' flow', so the bundle refused the header of the very
+    # file it was trained on (input header lacks channel(s) [' flow', ...]).
+    values, lines = clean_lines(60, seed=43)
+    plain = stream(bundle_dir, write_lines(tmp_path / "plain.csv", [HEADER] + lines))
+    feed = write_lines(tmp_path / "spaced.csv", [HEADER.replace(",", ", ")]
+                       + [line.replace(",", ", ") for line in lines])
+    run = stream(bundle_dir, feed)
+    assert run.code == 0 and run.scores == plain.scores
+    frame = load_frame(feed)
+    assert frame.channels == ["flow", "pressure", "vibration"]
+    np.testing.assert_array_equal(frame.values, values)
+
+
 def test_the_bundle_zone_is_the_default(tmp_path):
     bundle = fx.build_bundle(tmp_path / "berlin", window=WINDOW, hop=HOP, onnx_model=False,
                              time_zone="Europe/Berlin")
