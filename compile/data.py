@@ -208,6 +208,7 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".",
     try:
         df = read_csv_text(path, sep, decimal, skip_units_row)
     except pd.errors.ParserError as exc:
+        refuse_preamble(path, sep)
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
     df = with_stripped_names(df, path)
     # One column whose name holds another delimiter: the separator is wrong, not the time column.
@@ -215,6 +216,21 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".",
         raise IntakeError(f"{path}: read one column {str(df.columns[0])!r} with delimiter "
                           f"{sep!r}; the delimiter looks wrong, give it with --sep")
     return df
+
+
+def refuse_preamble(path: Path, sep: str) -> None:
+    """Lines above the header (an export's title, a date range), found as lines with fewer
+    fields than the most common count of the first rows: say how many to remove. The gateway
+    takes the first line as the header too."""
+    with open(path, encoding="utf-8", errors="replace") as fh:
+        head = [line.rstrip("\r\n") for _, line in zip(range(200), fh)]
+    counts = [len(line.split(sep)) for line in head]
+    common = max(set(counts), key=counts.count)
+    first = next((i for i, n in enumerate(counts) if n == common), 0)
+    if 0 < first < len(head) and common > 1:
+        raise IntakeError(f"{path}: {first} line(s) above the header ({head[0][:60]!r}); "
+                          f"remove them: the first line must name the columns, for training "
+                          f"and for the gateway")
 
 
 def with_stripped_names(df: pd.DataFrame, path) -> pd.DataFrame:

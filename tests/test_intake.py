@@ -190,6 +190,19 @@ def write_plain(path, df):
     return path
 
 
+
+def test_lines_above_the_header_are_named_with_how_many_to_remove(tmp_path):
+    # An export's title and date range above the header: before, "cannot parse as CSV ...;
+    # try --sep", which is not the problem.
+    path = tmp_path / "export.csv"
+    with open(path, "w") as fh:
+        fh.write("Export: station P2\nFrom 2026-01-05 to 2026-01-06\n\n")
+        correlated_series(100).to_csv(fh, index=False)
+    with pytest.raises(IntakeError, match=r"3 line\(s\) above the header \('Export: station "
+                                          r"P2'\); remove them"):
+        load_frame(path)
+
+
 def test_a_time_split_over_a_date_and_a_time_of_day_column_says_to_join_them(tmp_path):
     df = correlated_series(100)
     t = pd.to_datetime(df.pop("time"))
