@@ -248,7 +248,7 @@ def with_stripped_names(df: pd.DataFrame, path) -> pd.DataFrame:
 def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = False):
     """The CSV as a table, each line decoded as the gateway decodes it (runtime/intake.py
     decode_text: UTF-8, else Windows-1252, with a warning here); a UTF-16 file is refused.
-    skip_units_row: leave out the line under the header (without_units_row)."""
+    skip_units_row: leave out the line under the header (units_row)."""
     skip = [1] if skip_units_row else None
     raw = path.read_bytes()
     if raw[:2] in UTF16_MARKS:
