@@ -44,20 +44,27 @@ def incidents_of(path: Path):
     return incidents, labels, times
 
 
-def train_and_compile(path: Path, train_rows: int, seed: int, out: Path, options):
-    """`ganlet train` (defaults, the first train_rows rows, one torch thread) and `ganlet
-    compile` (CompileOptions `options`) of one file: (frame, model_dir); the bundle is out/bundle."""
+def train_and_compile(path: Path, train_rows: int, seed: int, out: Path, options,
+                      channels=None):
+    """`ganlet train` (defaults, the first train_rows rows, one torch thread; `channels`: as
+    --channels) and `ganlet compile` (CompileOptions `options`) of one file: (frame,
+    model_dir); the bundle is out/bundle."""
     import torch
 
-    from ganlet.compile.data import load_frame, split_spans, without_constant_channels
+    from ganlet.compile.data import (
+        IntakeOptions,
+        load_frame,
+        split_spans,
+        without_constant_channels,
+    )
     from ganlet.compile.model import TeacherConfig
     from ganlet.compile.pipeline import compile_model
     from ganlet.compile.train import save_model, train
 
     torch.set_num_threads(1)
-    frame = load_frame(path)
+    frame = load_frame(path, IntakeOptions(channels=channels))
     spans = split_spans(frame, train_rows, 0.2)
-    frame = without_constant_channels(frame, spans, named=False)[0]   # as `ganlet train` does
+    frame = without_constant_channels(frame, spans, named=bool(channels))[0]  # as `ganlet train`
     model = train(frame, spans, replace(TeacherConfig(), seed=seed))
     model_dir = save_model(model, out / "model")
     compile_model(model, out / "bundle", options, model_dir=model_dir)
