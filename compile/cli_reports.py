@@ -7,6 +7,7 @@ Exit codes: verify 0 pass, 1 fail, 2 unusable input; evaluate 0 done, 2 unusable
 from __future__ import annotations
 
 import warnings
+from contextlib import contextmanager
 from pathlib import Path
 from typing import List, Optional
 
@@ -18,18 +19,30 @@ def _fail(message: str):
     raise typer.Exit(2)
 
 
+@contextmanager
+def _tidy_warnings():
+    """Warnings as `warning: ...` lines, each once, as the other commands print them (the data
+    is read more than once: a note about it would otherwise repeat with source lines)."""
+    from ganlet.compile.cli import flush_warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield
+        finally:
+            flush_warnings(caught)
+
+
 def _run(fn):
     """Boundary errors -> one line on stderr and exit code 2."""
     from ganlet.compile.data import IntakeError
     from ganlet.compile.gateway import UnusableInput
     from ganlet.runtime.manifest import BundleError
 
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", FutureWarning)
-        try:
-            return fn()
-        except (UnusableInput, IntakeError, BundleError, FileNotFoundError, ValueError) as exc:
-            _fail(str(exc) or type(exc).__name__)
+    try:
+        return fn()
+    except (UnusableInput, IntakeError, BundleError, FileNotFoundError, ValueError) as exc:
+        _fail(str(exc) or type(exc).__name__)
 
 
 def verify_cmd(
@@ -50,13 +63,14 @@ def verify_cmd(
     """Parity of device and workstation scores and alerts; exit 0 pass, 1 fail, 2 unusable."""
     from ganlet.compile import verify as v
 
-    result = _run(lambda: v.verify(bundle, data, device_scores=device_scores, model_dir=model,
-                                   tolerances=tolerance or []))
-    typer.echo(result.summary())
-    if json_out:
-        v.write_json(result, json_out)
-    if html_out:
-        v.write_html(result, html_out)
+    with _tidy_warnings():
+        result = _run(lambda: v.verify(bundle, data, device_scores=device_scores,
+                                       model_dir=model, tolerances=tolerance or []))
+        typer.echo(result.summary())
+        if json_out:
+            v.write_json(result, json_out)
+        if html_out:
+            v.write_html(result, html_out)
     raise typer.Exit(0 if result.passed else 1)
 
 
@@ -82,15 +96,16 @@ def evaluate_cmd(
     from ganlet.compile import evaluate as e
 
     eval_from = int(start) if start is not None and start.isdigit() else start
-    result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
-                                     threshold=threshold,
-                                     baselines=() if no_baselines else e.BASELINES,
-                                     model_dir=model, alarms_per_week=alarms_per_week))
-    typer.echo(result.summary())
-    if json_out:
-        e.write_json(result, json_out)
-    if html_out:
-        e.write_html(result, html_out)
+    with _tidy_warnings():
+        result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
+                                         threshold=threshold,
+                                         baselines=() if no_baselines else e.BASELINES,
+                                         model_dir=model, alarms_per_week=alarms_per_week))
+        typer.echo(result.summary())
+        if json_out:
+            e.write_json(result, json_out)
+        if html_out:
+            e.write_html(result, html_out)
 
 
 def register(app: typer.Typer) -> None:

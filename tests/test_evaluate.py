@@ -149,6 +149,28 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
     assert r.exit_code == 2 and "error:" in r.output
 
 
+
+def test_evaluate_reads_a_windows_1252_file_and_says_so_once(synthetic, tmp_path):
+    # The data read three times (the workstation's frame, the gateway's feed, the report's
+    # facts): its note came three times, as Python warnings with source lines.
+    app = typer.Typer()
+    register(app)
+    df = pd.read_csv(synthetic["data"])
+    df["note"] = "Störung"
+    data = tmp_path / "windows.csv"
+    data.write_bytes(df.to_csv(index=False).encode("cp1252"))
+    r = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(data),
+                                 "--incidents", str(synthetic["incidents"]), "--from", "500",
+                                 "--no-baselines", "--json", str(tmp_path / "e.json")])
+    assert r.exit_code == 0, r.output
+    assert r.output.count("warning: windows.csv is not UTF-8: lines read as Windows-1252") == 1
+    assert "UserWarning" not in r.output
+    plain = evaluate(synthetic["bundle"], synthetic["data"], synthetic["incidents"],
+                     eval_from=500, baselines=())
+    said = json.loads((tmp_path / "e.json").read_text())["methods"]["bundle (int8, gateway path)"]
+    assert said["f1"] == pytest.approx(plain.methods["bundle"].metrics["f1"])
+
+
 # ---------------------------------------------------------------------------------------------
 # SKAB valve1 under the benchmark's protocol
 
