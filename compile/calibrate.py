@@ -378,12 +378,13 @@ def calibrate(model: TrainedModel, scorer, window: int, hop: int, kind: str = "p
         raise ValueError("the calibration span holds fewer than 2 windows; train with a longer "
                          "history or a larger --calibration fraction")
     cal_scale = regime_scale(res[cal], hop_means[cal], centres)
-    scale = normal_scale(cal_scale, res[~cal], hop_means[~cal], centres)
+    fit_scale = regime_scale(res[~cal], hop_means[~cal], centres) if (~cal).sum() >= 2 else None
+    scale = normal_scale(cal_scale, fit_scale)
     score = score_section(centres, scale, COMBINE, steps, STATISTIC)
     rule = ScoreRule(score)
     scores = rule.apply(res[cal], hop_means[cal])[0]
     risk = risk_per_hop(alarms_per_week, model.period_s, hop)
-    pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, steps)
+    pieces = tail_scores(scores, res[~cal], hop_means[~cal], centres, fit_scale, steps)
     changes = rule.state_changes(hop_means, hop_pieces)
     policy, cusum, held = detector_policy(kind, pieces, risk, model.raw[:cal_end], hop,
                                           [changes[cal], changes[~cal]][:len(pieces)])
@@ -410,25 +411,25 @@ def calibrated_bundle(model: TrainedModel, scorer, window: int, hop: int, kind: 
 
 
 def tail_scores(cal_scores: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarray,
-                centres: np.ndarray, steps: int) -> list:
+                centres: np.ndarray, fit_scale: Optional[np.ndarray], steps: int) -> list:
     """The scores the threshold's tail is fitted on: the calibration span's, and the fit span's
-    each relative to the fit span's own per-regime scale (regime_scale). The normal level (the
+    each relative to the fit span's own per-regime scale (`fit_scale`, regime_scale's; None
+    with fewer than 2 fit-span hops). The normal level (the
     score's scale) stays the calibration span's, which the network never trained on; the shape of
     the tail gets every training window, since a short calibration span alone holds too few,
     strongly correlated scores to show it (issue 11's notes: on 400-row SKAB files the
     calibration span alone put the level barely above the median). Two pieces, each in hop
     order (the CUSUM's excursions are counted within each)."""
-    if len(fit_res) < 2:
+    if fit_scale is None:
         return [cal_scores]
-    fit_rule = ScoreRule(score_section(centres, regime_scale(fit_res, fit_means, centres),
-                                       COMBINE, steps, STATISTIC))
+    fit_rule = ScoreRule(score_section(centres, fit_scale, COMBINE, steps, STATISTIC))
     return [cal_scores, fit_rule.apply(fit_res, fit_means)[0]]
 
 
-def normal_scale(cal_scale: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarray,
-                 centres: np.ndarray) -> np.ndarray:
+def normal_scale(cal_scale: np.ndarray, fit_scale: Optional[np.ndarray]) -> np.ndarray:
     """Per regime and channel, the RMS error that reads as 1: the calibration span's
-    (`cal_scale`, regime_scale's), never below the fit span's.
+    (`cal_scale`, regime_scale's), never below the fit span's (`fit_scale`, the same statistic;
+    None without fit-span hops).
 
     The calibration span is the end of the training history (a fifth by default). It can hold
     a slow channel at one level, near the value the network puts out for that channel whatever
@@ -438,9 +439,7 @@ def normal_scale(cal_scale: np.ndarray, fit_res: np.ndarray, fit_means: np.ndarr
     running. For a channel the network follows, its error on the fit span, which it trained on,
     is the smaller, and the calibration span's stands (issue 11's notes: SKAB valve1 file 11's
     thermocouple, put out at 0.81 to 0.85 scaled units whatever its level)."""
-    if len(fit_res) < 2:
-        return cal_scale
-    return np.maximum(cal_scale, regime_scale(fit_res, fit_means, centres))
+    return cal_scale if fit_scale is None else np.maximum(cal_scale, fit_scale)
 
 
 def regime_scale(res: np.ndarray, means: np.ndarray, centres: np.ndarray,

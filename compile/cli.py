@@ -44,8 +44,7 @@ def user_errors(interrupted: str = "stopped before it finished"):
     saying what was interrupted (exit code 130); show warnings tidily."""
     from ganlet.compile.data import IntakeError
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+    with tidy_warnings() as caught:
         try:
             yield
         except (IntakeError, UsageProblem, FileNotFoundError, ValueError) as exc:
@@ -55,7 +54,18 @@ def user_errors(interrupted: str = "stopped before it finished"):
             flush_warnings(caught)
             typer.echo(f"interrupted (Ctrl-C): {interrupted}", err=True)
             raise typer.Exit(INTERRUPTED_EXIT) from None
-        flush_warnings(caught)
+
+
+@contextmanager
+def tidy_warnings():
+    """Warnings recorded and printed as `warning: ...` lines, each once, when the block ends
+    (yields the list, for printing them earlier: before an error line)."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield caught
+        finally:
+            flush_warnings(caught)
 
 
 def flush_warnings(caught) -> None:

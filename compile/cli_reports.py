@@ -6,8 +6,6 @@ Exit codes: verify 0 pass, 1 fail, 2 unusable input; evaluate 0 done, 2 unusable
 
 from __future__ import annotations
 
-import warnings
-from contextlib import contextmanager
 from pathlib import Path
 from typing import List, Optional
 
@@ -17,20 +15,6 @@ import typer
 def _fail(message: str):
     typer.echo(f"error: {message.splitlines()[0] if message else 'unusable input'}", err=True)
     raise typer.Exit(2)
-
-
-@contextmanager
-def _tidy_warnings():
-    """Warnings as `warning: ...` lines, each once, as the other commands print them (the data
-    is read more than once: a note about it would otherwise repeat with source lines)."""
-    from ganlet.compile.cli import flush_warnings
-
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            yield
-        finally:
-            flush_warnings(caught)
 
 
 def _run(fn):
@@ -62,8 +46,9 @@ def verify_cmd(
 ):
     """Parity of device and workstation scores and alerts; exit 0 pass, 1 fail, 2 unusable."""
     from ganlet.compile import verify as v
+    from ganlet.compile.cli import tidy_warnings
 
-    with _tidy_warnings():
+    with tidy_warnings():
         result = _run(lambda: v.verify(bundle, data, device_scores=device_scores,
                                        model_dir=model, tolerances=tolerance or []))
         typer.echo(result.summary())
@@ -94,9 +79,10 @@ def evaluate_cmd(
 ):
     """Detection metrics against known incidents, beside baselines under the same rule."""
     from ganlet.compile import evaluate as e
+    from ganlet.compile.cli import tidy_warnings
 
     eval_from = int(start) if start is not None and start.isdigit() else start
-    with _tidy_warnings():
+    with tidy_warnings():
         result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
                                          threshold=threshold,
                                          baselines=() if no_baselines else e.BASELINES,

@@ -125,15 +125,17 @@ class ScoreRule:
 
     def regime(self, means, live=None) -> np.ndarray:
         """The nearest regime centre to each window's per-channel means [N, C] -> [N], over
-        the `live` channels (all when None)."""
+        the `live` channels (all when None); a NaN (a lost cell, `fill`) counts nowhere."""
         m = np.asarray(means, dtype=np.float64)
         if self.centres is None or len(self.centres) == 1:
             return np.zeros(len(m), dtype=np.int64)
         centres = self.centres
         if live is not None:
             m, centres = m[:, live], centres[:, live]
-        d = ((m[:, None, :] - centres[None, :, :]) ** 2).sum(axis=2)
-        return np.argmin(d, axis=1)
+        d = (m[:, None, :] - centres[None, :, :]) ** 2
+        if np.isnan(m).any():
+            d = np.where(np.isnan(d), 0.0, d)
+        return np.argmin(d.sum(axis=2), axis=1)
 
     def fill(self, window) -> np.ndarray:
         """The window [L, C] with its lost cells (NaN, blanks.py) filled: each row's at the
@@ -146,9 +148,7 @@ class ScoreRule:
             w[lost] = 0.0
             return w
         rows = lost.any(axis=1)
-        x = w[rows].astype(np.float64)  # [R, C]: regime() per row, its lost channels left out
-        d = np.where(np.isnan(x)[:, None, :], 0.0, x[:, None, :] - self.centres[None]) ** 2
-        nearest = self.centres[np.argmin(d.sum(axis=2), axis=1)]
+        nearest = self.centres[self.regime(w[rows])]  # per row, over its known channels
         w[rows] = np.where(lost[rows], nearest, w[rows])
         return w
 

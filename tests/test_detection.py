@@ -413,8 +413,8 @@ def test_a_slow_channel_the_network_holds_still_is_scaled_by_the_fit_span_too():
     means, centres = np.zeros((fit + cal, 2)), np.zeros((1, 2))
 
     only_cal = regime_scale(res[is_cal], means[is_cal], centres)[0]
-    both = normal_scale(regime_scale(res[is_cal], means[is_cal], centres), res[~is_cal],
-                        means[~is_cal], centres)[0]
+    both = normal_scale(regime_scale(res[is_cal], means[is_cal], centres),
+                        regime_scale(res[~is_cal], means[~is_cal], centres))[0]
     assert both[1] == only_cal[1]                                   # followed: unchanged
     np.testing.assert_allclose(both[0], regime_scale(res[~is_cal], means[~is_cal], centres)[0][0])
     seen = np.quantile(np.abs(level[:fit]), 0.9)                    # a level normal running held
