@@ -4,8 +4,9 @@ Everything is measured by replaying the training rows through the gateway's own 
 (runtime.detector.Detector on an in-memory bundle) with the network that will score them (the
 device's int8 student, or the teacher for `ganlet evaluate` on a model directory):
 
-1. drift envelope: per channel, the lowest / highest window level (median) of the training span
-   and the largest change of the window level over one window (runtime/drift.py);
+1. drift envelope: per channel, the lowest / highest window level (median) of the fit span (the
+   levels the network learned) and the largest change of the window level over one window in
+   the whole training span (runtime/drift.py);
 2. operating regimes: k-means on the fit span's window means; k is the largest k <= K_MAX whose
    every regime holds at least MIN_REGIME_WINDOWS calibration windows and whose silhouette is at
    least SILHOUETTE_MIN, else one regime (runtime/score.py uses the nearest centre);
@@ -252,8 +253,19 @@ def window_means(series: np.ndarray, window: int) -> np.ndarray:
 
 
 def fit_drift(model: TrainedModel, window: int, action: str = DRIFT_ACTION) -> dict:
-    """The envelope and speed reference of every channel over the training span's windows."""
-    return envelope(model.series[:model.spans.calibration[1]], window, action)
+    """The drift section: each channel's envelope is the range of the fit span's window levels,
+    the levels the network was fitted on; its speed reference is the whole training span's.
+
+    The calibration span (the end of the history, a fifth by default) is held back from the
+    network. A slow channel can end the history above or below anything the fit span held (a
+    rig still warming up), and there the network reconstructs a level it never learned, short of
+    it near the top of its range: the error reads as a held offset in every later window at that
+    level (issue 11's notes: one SKAB accelerometer alone, 22 alerts after training). Bounded by
+    the fit span's levels, such a channel is re-centred onto what the network learned, on the
+    calibration span as at the gateway. How fast a level may move is a fact of the process, not
+    of the network, so every training window shows it."""
+    return envelope(model.series[:model.spans.calibration[1]], window, action,
+                    fit_rows=model.spans.fit[1])
 
 
 def window_levels(series: np.ndarray, window: int) -> np.ndarray:
@@ -271,15 +283,17 @@ def window_levels(series: np.ndarray, window: int) -> np.ndarray:
 
 
 def envelope(series: np.ndarray, window: int, action: str = DRIFT_ACTION,
-             alert_steps: bool = ALERT_STEPS) -> dict:
-    """The manifest's drift section from scaled rows [T, C]: lowest / highest window level and
-    the largest change of the window level over one window, per channel."""
+             alert_steps: bool = ALERT_STEPS, fit_rows: Optional[int] = None) -> dict:
+    """The manifest's drift section from scaled rows [T, C]: lowest / highest window level of
+    the windows inside the first `fit_rows` rows (all rows when None), and the largest change of
+    the window level over one window anywhere, per channel."""
     m = window_levels(series, window)
-    ok = np.isfinite(m).all(axis=1)
+    inside = m[:fit_rows]
+    inside = inside[np.isfinite(inside).all(axis=1)]
     step = np.abs(m[window:] - m[:-window])
     step = step[np.isfinite(step).all(axis=1)]
     v_max = step.max(axis=0) if len(step) else np.zeros(m.shape[1])
-    return drift_section(m[ok].min(axis=0), m[ok].max(axis=0), v_max, action, alert_steps)
+    return drift_section(inside.min(axis=0), inside.max(axis=0), v_max, action, alert_steps)
 
 
 def choose_regimes(fit_means: np.ndarray, cal_means: np.ndarray, seed: int = 0):

@@ -13,7 +13,9 @@ Per channel c, in scaled units (robust standard deviations of the fit span), eac
              with rare spikes in training (a flow meter's dropouts) would otherwise get an
              envelope and a speed bound as wide as its spikes, and a real departure of its level
              would pass as drift (SKAB valve1 file 1's flow: issue 11's notes)
-    envelope [lo_c, hi_c]: the lowest / highest window level of the training span
+    envelope [lo_c, hi_c]: the lowest / highest window level of the span the network was
+             fitted on (the training span less its calibration span; compile's fit_drift says
+             why)
     excess   e_c = max(m_c - hi_c, lo_c - m_c, 0)
     speed    |m_c - m_c one window earlier|, against v_max_c: the largest such change of the
              training span ("normal operation can move this fast")

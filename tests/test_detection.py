@@ -4,13 +4,15 @@ fault on another channel still alerted during a drift."""
 
 import io
 import json
+from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
 import pytest
 import runtime_fixtures as fx
 
-from ganlet.compile.calibrate import envelope, risk_per_hop
+from ganlet.compile.calibrate import envelope, fit_drift, risk_per_hop
+from ganlet.compile.data import Spans
 from ganlet.runtime.cli import main
 
 WINDOW, HOP = 16, 4
@@ -221,6 +223,26 @@ def test_envelope_matches_pandas_rolling():
     m = pd.DataFrame(x).rolling(WINDOW).median()
     np.testing.assert_allclose(section["lo"], m.min().to_numpy(), rtol=1e-9)
     np.testing.assert_allclose(section["hi"], m.max().to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(section["v_max"], m.diff(WINDOW).abs().max().to_numpy(),
+                               rtol=1e-9)
+
+
+def test_the_envelope_is_the_fit_spans_levels_and_the_pace_the_whole_historys():
+    # a history whose last rows climb above anything before them (a rig still warming up when
+    # training ends): the network is fitted on the first 240 rows only, so the envelope is
+    # theirs; how fast the level may move is shown by every row (pandas rolling median as the
+    # reference, as above)
+    x = fx.scaled(fx.raw_values(300, seed=3)).astype(np.float64)
+    x[240:] += np.linspace(0.0, 3.0, 60)[:, None]
+    section = envelope(x, WINDOW, fit_rows=240)
+    # calibrate's drift section is that envelope, the fit span being the network's
+    model = SimpleNamespace(series=x.astype(np.float32),
+                            spans=Spans(fit=(0, 240), calibration=(240, 300), rest=(300, 300)))
+    np.testing.assert_allclose(fit_drift(model, WINDOW)["hi"], section["hi"], rtol=1e-6)
+    m = pd.DataFrame(x).rolling(WINDOW).median()
+    np.testing.assert_allclose(section["hi"], m[:240].max().to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(section["lo"], m[:240].min().to_numpy(), rtol=1e-9)
+    assert np.all(np.asarray(section["hi"]) < m.max().to_numpy() - 1.0)
     np.testing.assert_allclose(section["v_max"], m.diff(WINDOW).abs().max().to_numpy(),
                                rtol=1e-9)
 
