@@ -89,6 +89,9 @@ class IntakeReport:
     time_zone: str = "UTC"     # the zone zone-less times were read in
     # name -> grid points where the channel alone is blank (the row has other readings)
     blank_cells: dict = field(default_factory=dict)
+    # name -> the blank run, in grid points (rows missing whole counted in), that 19 in 20 of
+    # the channel's blank runs stay within (channels with blank cells only)
+    blank_runs: dict = field(default_factory=dict)
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -407,6 +410,8 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
                                            notes)
     absent = np.isnan(grid)
     blank = (absent & ~absent.all(axis=1, keepdims=True)).sum(axis=0)
+    blank_runs = {str(c): typical_blank_run(absent[:, j])
+                  for j, c in enumerate(channels) if blank[j]}
     missing, filled, long_gaps = fill_short_gaps(grid, grid_times, opts.max_fill_periods)
 
     segs = runs(~np.isnan(grid).any(axis=1))
@@ -421,7 +426,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
         long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
         time_zone=dialect.zone_name,
-        blank_cells={str(c): int(n) for c, n in zip(channels, blank)},
+        blank_cells={str(c): int(n) for c, n in zip(channels, blank)}, blank_runs=blank_runs,
     )
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
 
@@ -536,6 +541,12 @@ def on_grid(times_np: np.ndarray, values: np.ndarray, period: float, spacing: fl
     grid_times = pd.DatetimeIndex(t0 + (np.arange(n_slots) * period * 1e9)
                                   .astype("timedelta64[ns]"))
     return grid, grid_times, duplicates
+
+
+def typical_blank_run(absent: np.ndarray) -> int:
+    """The run length, in grid points, that 19 in 20 of a channel's blank runs stay within."""
+    lengths = [e - b for b, e in runs(absent)]
+    return int(np.percentile(lengths, 95, method="higher"))
 
 
 def fill_short_gaps(grid: np.ndarray, grid_times, max_fill_periods: int) -> tuple:
@@ -745,23 +756,32 @@ def choose_window(frame: Frame, spans: Spans, requested: int) -> int:
             f"too few points for any usable window: the longest gap-free run is {fit_len} points "
             f"in the fit span and {cal_len} in the calibration span; a window of {MIN_WINDOW} "
             f"needs at least {need_fit} and {MIN_WINDOW + 8}, i.e. about {need_total} "
-            "gap-free training points in all" + sparse_channel_hint(frame.report))
+            "gap-free training points in all" + sparse_channel_hint(frame.report, requested))
     warnings.warn(f"short history: using a window of {usable} points instead of {requested}",
                   stacklevel=2)
     return int(usable)
 
 
-def sparse_channel_hint(report: IntakeReport) -> str:
+def sparse_channel_hint(report: IntakeReport, window: int) -> str:
     """Training needs rows with every channel read: name the channels blank on at least a
     tenth of the grid's rows, which is what breaks a history into pieces when a channel is
-    logged slower than the others (the gateway scores without such a channel: blanks.py)."""
+    logged slower than the others (the gateway scores without such a channel: blanks.py).
+    Where 19 in 20 of their blank runs are shorter than a window (every window then holds
+    readings of theirs), say the --max-fill that keeps them: their blanks filled by straight
+    lines in training and held from the last reading at the gateway (max_gap_periods)."""
     sparse = {c: n for c, n in report.blank_cells.items() if n >= 0.1 * report.grid_points}
     if not sparse:
         return ""
     worst = sorted(sparse, key=lambda c: -sparse[c])
     said = ", ".join(f"{c!r} on {sparse[c]} of {report.grid_points}" for c in worst)
-    return (f". Blank while the other channels read: {said} grid points (logged slower than "
+    hint = (f". Blank while the other channels read: {said} grid points (logged slower than "
             f"the others?); leave it out with --exclude {','.join(worst)}")
+    fill = max(report.blank_runs.get(c, 0) for c in worst)
+    if 0 < fill < window:
+        hint += (f", or keep it with --max-fill {fill} (19 in 20 of its blanks span at most "
+                 f"{fill} points: they are filled by straight lines in training and held from "
+                 "its last reading at the gateway; whole-row gaps that short are filled too)")
+    return hint
 
 
 def spans_fraction(spans: Spans) -> float:

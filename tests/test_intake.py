@@ -426,9 +426,25 @@ def test_a_channel_logged_slower_than_the_others_is_named_with_what_to_do(write_
     with pytest.raises(IntakeError, match="too few points") as info:
         choose_window(frame, split_spans(frame, None, 0.2), 32)
     assert "'flow' on 360 of 400 grid points" in str(info.value)
-    assert str(info.value).endswith("leave it out with --exclude flow")
+    assert "leave it out with --exclude flow, or keep it with --max-fill 9 " in str(info.value)
     without = load_frame(write_csv(df.drop(columns="flow"), "without.csv"))
     assert choose_window(without, split_spans(without, None, 0.2), 32) == 32
+    # the --max-fill it names keeps the channel: its blanks filled by straight lines between
+    # its readings (pandas linear interpolation as the reference), the window the one asked for
+    kept = load_frame(write_csv(df, "kept.csv"), IntakeOptions(max_fill_periods=9))
+    assert choose_window(kept, split_spans(kept, None, 0.2), 32) == 32
+    lines = df["flow"].interpolate(method="linear", limit_area="inside").to_numpy()
+    np.testing.assert_allclose(kept.values[:391, 0], lines[:391], rtol=1e-12)
+
+
+def test_no_max_fill_is_named_for_a_channel_whose_blanks_outlast_a_window(write_csv):
+    df = correlated_series(400)
+    df.loc[df.index % 40 != 0, "flow"] = np.nan       # flow on every fortieth row only
+    frame = load_frame(write_csv(df))
+    assert frame.report.blank_runs["flow"] == 39
+    with pytest.raises(IntakeError, match="too few points") as info:
+        choose_window(frame, split_spans(frame, None, 0.2), 32)
+    assert str(info.value).endswith("leave it out with --exclude flow")
 
 
 def test_short_history_picks_a_shorter_window_with_a_warning(write_csv):
