@@ -551,8 +551,10 @@ def typical_blank_run(absent: np.ndarray) -> int:
 
 def fill_short_gaps(grid: np.ndarray, grid_times, max_fill_periods: int) -> tuple:
     """Interpolate, in place, inside gaps of at most max_fill_periods grid points (a row missing
-    one channel counts as a gap too); longer gaps stay NaN and split the series. Returns
-    (missing rows mask, points filled, long gaps [first, last, points])."""
+    one channel counts as a gap too); longer gaps split the series, their rows' readings kept
+    as read (a row with a channel blank is no training point, but the gateway scores it, and
+    evaluation counts it). Returns (missing rows mask, points filled, long gaps [first, last,
+    points])."""
     missing = np.isnan(grid).any(axis=1)
     filled, long_gaps = 0, []
     interpolated = pd.DataFrame(grid).interpolate(method="linear",
@@ -563,7 +565,6 @@ def fill_short_gaps(grid: np.ndarray, grid_times, max_fill_periods: int) -> tupl
             grid[b:e] = interpolated[b:e]
         else:
             long_gaps.append([str(grid_times[b]), str(grid_times[e - 1]), e - b])
-            grid[b:e] = np.nan
     return missing, filled, long_gaps
 
 

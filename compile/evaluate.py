@@ -18,7 +18,9 @@ gateway's own (`run.py stream`); the teacher runs through the gateway's Detector
 feed with its own calibration (drift envelope, regimes, score scale, threshold), as if it were
 the device's network.
 
-Metrics on the evaluated points: point-wise precision, recall, F1; false-alarm rate (FAR,
+The evaluated points are those from --from on with some channel read: a point with a channel
+blank is scored by the gateway without it (runtime/blanks.py), so it counts; the baselines
+cannot score it and raise no alert there. Metrics on the evaluated points: point-wise precision, recall, F1; false-alarm rate (FAR,
 share of normal points flagged) and missed-alarm rate (MAR, share of anomalous points missed);
 event recall (incidents hit by at least one alert point); mean detection delay (incident start
 to the first alert point inside it); false alarms per day (alert events overlapping no
@@ -349,7 +351,7 @@ class EvalResult:
         if s["before"]:
             text += f"; the {s['before']} points before are not counted"
         if s["gaps"]:
-            text += f"; {s['gaps']} points inside it with missing values are not counted"
+            text += f"; {s['gaps']} points inside it with no reading at all are not counted"
         return text
 
     def rule_text(self) -> str:
@@ -442,6 +444,7 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
     y = incident_labels(frame.times, inc)
     evaluated = _evaluated(frame, eval_mask, eval_from)
+    notes = notes + blank_channel_note(frame, evaluated)
     methods, capture = {}, None
     with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
         feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp))
@@ -517,7 +520,19 @@ def _evaluated(frame: Frame, eval_mask, eval_from) -> np.ndarray:
         if pd.isna(stamp):
             raise IntakeError(f"--from {eval_from!r}: give a row number or a time")
         evaluated = frame.times.values >= stamp.to_datetime64()
-    return evaluated & ~np.isnan(frame.values).any(axis=1)
+    # a point with some channel read is one the gateway scores (a blank cell is left out,
+    # runtime/blanks.py); only a point with no reading at all is a gap it never sees
+    return evaluated & ~np.isnan(frame.values).all(axis=1)
+
+
+def blank_channel_note(frame: Frame, evaluated: np.ndarray) -> list:
+    """What happens to evaluated points with a channel blank (none: nothing to say)."""
+    n = int((evaluated & np.isnan(frame.values).any(axis=1)).sum())
+    if not n:
+        return []
+    return [f"{n} evaluated points have a channel blank: the bundle and the teacher score them "
+            "as the gateway does (the channel left out); the baselines cannot score them and "
+            "raise no alert there"]
 
 
 def from_opening(alert: np.ndarray, min_hops: int) -> np.ndarray:
@@ -580,6 +595,7 @@ def _baseline_methods(model, frame: Frame, rule: Rule, names: Sequence[str]) -> 
         pol, levels, alert = rule.apply(base_cal[name], base_all[name], frame.period_s,
                                         None if model.raw is None else model.raw[:c1],
                                         frame.values)
+        alert = alert & np.isfinite(base_all[name])  # a point it cannot score: no verdict
         methods[name] = Method(name, base_all[name], levels, alert, pol["kind"])
     return methods
 

@@ -74,6 +74,28 @@ def test_model_dir_metrics_and_baselines(synthetic):
     assert r.methods["teacher"].metrics["event_recall"] > 0
 
 
+def test_points_with_a_channel_blank_are_judged_as_the_gateway_judges_them(synthetic, tmp_path):
+    # a dead transmitter: flow blank for 100 rows of the evaluated span (more than max_fill, so
+    # the intake leaves them blank); the gateway scores those rows without the channel
+    # (runtime/blanks.py), so they count; a baseline cannot score them and raises nothing there
+    df = pd.read_csv(synthetic["data"])
+    df.loc[600:699, "flow"] = np.nan
+    data = tmp_path / "dead.csv"
+    df.to_csv(data, index=False)
+    r = evaluate(synthetic["bundle"], data, synthetic["incidents"], eval_from=500,
+                 model_dir=synthetic["model"], baselines=("IsolationForest",))
+    # reference: pandas, rows from 500 with at least one channel read
+    read = df[["flow", "power", "temp"]].notna().any(axis=1).to_numpy()
+    assert r.evaluated.sum() == read[500:].sum() == 400
+    dead = np.zeros(len(df), bool)
+    dead[600:700] = True
+    assert np.isfinite(r.methods["bundle"].scores[dead]).all()
+    assert np.isfinite(r.methods["teacher"].scores[dead]).all()
+    assert np.isnan(r.methods["IsolationForest"].scores[dead]).all()
+    assert not r.methods["IsolationForest"].alert[dead].any()
+    assert any("100 evaluated points have a channel blank" in n for n in r.notes)
+
+
 @pytest.mark.parametrize("seconds, text", [(45, "45 s"), (90, "90 s"), (600, "10 min"),
                                            (5400, "90 min"), (7200, "2 h"), (9000, "2.5 h"),
                                            (3 * 86400, "3 d"), (float("nan"), "-")])
