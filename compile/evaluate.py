@@ -20,7 +20,9 @@ the device's network.
 
 The evaluated points are those from --from on with some channel read: a point with a channel
 blank is scored by the gateway without it (runtime/blanks.py), so it counts; the baselines
-cannot score it and raise no alert there. Metrics on the evaluated points: point-wise precision, recall, F1; false-alarm rate (FAR,
+cannot score it and raise no alert there.
+
+Metrics on the evaluated points: point-wise precision, recall, F1; false-alarm rate (FAR,
 share of normal points flagged) and missed-alarm rate (MAR, share of anomalous points missed);
 event recall (incidents hit by at least one alert point); mean detection delay (incident start
 to the first alert point inside it); false alarms per day (alert events overlapping no
