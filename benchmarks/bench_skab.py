@@ -47,7 +47,11 @@ def main() -> None:
     ap.add_argument("--train-rows", type=int, default=skab_protocol.TRAIN_ROWS,
                     help="train on the first N rows (at most 400); the rows after 400 are "
                          "counted either way")
+    ap.add_argument("--channels", default=None,
+                    help="comma-separated channels to train on (default: all); every method "
+                         "then sees only those, e.g. the flow alone for a one-channel history")
     a = ap.parse_args()
+    channels = a.channels.split(",") if a.channels else None
     try:
         skab_protocol.check_train_rows(a.train_rows)
     except ValueError as err:
@@ -56,14 +60,15 @@ def main() -> None:
     if not files:
         raise SystemExit(f"no SKAB CSV files under {a.skab / a.group}")
     print(f"SKAB {a.group}, {len(files)} files, gateway path, defaults, first {a.train_rows} "
-          f"rows trained, rows after {skab_protocol.TRAIN_ROWS} counted; seeds {a.seeds}")
+          f"rows trained, rows after {skab_protocol.TRAIN_ROWS} counted; seeds {a.seeds}; "
+          f"channels: {a.channels or 'all'}")
     print(f"{'seed':>4}  {'method':28s}  {'F1':>6}  {'FAR':>6}  {'MAR':>6}  {'AUC':>6}")
     table = {}
     with tempfile.TemporaryDirectory(prefix="ganlet-skab-") as tmp:
         for seed in a.seeds:
             started = time.perf_counter()
             metrics = skab_protocol.run(seed, Path(tmp), a.workers, a.distil_epochs, files,
-                                        train_rows=a.train_rows)
+                                        train_rows=a.train_rows, channels=channels)
             for name, k in metrics.items():
                 table.setdefault(name, []).append(k)
                 print(f"{seed:>4}  {name:28s}  {k['f1']:6.3f}  {k['far']:6.3f}  "

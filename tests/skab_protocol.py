@@ -76,7 +76,7 @@ def run_file(args) -> dict:
     labels and, per method, alerts and scores on them. With train_rows below TRAIN_ROWS the
     model trains on fewer rows and the rows in between are scored but not counted, so the
     counted rows stay the protocol's."""
-    path, out, seed, distil_epochs, baselines, train_rows = args
+    path, out, seed, distil_epochs, baselines, train_rows, channels = args
     from ganlet.compile.data import grid_index
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.evaluate import evaluate
@@ -86,7 +86,7 @@ def run_file(args) -> dict:
     path, out = Path(path), Path(out)
     frame, model_dir = train_and_compile(
         path, train_rows, seed, out,
-        CompileOptions(distil=DistilConfig(epochs=distil_epochs, seed=seed)))
+        CompileOptions(distil=DistilConfig(epochs=distil_epochs, seed=seed)), channels)
     incidents, labels, times = incidents_of(path)
     rows = grid_index(frame, times[TRAIN_ROWS:])      # protocol: score the rows after 400
     trained = grid_index(frame, times[:train_rows])
@@ -152,9 +152,10 @@ def check_train_rows(train_rows: int) -> None:
 
 
 def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
-        files=None, baselines=None, train_rows: int = TRAIN_ROWS) -> dict:
+        files=None, baselines=None, train_rows: int = TRAIN_ROWS, channels=None) -> dict:
     """Every valve1 file at one seed, `workers` processes; pooled metrics per method (the
-    baselines named, all of evaluate.BASELINES by default). train_rows: see run_file."""
+    baselines named, all of evaluate.BASELINES by default). train_rows: see run_file;
+    channels: as `ganlet train --channels` (every method then sees only those)."""
     check_train_rows(train_rows)
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
@@ -164,7 +165,7 @@ def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
     files = files or skab_files()
     baselines = BASELINES if baselines is None else tuple(baselines)
     jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs, baselines,
-             train_rows) for f in files]
+             train_rows, channels) for f in files]
     ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
         outs = list(pool.map(run_file, jobs))
