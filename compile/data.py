@@ -395,7 +395,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     row_units = units_row(df, time_col, dialect, notes)
     if row_units is not None:
         df = read_table(Path(path), opts.sep, opts.decimal, skip_units_row=True)
-    channels, excluded = pick_channels(df, time_col, opts, path)
+    channels, excluded = pick_channels(df, time_col, opts, path, notes)
     times_np, values, unparsable = timed_rows(df, time_col, channels, dialect, notes)
     channels, values, excluded = without_blank_columns(channels, values, excluded,
                                                        bool(opts.channels), notes)
@@ -431,9 +431,34 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
 
 
-def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path) -> tuple:
-    """(channels, excluded columns): --channels as named, else every numeric column that is
-    not the time, a label column or --exclude'd."""
+def mostly_numbers(cells: pd.Series) -> bool:
+    """More than half of the column's non-blank cells are numbers: a measurement, some of
+    whose cells may be a historian's quality flag ("Bad", "Comm Fail"); a status or name
+    column is mostly text."""
+    if pd.api.types.is_numeric_dtype(cells):
+        return True
+    present = cells.dropna()
+    return len(present) > 0 and pd.to_numeric(present, errors="coerce").notna().mean() > 0.5
+
+
+def note_text_cells(cells: pd.Series, name, notes: list) -> None:
+    """Say how many of a channel's cells hold text (read as blank, as the gateway reads a text
+    cell beside other channels' numbers: runtime/intake.py Header.parse)."""
+    if pd.api.types.is_numeric_dtype(cells):
+        return
+    present = cells.dropna()
+    text = present[pd.to_numeric(present, errors="coerce").isna()].astype(str).str.strip()
+    if len(text):
+        shown = ", ".join(repr(t) for t in text.value_counts().index[:3])
+        notes.append(f"channel {str(name)!r}: {len(text)} of {len(cells)} cells hold text "
+                     f"({shown}), read as blank, as the gateway reads them")
+        warnings.warn(notes[-1], stacklevel=3)
+
+
+def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
+                  notes: list) -> tuple:
+    """(channels, excluded columns): --channels as named, else every column of numbers that
+    is not the time, a label column or --exclude'd (a column of text is left out, and said)."""
     excluded = [c for c in df.columns if str(c).strip().lower() in LABEL_NAMES]
     excluded += [c for c in opts.exclude if c in df.columns and c not in excluded]
     missing_excl = [c for c in opts.exclude if c not in df.columns]
@@ -445,14 +470,22 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path) -> tupl
             raise IntakeError(f"--channels names unknown column(s): {', '.join(unknown)}; "
                               f"columns are {', '.join(map(str, df.columns))}")
         channels = list(opts.channels)
-        not_numeric = [c for c in channels if not pd.api.types.is_numeric_dtype(df[c])]
+        not_numeric = [c for c in channels if not mostly_numbers(df[c])]
         refuse_decimal_commas(df, not_numeric, path)
         if not_numeric:
             raise IntakeError(f"channel(s) {', '.join(not_numeric)} are not numeric")
     else:
-        channels = [c for c in df.columns if c != time_col and c not in excluded
-                    and pd.api.types.is_numeric_dtype(df[c])
-                    and not pd.api.types.is_bool_dtype(df[c])]
+        candidates = [c for c in df.columns if c != time_col and c not in excluded
+                      and not pd.api.types.is_bool_dtype(df[c])]
+        text = [c for c in candidates if not mostly_numbers(df[c])]
+        refuse_decimal_commas(df, text, path)
+        channels = [c for c in candidates if c not in text]
+        for c in text:
+            notes.append(f"column {str(c)!r} holds text, not numbers: left out")
+            warnings.warn(notes[-1], stacklevel=3)
+        excluded += text
+    for c in channels:
+        note_text_cells(df[c], c, notes)
     if not channels:
         refuse_decimal_commas(df, [c for c in df.columns if c != time_col], path)
         raise IntakeError(f"{path}: no numeric channel found besides the time column "

@@ -65,6 +65,7 @@ COUNTERS = (
     "blank_lines",
     "samples",  # accepted input rows
     "blank_cells",  # channel cells blank in accepted rows (blanks.py)
+    "text_cells",  # of them, cells that held text, a quality flag such as "Bad" (intake.py)
     "interpolated",  # samples filled in across short gaps
     "gaps",  # long gaps that reset the window
     "hops",  # windows scored

@@ -67,6 +67,7 @@ REJECT_KINDS = (
     "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
+_DECIMAL_COMMA = re.compile(r"[+-]?[0-9]*,[0-9]+([eE][+-]?[0-9]+)?")
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
 BLANK_CELLS = frozenset((
@@ -204,18 +205,33 @@ class Header:
         except RowError:
             return None
 
-    def parse(self, line: str, after: Optional[float] = None) -> Tuple[float, List[float]]:
-        """A data line (no newline) -> (epoch seconds, values in model channel order); `after`:
-        the previous row's time (Dialect.time)."""
+    def parse(self, line: str, after: Optional[float] = None) -> Tuple[float, List[float], int]:
+        """A data line (no newline) -> (epoch seconds, values in model channel order, how many
+        channel cells held text); `after`: the previous row's time (Dialect.time).
+
+        A channel cell holding text (a historian's quality flag: "Bad", "Comm Fail") while
+        another channel reads a number is read as a blank reading (blanks.py), so one failed
+        transmitter does not refuse the other channels' readings; a cell that looks like a
+        number with a decimal comma is still refused (the feed's --decimal is wrong), and so is
+        a row whose every channel cell is text or blank."""
         cells = self.dialect.split(line)
         if len(cells) != self.n_cells:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")
         t = self.dialect.time(cells[self.time_index], after)
-        number = self.dialect.number
-        values = [number(name, cells[i]) for name, i in zip(self.channels, self.channel_index)]
+        values, text = [], []  # type: List[float], List[RowError]
+        for name, i in zip(self.channels, self.channel_index):
+            try:
+                values.append(self.dialect.number(name, cells[i]))
+            except RowError as exc:
+                if exc.kind != "non_numeric" or _DECIMAL_COMMA.fullmatch(cells[i].strip()):
+                    raise
+                values.append(math.nan)
+                text.append(exc)
         if all(math.isnan(v) for v in values):
+            if text:
+                raise text[0]
             raise RowError("missing_value", "every channel cell is blank")
-        return t, values
+        return t, values, len(text)
 
 
 def _check_columns(cells: List[str], time_column: str, channels: Sequence[str]) -> None:

@@ -291,6 +291,7 @@ class Service:
             self.reject(exc, rec.lineno)
             return
         self.run_fed += 1
+        self.det.counters["text_cells"] += rec.text_cells
         for event in events:
             self.writer.emit(event)
         if any(e["event"] in ALERT_EVENTS for e in events) or self.writer.wants_checkpoint():

@@ -76,12 +76,14 @@ class Position:
 
 
 class Record:
-    __slots__ = ("lineno", "time", "values", "error", "header", "event", "pos")
+    __slots__ = ("lineno", "time", "values", "error", "header", "event", "pos", "text_cells")
 
     def __init__(self, lineno: int, time: Optional[float] = None,
                  values: Optional[List[float]] = None, error: Optional[RowError] = None,
-                 header: Optional[str] = None, event: Optional[dict] = None, pos=None):
+                 header: Optional[str] = None, event: Optional[dict] = None, pos=None,
+                 text_cells: int = 0):
         self.lineno = lineno
+        self.text_cells = text_cells  # channel cells that held text, read as blank (intake.py)
         self.time = time
         self.values = values
         self.error = error
@@ -339,7 +341,7 @@ class CsvSource:
             return Record(lineno, error=RowError(
                 "unusable_header", f"the header in force lacks a channel: {self.header_text[:80]!r}"))
         try:
-            t, values = self.header.parse(text, self.last_time)
+            t, values, text_cells = self.header.parse(text, self.last_time)
         except RowError as exc:
             if header_sep(text, self.time_column, self.dialect):
                 return self._header_line(lineno, text)
@@ -347,7 +349,7 @@ class CsvSource:
             self.last_time = self.last_time if t is None else t
             return Record(lineno, time=t, error=exc)
         self.last_time = t
-        return Record(lineno, time=t, values=values)
+        return Record(lineno, time=t, values=values, text_cells=text_cells)
 
     def _header_line(self, lineno: int, text: str) -> Record:
         self.rows -= 1  # counted as a data line above; it is a header

@@ -194,6 +194,44 @@ def test_blank_cells_are_the_cells_pandas_reads_as_missing():
     assert d.number("flow", "1.5") == 1.5
 
 
+def test_a_quality_flag_in_one_channel_is_read_as_a_blank_and_counted(bundle_dir, tmp_path):
+    # a historian writes "Bad" (or "Comm Fail") where a transmitter failed: one short spell and
+    # one long one (the channel is lost). Reference: the same file with those cells empty,
+    # which is what pandas reads with na_values=["Bad", "Comm Fail"]; the gateway scores both
+    # alike and refuses no row
+    values = fx.raw_values(200, seed=23)
+    short, long = range(50, 52), range(100, 160)
+    write_with_blanks(tmp_path / "empty.csv", values, [*short, *long])
+    fx.write_csv(tmp_path / "flags.csv", values)
+    fx.blank_out(tmp_path / "flags.csv", short, VIB, "Bad")
+    fx.blank_out(tmp_path / "flags.csv", long, VIB, "Comm Fail")
+    read = pd.read_csv(tmp_path / "flags.csv", na_values=["Bad", "Comm Fail"])
+    assert read.equals(pd.read_csv(tmp_path / "empty.csv"))
+    ev_empty, df_empty, _ = stream(bundle_dir, tmp_path / "empty.csv", tmp_path, "--backend",
+                                   "numpy", tag="empty")
+    ev_flags, df_flags, _ = stream(bundle_dir, tmp_path / "flags.csv", tmp_path, "--backend",
+                                   "numpy", tag="flags")
+    assert df_flags.equals(df_empty)
+    stop = ev_flags[-1]
+    assert stop["counters"]["samples"] == 200 and not any(stop["errors"].values())
+    assert stop["counters"]["text_cells"] == stop["counters"]["blank_cells"] == 62
+    assert ev_empty[-1]["counters"]["text_cells"] == 0
+    lost = of(ev_flags, "channel_lost")
+    assert [e["channel"] for e in lost] == [fx.CHANNELS[VIB][0]]
+
+
+def test_a_cell_with_a_decimal_comma_still_refuses_its_row():
+    # a feed whose decimal mark is not the bundle's: refusing says so (reading it as blank
+    # would drop the reading without a word); read with the right --decimal it is a number
+    from ganlet.runtime.intake import Header, RowError
+    header = Header("time;flow;pressure", "time", ["flow", "pressure"], Dialect(sep=";"))
+    with pytest.raises(RowError, match="decimal comma") as info:
+        header.parse("2026-03-02T10:00:00Z;1,5;2")
+    assert info.value.kind == "non_numeric"
+    t, values, text = header.parse("2026-03-02T10:00:00Z;Bad;2")
+    assert math.isnan(values[0]) and values[1] == 2.0 and text == 1
+
+
 def test_a_blank_neither_holds_nor_moves_a_reading():
     held = HeldReadings([3])
     for v in (1.0, 1.0, math.nan, 1.0, 1.0):

@@ -37,6 +37,34 @@ def test_text_columns_without_decimal_commas_keep_the_general_message(write_csv)
         load_frame(write_csv(df))
 
 
+def test_a_quality_flag_among_numbers_is_read_as_blank_and_said(write_csv):
+    # a historian's export: "Bad" where the pressure transmitter's quality was bad. The column
+    # stays a channel, the flags are blank cells (reference: pandas.read_csv with
+    # na_values=["Bad"]), and the note says how many, as the gateway reads them
+    # (runtime/intake.py); a column of text (a site name) is left out, and said
+    df = correlated_series(300)
+    df["power"] = df["power"].round(3).astype(object)
+    df.loc[[10, 11, 200], "power"] = "Bad"
+    df["site"] = "pump 3"
+    path = write_csv(df)
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        frame = load_frame(path, IntakeOptions(max_fill_periods=5))
+    text = [str(w.message) for w in said]
+    assert "channel 'power': 3 of 300 cells hold text ('Bad'), read as blank, as the gateway " \
+           "reads them" in text
+    assert "column 'site' holds text, not numbers: left out" in text
+    assert frame.channels == ["flow", "power", "temp"] and "site" in frame.report.excluded
+    assert frame.report.blank_cells["power"] == 3
+    reference = pd.read_csv(path, na_values=["Bad"])["power"].to_numpy()
+    assert np.isnan(reference[[10, 11, 200]]).all()
+    # the three blanks are short gaps, filled by straight lines; every other cell as read
+    kept = np.setdiff1d(np.arange(300), [10, 11, 200])
+    np.testing.assert_allclose(frame.values[kept, 1], reference[kept], rtol=1e-12)
+    np.testing.assert_allclose(frame.values[10:12, 1], np.interp(
+        [10, 11], [9, 12], reference[[9, 12]]), rtol=1e-12)
+
+
 def _local_times(utc: pd.DatetimeIndex, zone: str) -> list:
     # reference: pandas tz_convert with the IANA zone database gives the local wall clock and
     # its offset; isoformat writes them as a logger with a UTC offset does

@@ -102,7 +102,7 @@ def test_every_bad_input_kind_counted_and_stream_continues(bundle_dir, tmp_path)
         return format_time(fx.T0 + i + 0.5)
 
     bad = {
-        20: [f"{at(20)},abc,3.0,1.5".encode()],                              # non_numeric
+        20: [f"{at(20)},abc,Bad,-".encode()],               # non_numeric: every cell text
         30: [f"{at(30)},-inf,3.0,1.5".encode(), f"{at(30)},1.0,inf,1.5".encode()],  # non_finite
         40: [f"{at(40)},,NaN,null".encode()],                 # missing_value: every cell blank
         50: [f"{at(50)},1.0,3.0".encode(), f"{at(50)},1,2,3,4".encode()],    # column_count
