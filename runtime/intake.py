@@ -56,7 +56,7 @@ REJECT_KINDS = (
     "column_count",  # fewer or more cells than the header
     "bad_time",  # time cell empty or not a time we read (see the docstring)
     "missing_value",  # every channel cell is blank (one blank cell is read as NaN: blanks.py)
-    "non_numeric",  # a channel cell is not a number
+    "non_numeric",  # no channel cell a number, some text; or a number with a decimal comma
     "non_finite",  # NaN or +-inf
     "out_of_range",  # finite, but absurdly far from the scaler's center (service)
     "out_of_order",  # time earlier than the last accepted sample (service)
@@ -67,7 +67,8 @@ REJECT_KINDS = (
     "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
-_DECIMAL_COMMA = re.compile(r"[+-]?[0-9]*,[0-9]+([eE][+-]?[0-9]+)?")
+# a number written with a decimal comma (and maybe thousands dots): 1,5  -0,25  1.234,5
+_DECIMAL_COMMA = re.compile(r"[+-]?[0-9.]*,[0-9]+([eE][+-]?[0-9]+)?")
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
 BLANK_CELLS = frozenset((

@@ -225,9 +225,10 @@ def test_a_cell_with_a_decimal_comma_still_refuses_its_row():
     # would drop the reading without a word); read with the right --decimal it is a number
     from ganlet.runtime.intake import Header, RowError
     header = Header("time;flow;pressure", "time", ["flow", "pressure"], Dialect(sep=";"))
-    with pytest.raises(RowError, match="decimal comma") as info:
-        header.parse("2026-03-02T10:00:00Z;1,5;2")
-    assert info.value.kind == "non_numeric"
+    for cell in ("1,5", "-0,25", "1.234,5"):
+        with pytest.raises(RowError, match="decimal comma") as info:
+            header.parse(f"2026-03-02T10:00:00Z;{cell};2")
+        assert info.value.kind == "non_numeric"
     t, values, text = header.parse("2026-03-02T10:00:00Z;Bad;2")
     assert math.isnan(values[0]) and values[1] == 2.0 and text == 1
 
