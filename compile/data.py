@@ -431,23 +431,34 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
 
 
-def mostly_numbers(cells: pd.Series) -> bool:
+def as_numbers(cells: pd.Series, decimal: str = ".") -> pd.Series:
+    """A column's cells as numbers, NaN for a cell that is not one; a column pandas left as text
+    (a few cells of it are) still has its numbers in the file's decimal mark."""
+    if pd.api.types.is_numeric_dtype(cells):
+        return cells
+    text = cells.astype(str).str.strip()
+    if decimal == ",":
+        text = text.str.replace(",", ".", regex=False)
+    return pd.to_numeric(text.where(cells.notna()), errors="coerce")
+
+
+def mostly_numbers(cells: pd.Series, decimal: str = ".") -> bool:
     """More than half of the column's non-blank cells are numbers: a measurement, some of
     whose cells may be a historian's quality flag ("Bad", "Comm Fail"); a status or name
     column is mostly text."""
     if pd.api.types.is_numeric_dtype(cells):
         return True
     present = cells.dropna()
-    return len(present) > 0 and pd.to_numeric(present, errors="coerce").notna().mean() > 0.5
+    return len(present) > 0 and as_numbers(present, decimal).notna().mean() > 0.5
 
 
-def note_text_cells(cells: pd.Series, name, notes: list) -> None:
+def note_text_cells(cells: pd.Series, name, notes: list, decimal: str = ".") -> None:
     """Say how many of a channel's cells hold text (read as blank, as the gateway reads a text
     cell beside other channels' numbers: runtime/intake.py Header.parse)."""
     if pd.api.types.is_numeric_dtype(cells):
         return
     present = cells.dropna()
-    text = present[pd.to_numeric(present, errors="coerce").isna()].astype(str).str.strip()
+    text = present[as_numbers(present, decimal).isna()].astype(str).str.strip()
     if len(text):
         shown = ", ".join(repr(t) for t in text.value_counts().index[:3])
         notes.append(f"channel {str(name)!r}: {len(text)} of {len(cells)} cells hold text "
@@ -470,14 +481,14 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
             raise IntakeError(f"--channels names unknown column(s): {', '.join(unknown)}; "
                               f"columns are {', '.join(map(str, df.columns))}")
         channels = list(opts.channels)
-        not_numeric = [c for c in channels if not mostly_numbers(df[c])]
+        not_numeric = [c for c in channels if not mostly_numbers(df[c], opts.decimal)]
         refuse_decimal_commas(df, not_numeric, path)
         if not_numeric:
             raise IntakeError(f"channel(s) {', '.join(not_numeric)} are not numeric")
     else:
         candidates = [c for c in df.columns if c != time_col and c not in excluded
                       and not pd.api.types.is_bool_dtype(df[c])]
-        text = [c for c in candidates if not mostly_numbers(df[c])]
+        text = [c for c in candidates if not mostly_numbers(df[c], opts.decimal)]
         refuse_decimal_commas(df, text, path)
         channels = [c for c in candidates if c not in text]
         for c in text:
@@ -485,7 +496,7 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
             warnings.warn(notes[-1], stacklevel=3)
         excluded += text
     for c in channels:
-        note_text_cells(df[c], c, notes)
+        note_text_cells(df[c], c, notes, opts.decimal)
     if not channels:
         refuse_decimal_commas(df, [c for c in df.columns if c != time_col], path)
         raise IntakeError(f"{path}: no numeric channel found besides the time column "
@@ -506,8 +517,8 @@ def timed_rows(df: pd.DataFrame, time_col, channels: list, dialect, notes: list)
                           f"{time_problem(raw_times.iloc[first], dialect)}; use ISO 8601 "
                           "(2026-03-02T10:00:00) or epoch seconds, or pick another column with "
                           "--time-col")
-    values = df[channels].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64,
-                                                                         copy=True)
+    values = df[channels].apply(as_numbers, decimal=dialect.decimal).to_numpy(
+        dtype=np.float64, copy=True)
     values[~np.isfinite(values)] = np.nan
     if bad_time.any():
         notes.append(f"{int(bad_time.sum())} rows with unparsable times dropped")

@@ -231,6 +231,10 @@ def test_a_cell_with_a_decimal_comma_still_refuses_its_row():
         assert info.value.kind == "non_numeric"
     t, values, text = header.parse("2026-03-02T10:00:00Z;Bad;2")
     assert math.isnan(values[0]) and values[1] == 2.0 and text == 1
+    continental = Header("time;flow;pressure", "time", ["flow", "pressure"],
+                         Dialect(sep=";", decimal=","))
+    t, values, text = continental.parse("2026-03-02T10:00:00Z;Bad;2,5")
+    assert math.isnan(values[0]) and values[1] == 2.5 and text == 1
 
 
 def test_a_blank_neither_holds_nor_moves_a_reading():

@@ -63,6 +63,15 @@ def test_a_quality_flag_among_numbers_is_read_as_blank_and_said(write_csv):
     np.testing.assert_allclose(frame.values[kept, 1], reference[kept], rtol=1e-12)
     np.testing.assert_allclose(frame.values[10:12, 1], np.interp(
         [10, 11], [9, 12], reference[[9, 12]]), rtol=1e-12)
+    # the same file in the continental dialect (";" between cells, "," before decimals; the
+    # times hold neither): the flags leave the column text to pandas, its numbers still read
+    comma = path.with_name("comma.csv")
+    comma.write_text(path.read_text().replace(",", ";").replace(".", ","))
+    assert ";Bad;" in comma.read_text() and ",5" in comma.read_text()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        continental = load_frame(comma, IntakeOptions(decimal=",", max_fill_periods=5))
+    np.testing.assert_allclose(continental.values, frame.values, rtol=1e-12)
 
 
 def _local_times(utc: pd.DatetimeIndex, zone: str) -> list:
