@@ -21,7 +21,7 @@ import pandas as pd
 
 from ganlet.runtime.features import rate_mask
 from ganlet.runtime.features import series as feature_series
-from ganlet.runtime.intake import UTF16_MARKS, Dialect, RowError, decode_text
+from ganlet.runtime.intake import DECIMAL_COMMA, UTF16_MARKS, Dialect, RowError, decode_text
 from ganlet.runtime.times import MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
@@ -276,7 +276,6 @@ def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = Fal
 
 
 # A number written with a decimal comma: 1,5  -0,25  1.234,5 (thousands dots allowed)
-DECIMAL_COMMA = r"^[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+$"
 
 
 def refuse_decimal_commas(df: pd.DataFrame, columns, path) -> None:
@@ -285,7 +284,7 @@ def refuse_decimal_commas(df: pd.DataFrame, columns, path) -> None:
     found = []
     for col in columns:
         cells = df[col].dropna().astype(str).str.strip().head(200)
-        if len(cells) and cells.str.match(DECIMAL_COMMA).mean() > 0.5:
+        if len(cells) and cells.str.fullmatch(DECIMAL_COMMA.pattern).mean() > 0.5:
             found.append((str(col), cells.iloc[0]))
     if found:
         names = ", ".join(c for c, _ in found)
@@ -442,23 +441,26 @@ def as_numbers(cells: pd.Series, decimal: str = ".") -> pd.Series:
     return pd.to_numeric(text.where(cells.notna()), errors="coerce")
 
 
-def mostly_numbers(cells: pd.Series, decimal: str = ".") -> bool:
-    """More than half of the column's non-blank cells are numbers: a measurement, some of
-    whose cells may be a historian's quality flag ("Bad", "Comm Fail"); a status or name
-    column is mostly text."""
+def text_cells(cells: pd.Series, decimal: str = ".") -> pd.Series:
+    """The column's non-blank cells that are not numbers, stripped (none in a numeric column)."""
+    if pd.api.types.is_numeric_dtype(cells):
+        return pd.Series([], dtype=object)
+    present = cells.dropna()
+    return present[as_numbers(present, decimal).isna()].astype(str).str.strip()
+
+
+def mostly_numbers(cells: pd.Series, text: pd.Series) -> bool:
+    """More than half of the column's non-blank cells are numbers (`text`: the others): a
+    measurement, some of whose cells may be a historian's quality flag ("Bad", "Comm Fail"); a
+    status or name column is mostly text."""
     if pd.api.types.is_numeric_dtype(cells):
         return True
-    present = cells.dropna()
-    return len(present) > 0 and as_numbers(present, decimal).notna().mean() > 0.5
+    return len(text) < 0.5 * int(cells.notna().sum())
 
 
-def note_text_cells(cells: pd.Series, name, notes: list, decimal: str = ".") -> None:
+def note_text_cells(cells: pd.Series, text: pd.Series, name, notes: list) -> None:
     """Say how many of a channel's cells hold text (read as blank, as the gateway reads a text
     cell beside other channels' numbers: runtime/intake.py Header.parse)."""
-    if pd.api.types.is_numeric_dtype(cells):
-        return
-    present = cells.dropna()
-    text = present[as_numbers(present, decimal).isna()].astype(str).str.strip()
     if len(text):
         shown = ", ".join(repr(t) for t in text.value_counts().index[:3])
         notes.append(f"channel {str(name)!r}: {len(text)} of {len(cells)} cells hold text "
@@ -481,14 +483,16 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
             raise IntakeError(f"--channels names unknown column(s): {', '.join(unknown)}; "
                               f"columns are {', '.join(map(str, df.columns))}")
         channels = list(opts.channels)
-        not_numeric = [c for c in channels if not mostly_numbers(df[c], opts.decimal)]
+        texts = {c: text_cells(df[c], opts.decimal) for c in channels}
+        not_numeric = [c for c in channels if not mostly_numbers(df[c], texts[c])]
         refuse_decimal_commas(df, not_numeric, path)
         if not_numeric:
             raise IntakeError(f"channel(s) {', '.join(not_numeric)} are not numeric")
     else:
         candidates = [c for c in df.columns if c != time_col and c not in excluded
                       and not pd.api.types.is_bool_dtype(df[c])]
-        text = [c for c in candidates if not mostly_numbers(df[c], opts.decimal)]
+        texts = {c: text_cells(df[c], opts.decimal) for c in candidates}
+        text = [c for c in candidates if not mostly_numbers(df[c], texts[c])]
         refuse_decimal_commas(df, text, path)
         channels = [c for c in candidates if c not in text]
         for c in text:
@@ -496,7 +500,7 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
             warnings.warn(notes[-1], stacklevel=3)
         excluded += text
     for c in channels:
-        note_text_cells(df[c], c, notes, opts.decimal)
+        note_text_cells(df[c], texts[c], c, notes)
     if not channels:
         refuse_decimal_commas(df, [c for c in df.columns if c != time_col], path)
         raise IntakeError(f"{path}: no numeric channel found besides the time column "

@@ -67,8 +67,14 @@ REJECT_KINDS = (
     "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
-# a number written with a decimal comma (and maybe thousands dots): 1,5  -0,25  1.234,5
-_DECIMAL_COMMA = re.compile(r"[+-]?[0-9.]*,[0-9]+([eE][+-]?[0-9]+)?")
+# A number written with a decimal comma (and maybe thousands dots): 1,5  -0,25  1.234,5. The
+# gateway refuses such a cell with a hint when its --decimal is "."; the workstation's intake
+# names such columns with the same pattern (compile/data.py refuse_decimal_commas).
+DECIMAL_COMMA = re.compile(r"[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+")
+
+
+def decimal_comma(cell: str) -> bool:
+    return DECIMAL_COMMA.fullmatch(cell.strip()) is not None
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
 BLANK_CELLS = frozenset((
@@ -144,7 +150,7 @@ class Dialect:
         try:
             v = float(text)
         except ValueError:
-            hint = " (a decimal comma? pass --decimal ,)" if "," in cell else ""
+            hint = " (a decimal comma? pass --decimal ,)" if decimal_comma(cell) else ""
             raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}") from None
         if not math.isfinite(v):
             raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
@@ -224,7 +230,7 @@ class Header:
             try:
                 values.append(self.dialect.number(name, cells[i]))
             except RowError as exc:
-                if exc.kind != "non_numeric" or _DECIMAL_COMMA.fullmatch(cells[i].strip()):
+                if exc.kind != "non_numeric" or decimal_comma(cells[i]):
                     raise
                 values.append(math.nan)
                 text.append(exc)
