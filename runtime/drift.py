@@ -40,6 +40,16 @@ the score sees it; the entry check, still counting from when it left, decides wh
 re-enters. Without this, a channel that had slipped a hair past its envelope's edge (SKAB
 valve1 file 7: a flow meter's zero reading 0.02 robust sigmas below its training range for one
 window) was in drift when its fault came, and the fault's 4-sigma step was re-centred away.
+At the start (the first hop, with no level before it; not after a restart from a saved state)
+the levels are taken to have held still for the window before, and a channel already outside
+its envelope to have been out for at least a window, having left at the fastest training pace:
+it left when nobody watched, so nothing says it moved faster than training ever did. It is a
+drift from the first hop, and from there its pace and speed are measured as any channel's (one
+that then runs away faster ends its drift). Without this, a channel that ended training beyond
+the levels the network was fitted on (a rig still warming up, at a gateway started after
+training) had its whole excess counted as one window's movement, outran training, and an alert
+the score opened on it kept it out of drift for good (SKAB's healthy rig, the thermocouple
+alone at 5-minute rows: one alert open for 25 days; issue 11's notes, stop 32).
 The `drift` event is sent once its excess passes MARGIN (a full robust standard deviation
 beyond every training window: smaller excursions are the envelope's own sampling error). While
 in drift the network sees x_c - sign(m_c) * e_c (the excess removed), so neither that channel
@@ -134,6 +144,7 @@ class DriftMonitor:
         self.outside = np.zeros(n, dtype=np.int64)
         # since it left, the channel was once further out than the fastest training pace allows
         self.outran = np.zeros(n, dtype=bool)
+        self.fresh = True  # no hop seen yet (a restored state is not fresh)
         # window levels one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -153,6 +164,8 @@ class DriftMonitor:
         stays as it was and its level counts as its last one."""
         m = np.array(levels, dtype=np.float64)
         frozen = np.zeros(len(m), dtype=bool) if left_out is None else np.asarray(left_out)
+        if self.fresh:
+            self._start(m)
         if frozen.any() and self.past:
             m[frozen] = self.past[-1][frozen]
         full = len(self.past) == self.past.maxlen
@@ -189,6 +202,18 @@ class DriftMonitor:
                           np.where(m > self.hi, e, -e), 0.0)
         return offset, events, np.where(frozen, 0.0, self._steps(e))
 
+    def _start(self, m: np.ndarray) -> None:
+        """The first hop, with no level before it: the module docstring's start rule."""
+        self.fresh = False
+        self.past.extend([m] * self.past.maxlen)
+        e = self.excess(m)
+        per_window = self.past.maxlen
+        paced = (e > 0) & (self.v_max > 0)
+        # out for the hops the fastest pace needs to get this far, and a window at least; less
+        # the one this hop counts
+        hops = np.maximum(np.ceil(e[paced] / self.v_max[paced] * per_window), per_window) - 1
+        self.outside[paced] = hops.astype(np.int64)
+
     def _steps(self, e: np.ndarray) -> np.ndarray:
         """Excess in MARGINs of the channels that are steps this hop (0 elsewhere)."""
         if not self.alert_steps:
@@ -221,6 +246,7 @@ class DriftMonitor:
                 "past": [[float(v) for v in m] for m in self.past]}
 
     def restore(self, d: dict) -> None:
+        self.fresh = False
         self.in_drift = np.asarray(d["in_drift"], dtype=bool)
         self.reported = np.asarray(d["reported"], dtype=bool)
         self.since = list(d["since"])

@@ -556,3 +556,41 @@ def test_a_reported_drift_says_why_it_ended():
     assert [(e["event"], e.get("reason")) for e in events] == [("drift", None),
                                                                ("drift_ended", "back")]
     assert events[1]["peak_excess"] == pytest.approx(2.0)
+
+
+def test_a_channel_already_outside_at_the_start_is_a_drift_not_a_fault_that_outran_training():
+    # the gateway's first hop finds the channel at 3.0 (excess 2.0): it left its envelope when
+    # nobody watched (a rig still warming up at the end of training), so it is a drift from the
+    # first hop, reported once, even among an open alert's channels; before, its whole excess
+    # counted as one window's movement, it had outrun training, and an alert held it out of
+    # drift for good (SKAB's healthy rig, the thermocouple alone: one alert for 25 days)
+    state, events, offsets, steps = _drift_trace([3.0] * 100, blocked=True)
+    assert all(state) and offsets[0] == pytest.approx(2.0)
+    assert [e["event"] for e in events] == ["drift"] and events[0]["time"] == "t0"
+    assert max(steps) == 0.0
+    # the same level reached in one hop while the monitor watched is a step, kept out of drift
+    state, _, _, steps = _drift_trace([0.0] * 64 + [3.0] * 100, blocked=True)
+    assert not any(state) and max(steps) == pytest.approx(2.0)
+    # from the start on its pace is measured as any channel's: a jump of 4 sigmas ends the
+    # drift on the hop it comes, and the network sees it
+    state, events, offsets, _ = _drift_trace([3.0] * 20 + [7.0] * 5)
+    assert state[19] and not state[20] and offsets[20] == 0.0
+    assert [(e["event"], e.get("reason")) for e in events] == [("drift", None),
+                                                               ("drift_ended", "faster")]
+
+
+def test_only_a_monitor_with_no_past_gives_the_benefit_of_the_doubt():
+    # a restored monitor is not starting: a channel it knew to be a step stays one
+    mon = _drift_monitor()
+    _drift_trace([0.0] * 64 + [3.0] * 20, blocked=True, mon=mon)
+    again = _drift_monitor()
+    again.restore(json.loads(json.dumps(mon.state())))
+    assert not any(_drift_trace([3.0] * 40, blocked=True, mon=again)[0])
+    # a channel that never moved in training (v_max 0) has no pace to have left at: outside at
+    # the start it is a step once it has been out for a window, as it would be later
+    from ganlet.runtime.drift import DriftMonitor
+
+    still = DriftMonitor({"lo": [-1.0], "hi": [1.0], "v_max": [0.0], "action": "recentre",
+                          "alert_steps": True}, ["flow"], WINDOW, 1)
+    state, _, _, steps = _drift_trace([3.0] * 40, mon=still)
+    assert not any(state) and steps.index(2.0) == WINDOW - 1
