@@ -451,7 +451,7 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
         feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp))
         if bundle is not None:
-            methods["bundle"], capture = _gateway_method(bundle, feed, frame, Path(tmp),
+            methods["bundle"], capture = gateway_method(bundle, feed, frame, Path(tmp),
                                                          rule.kind)
         if model is not None and teacher:
             hop = bundle.hop if bundle is not None else 1
@@ -559,7 +559,7 @@ def _on_grid(frame: Frame, times, score, threshold, alert, name: str, kind: str,
                   np.nan_to_num(held_alert) > 0.5, kind)
 
 
-def _gateway_method(bundle, feed: Path, frame: Frame, workdir: Path, kind: str):
+def gateway_method(bundle, feed: Path, frame: Frame, workdir: Path, kind: str):
     """The bundle's own `run.py stream` on the feed: what the gateway does; and the
     provenance lines of its scores file."""
     dev = read_scores(run_bundle(bundle.dir, feed, workdir / "gateway").scores)

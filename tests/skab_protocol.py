@@ -21,6 +21,9 @@ REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab"
 TRAIN_ROWS = 400
 BUNDLE = "bundle (int8, gateway path)"
+# the same bundle through `run.py stream` fed only the test rows: a gateway that starts after
+# training, as one deployed does, with no history of its own before the first test row
+BUNDLE_FRESH = "bundle, started at test rows"
 
 
 def skab_files(root: Path = SKAB, group: str = "valve1") -> list:
@@ -75,8 +78,9 @@ def run_file(args) -> dict:
     """Train, compile and evaluate one file (in whichever process calls it): the test rows'
     labels and, per method, alerts and scores on them. With train_rows below TRAIN_ROWS the
     model trains on fewer rows and the rows in between are scored but not counted, so the
-    counted rows stay the protocol's."""
-    path, out, seed, distil_epochs, baselines, train_rows, channels = args
+    counted rows stay the protocol's. fresh: also the bundle started at the test rows
+    (fresh_start)."""
+    path, out, seed, distil_epochs, baselines, train_rows, channels, fresh = args
     from ganlet.compile.data import grid_index
     from ganlet.compile.distil import DistilConfig
     from ganlet.compile.evaluate import evaluate
@@ -94,10 +98,28 @@ def run_file(args) -> dict:
     mask[rows] = True
     r = evaluate(out / "bundle", path, incidents, eval_mask=mask, model_dir=model_dir,
                  baselines=baselines)
+    methods = dict(r.methods)
+    if fresh:
+        methods[BUNDLE_FRESH] = fresh_start(out / "bundle", path, frame, out / "fresh")
     return {"file": path.stem, "labels": labels[TRAIN_ROWS:],
-            "alert": {m.name: m.alert[rows] for m in r.methods.values()},
-            "score": {m.name: m.scores[rows] for m in r.methods.values()},
-            "train_score": {m.name: m.scores[trained] for m in r.methods.values()}}
+            "alert": {m.name: m.alert[rows] for m in methods.values()},
+            "score": {m.name: m.scores[rows] for m in methods.values()},
+            "train_score": {m.name: m.scores[trained] for m in methods.values()}}
+
+
+def fresh_start(bundle: Path, path: Path, frame, out: Path):
+    """The bundle's `run.py stream` fed the rows after TRAIN_ROWS only, its hops placed on the
+    file's grid (the training rows get no score)."""
+    from ganlet.compile.evaluate import gateway_method
+    from ganlet.runtime.manifest import load_bundle
+
+    out.mkdir(parents=True, exist_ok=True)
+    feed = out / "test_rows.csv"
+    raw = pd.read_csv(path, sep=";")
+    raw.drop(columns=["anomaly", "changepoint"]).iloc[TRAIN_ROWS:].to_csv(feed, index=False)
+    method, _ = gateway_method(load_bundle(bundle), feed, frame, out, "")
+    method.name = BUNDLE_FRESH
+    return method
 
 
 def p99_alerts(out: dict, name: str) -> np.ndarray:
@@ -152,10 +174,12 @@ def check_train_rows(train_rows: int) -> None:
 
 
 def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
-        files=None, baselines=None, train_rows: int = TRAIN_ROWS, channels=None) -> dict:
+        files=None, baselines=None, train_rows: int = TRAIN_ROWS, channels=None,
+        fresh: bool = False) -> dict:
     """Every valve1 file at one seed, `workers` processes; pooled metrics per method (the
     baselines named, all of evaluate.BASELINES by default). train_rows: see run_file;
-    channels: as `ganlet train --channels` (every method then sees only those)."""
+    channels: as `ganlet train --channels` (every method then sees only those); fresh: also
+    the bundle started at the test rows (fresh_start)."""
     check_train_rows(train_rows)
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
@@ -165,7 +189,7 @@ def run(seed: int, root: Path, workers: int = 2, distil_epochs: int = 80,
     files = files or skab_files()
     baselines = BASELINES if baselines is None else tuple(baselines)
     jobs = [(str(f), str(Path(root) / f"seed{seed}" / f.stem), seed, distil_epochs, baselines,
-             train_rows, channels) for f in files]
+             train_rows, channels, fresh) for f in files]
     ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
         outs = list(pool.map(run_file, jobs))
