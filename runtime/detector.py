@@ -356,8 +356,8 @@ class Detector:
             })
             self.ring.reset()
             self.judge.reset_run()
-            if self.drift is not None:
-                self.drift.reset()
+            if self.drift is not None:  # the hops of the gap and of the window's refill
+                self.drift.reset((gap + self.bundle.window) // self.bundle.hop)
         self.counters["interpolated"] += len(rows) - 1
         self.blanks.commit(blanks_after)
         events += blank_events

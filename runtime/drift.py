@@ -40,16 +40,26 @@ the score sees it; the entry check, still counting from when it left, decides wh
 re-enters. Without this, a channel that had slipped a hair past its envelope's edge (SKAB
 valve1 file 7: a flow meter's zero reading 0.02 robust sigmas below its training range for one
 window) was in drift when its fault came, and the fault's 4-sigma step was re-centred away.
-At the start (the first hop, with no level before it; not after a restart from a saved state)
-the levels are taken to have held still for the window before, and a channel already outside
-its envelope to have been out for at least a window, having left at the fastest training pace:
-it left when nobody watched, so nothing says it moved faster than training ever did. It is a
-drift from the first hop, and from there its pace and speed are measured as any channel's (one
-that then runs away faster ends its drift). Without this, a channel that ended training beyond
-the levels the network was fitted on (a rig still warming up, at a gateway started after
-training) had its whole excess counted as one window's movement, outran training, and an alert
-the score opened on it kept it out of drift for good (SKAB's healthy rig, the thermocouple
-alone at 5-minute rows: one alert open for 25 days; issue 11's notes, stop 32).
+Levels nobody saw move. At the start (the first hop, with no level before it; not after a
+restart from a saved state) the levels are taken to have held still for the window before, and
+a channel already outside its envelope to have been out for at least a window, having left at
+the fastest training pace: it left when nobody watched, so nothing says it moved faster than
+training ever did. It is a drift from the first hop, and from there its pace and speed are
+measured as any channel's (one that then runs away faster ends its drift). Without this, a
+channel that ended training beyond the levels the network was fitted on (a rig still warming
+up, at a gateway started after training) had its whole excess counted as one window's
+movement, outran training, and an alert the score opened on it kept it out of drift for good
+(SKAB's healthy rig, the thermocouple alone at 5-minute rows: one alert open for 25 days;
+issue 11's notes, stop 32). After a long gap the departure clock counts the time the gap
+stood for: a channel that was out before it has been out through the gap's hops too, and one
+that left during it left at most that long ago, so a channel that crept out over a day's outage
+becomes a drift, and one that got further than the fastest pace could in the gap is a step.
+After the clock is set back how long went unseen is not known: a channel outside is counted out
+for as long as the fastest pace needs. Unlike the start, the levels after a gap are not taken
+to have held still: a channel enters drift only once a window of them shows its speed, while
+the alerts open then are known (on the first hop after a gap, the channels of an alert held
+over it are the ones before it; SKAB valve1 file 2, whose fault begins after a 76-second gap,
+had its temperature re-centred at once and the fault missed when they were).
 The `drift` event is sent once its excess passes MARGIN (a full robust standard deviation
 beyond every training window: smaller excursions are the envelope's own sampling error). While
 in drift the network sees x_c - sign(m_c) * e_c (the excess removed), so neither that channel
@@ -144,7 +154,8 @@ class DriftMonitor:
         self.outside = np.zeros(n, dtype=np.int64)
         # since it left, the channel was once further out than the fastest training pace allows
         self.outran = np.zeros(n, dtype=bool)
-        self.fresh = True  # no hop seen yet (a restored state is not fresh)
+        # no hop seen yet; after a gap, until its first hop, the hops it stood for (-1: not known)
+        self.fresh, self.unseen = True, None
         # window levels one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -166,6 +177,8 @@ class DriftMonitor:
         frozen = np.zeros(len(m), dtype=bool) if left_out is None else np.asarray(left_out)
         if self.fresh:
             self._start(m)
+        elif self.unseen is not None:
+            self._after_gap(m)
         if frozen.any() and self.past:
             m[frozen] = self.past[-1][frozen]
         full = len(self.past) == self.past.maxlen
@@ -203,16 +216,31 @@ class DriftMonitor:
         return offset, events, np.where(frozen, 0.0, self._steps(e))
 
     def _start(self, m: np.ndarray) -> None:
-        """The first hop, with no level before it: the module docstring's start rule."""
+        """The first hop: the module docstring's rule for levels nobody saw move."""
         self.fresh = False
         self.past.extend([m] * self.past.maxlen)
-        e = self.excess(m)
+        self.outside = np.maximum(self.outside, self._paced_hops(self.excess(m)))
+
+    def _after_gap(self, m: np.ndarray) -> None:
+        """The first hop after a gap: the departure clock runs on through the gap's hops, and a
+        channel that left during it left at most that long ago."""
+        needed = self._paced_hops(self.excess(m))
+        if self.unseen < 0:
+            self.outside = np.maximum(self.outside, needed)
+        else:
+            self.outside = np.where(self.outside > 0, self.outside + self.unseen,
+                                    np.minimum(needed, self.unseen))
+        self.unseen = None
+
+    def _paced_hops(self, e: np.ndarray) -> np.ndarray:
+        """Per channel outside: the hops the fastest training pace needs to get this far, and
+        a window at least, less the one the hop itself counts (0 inside, or with no pace)."""
         per_window = self.past.maxlen
         paced = (e > 0) & (self.v_max > 0)
-        # out for the hops the fastest pace needs to get this far, and a window at least; less
-        # the one this hop counts
-        hops = np.maximum(np.ceil(e[paced] / self.v_max[paced] * per_window), per_window) - 1
-        self.outside[paced] = hops.astype(np.int64)
+        hops = np.zeros(len(e), dtype=np.int64)
+        hops[paced] = np.maximum(np.ceil(e[paced] / self.v_max[paced] * per_window),
+                                 per_window) - 1
+        return hops
 
     def _steps(self, e: np.ndarray) -> np.ndarray:
         """Excess in MARGINs of the channels that are steps this hop (0 elsewhere)."""
@@ -233,20 +261,24 @@ class DriftMonitor:
         self.since[c], self.inside[c] = None, 0
         return events
 
-    def reset(self) -> None:
-        """After a long gap the window one window earlier is gone."""
+    def reset(self, unseen_hops: int = -1) -> None:
+        """After a long gap (unseen_hops: the hops it stood for) or a clock set back (-1: how
+        long is not known) the window one window earlier is gone."""
         self.past.clear()
+        self.unseen = int(unseen_hops)
 
     def state(self) -> dict:
         return {"in_drift": [bool(v) for v in self.in_drift],
                 "reported": [bool(v) for v in self.reported], "since": list(self.since),
                 "peak": [float(v) for v in self.peak], "inside": [int(v) for v in self.inside],
                 "outside": [int(v) for v in self.outside],
-                "outran": [bool(v) for v in self.outran],
-                "past": [[float(v) for v in m] for m in self.past]}
+                "outran": [bool(v) for v in self.outran], "fresh": self.fresh,
+                "unseen": self.unseen, "past": [[float(v) for v in m] for m in self.past]}
 
     def restore(self, d: dict) -> None:
-        self.fresh = False
+        # a state from before these keys: neither starting nor after a gap
+        unseen = d.get("unseen")
+        self.fresh, self.unseen = bool(d.get("fresh", False)), None if unseen is None else int(unseen)
         self.in_drift = np.asarray(d["in_drift"], dtype=bool)
         self.reported = np.asarray(d["reported"], dtype=bool)
         self.since = list(d["since"])

@@ -594,3 +594,71 @@ def test_only_a_monitor_with_no_past_gives_the_benefit_of_the_doubt():
                           "alert_steps": True}, ["flow"], WINDOW, 1)
     state, _, _, steps = _drift_trace([3.0] * 40, mon=still)
     assert not any(state) and steps.index(2.0) == WINDOW - 1
+
+
+def test_a_gap_counts_towards_a_departure_nobody_saw():
+    # inside for 64 hops, then a gap the monitor is told stood for 200 hops, then 3.0 (excess
+    # 2.0, which the fastest pace, 0.5 a window of 16 hops, needs 64 hops to cover): it crept
+    # out while nobody watched, a drift once a window of levels after the gap shows it holding
+    # still (its speed), never a step
+    mon = _drift_monitor()
+    _drift_trace([0.0] * 64, mon=mon)
+    mon.reset(200)
+    state, events, _, steps = _drift_trace([3.0] * 40, mon=mon)
+    assert state.index(True) == WINDOW and all(state[WINDOW:]) and max(steps) == 0.0
+    assert [e["event"] for e in events] == ["drift"]
+    # a gap of 20 hops cannot explain it: a step at once (further than the pace allows in the
+    # 21 hops since it could have left), a drift once a slow pace could have got there (64 hops)
+    mon = _drift_monitor()
+    _drift_trace([0.0] * 64, mon=mon)
+    mon.reset(20)
+    state, _, _, steps = _drift_trace([3.0] * 60, mon=mon)
+    assert steps[0] == pytest.approx(2.0) and state.index(True) == 64 - 21
+    # a drift before the gap keeps its clock running through it: a level further out after
+    # 400 unseen hops is still paced, where counting only the hops seen ended the drift
+    mon = _drift_monitor()
+    _drift_trace([1.5] * 40, mon=mon)
+    mon.reset(400)
+    assert all(_drift_trace([5.0] * 10, mon=mon)[0])
+    mon = _drift_monitor()
+    _drift_trace([1.5] * 40, mon=mon)
+    mon.reset(0)
+    assert not _drift_trace([5.0] * 10, mon=mon)[0][0]
+    # waiting for its first hop after a gap survives a restart
+    again = _drift_monitor()
+    mon.reset(400)
+    again.restore(json.loads(json.dumps(mon.state())))
+    assert not again.fresh and again.unseen == 400
+
+
+def _stepped_after_gap(gap_s: float) -> tuple:
+    """Normal rows, a gap of gap_s seconds, then the flow 8 robust sigmas up and held."""
+    values = fx.raw_values(400, seed=5)
+    values[200:, 0] += 8.0 * fx.SCALE[0]
+    times = [fx.T0 + k for k in range(200)] + [fx.T0 + 199 + gap_s + k for k in range(1, 201)]
+    return values, times
+
+
+@pytest.mark.parametrize("gap_s, kind", [(86400.0, "drift"), (10.0, "step")])
+def test_a_level_changed_across_a_gap_is_judged_by_the_time_the_gap_stood_for(
+        drift_bundles, tmp_path, gap_s, kind):
+    # the score cannot alert here (only a step can): across a day the flow could have crept
+    # 8 sigmas at the pace training allows, so it is a drift; across 10 seconds it could not,
+    # so it is a step, as it was before gaps counted
+    values, times = _stepped_after_gap(gap_s)
+    path = tmp_path / f"gap{int(gap_s)}.csv"
+    fx.write_csv(path, values, times)
+    out = io.StringIO()
+    import contextlib
+
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(io.StringIO()):
+        assert main(["stream", "--input", str(path), "--backend", "numpy", "--heartbeat", "0",
+                     "--checkpoint-every", "0", "--replay"],
+                    bundle_dir=drift_bundles["steps"]) == 0
+    events = [json.loads(line) for line in out.getvalue().splitlines()]
+    assert len(of(events, "gap")) == 1
+    opened = of(events, "alert_opened")
+    if kind == "drift":
+        assert opened == [] and [d["channel"] for d in of(events, "drift")] == ["flow"]
+    else:
+        assert [a["opened_by"] for a in opened] == ["step"] and opened[0]["moved"]["name"] == "flow"
