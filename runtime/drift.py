@@ -57,9 +57,9 @@ becomes a drift, and one that got further than the fastest pace could in the gap
 After the clock is set back how long went unseen is not known: a channel outside is counted out
 for as long as the fastest pace needs. Unlike the start, the levels after a gap are not taken
 to have held still: a channel enters drift only once a window of them shows its speed, while
-the alerts open then are known (on the first hop after a gap, the channels of an alert held
-over it are the ones before it; SKAB valve1 file 2, whose fault begins after a 76-second gap,
-had its temperature re-centred at once and the fault missed when they were).
+the alerts open then are known (SKAB valve1 file 2's fault begins after a 76-second gap: with
+the levels taken as held still its temperature was re-centred on the first hop after the gap,
+judged against the alert channels of the hop before it, and the fault went unalerted).
 The `drift` event is sent once its excess passes MARGIN (a full robust standard deviation
 beyond every training window: smaller excursions are the envelope's own sampling error). While
 in drift the network sees x_c - sign(m_c) * e_c (the excess removed), so neither that channel
