@@ -90,6 +90,7 @@ from typing import Optional, Sequence
 import numpy as np
 
 MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
+MAX_UNSEEN_HOPS = 2 ** 40  # a gap counted as longer is as long: the hop counters stay int64
 
 
 DRIFT_ACTIONS = ("recentre", "report")
@@ -178,7 +179,7 @@ class DriftMonitor:
         if self.fresh:
             self._start(m)
         elif self.unseen is not None:
-            self._after_gap(m)
+            self._after_gap(m, ~frozen)
         if frozen.any() and self.past:
             m[frozen] = self.past[-1][frozen]
         full = len(self.past) == self.past.maxlen
@@ -221,15 +222,17 @@ class DriftMonitor:
         self.past.extend([m] * self.past.maxlen)
         self.outside = np.maximum(self.outside, self._paced_hops(self.excess(m)))
 
-    def _after_gap(self, m: np.ndarray) -> None:
+    def _after_gap(self, m: np.ndarray, live: np.ndarray) -> None:
         """The first hop after a gap: the departure clock runs on through the gap's hops, and a
-        channel that left during it left at most that long ago."""
+        channel that left during it left at most that long ago (a channel left out stays as
+        it was)."""
         needed = self._paced_hops(self.excess(m))
         if self.unseen < 0:
-            self.outside = np.maximum(self.outside, needed)
+            clock = np.maximum(self.outside, needed)
         else:
-            self.outside = np.where(self.outside > 0, self.outside + self.unseen,
-                                    np.minimum(needed, self.unseen))
+            clock = np.where(self.outside > 0, self.outside + self.unseen,
+                             np.minimum(needed, self.unseen))
+        self.outside = np.where(live, clock, self.outside)
         self.unseen = None
 
     def _paced_hops(self, e: np.ndarray) -> np.ndarray:
@@ -265,7 +268,7 @@ class DriftMonitor:
         """After a long gap (unseen_hops: the hops it stood for) or a clock set back (-1: how
         long is not known) the window one window earlier is gone."""
         self.past.clear()
-        self.unseen = int(unseen_hops)
+        self.unseen = min(int(unseen_hops), MAX_UNSEEN_HOPS)
 
     def state(self) -> dict:
         return {"in_drift": [bool(v) for v in self.in_drift],
@@ -278,6 +281,8 @@ class DriftMonitor:
     def restore(self, d: dict) -> None:
         # a state from before these keys: neither starting nor after a gap
         unseen = d.get("unseen")
+        if unseen is not None and not -1 <= int(unseen) <= MAX_UNSEEN_HOPS:
+            raise ValueError(f"drift.unseen must be -1 .. {MAX_UNSEEN_HOPS}")
         self.fresh, self.unseen = bool(d.get("fresh", False)), None if unseen is None else int(unseen)
         self.in_drift = np.asarray(d["in_drift"], dtype=bool)
         self.reported = np.asarray(d["reported"], dtype=bool)
