@@ -662,3 +662,15 @@ def test_a_level_changed_across_a_gap_is_judged_by_the_time_the_gap_stood_for(
         assert opened == [] and [d["channel"] for d in of(events, "drift")] == ["flow"]
     else:
         assert [a["opened_by"] for a in opened] == ["step"] and opened[0]["moved"]["name"] == "flow"
+
+
+def test_a_gateway_started_with_a_channel_out_of_range_reports_a_drift_not_a_step(
+        drift_bundles, tmp_path):
+    # `run.py stream` started on rows whose flow already sits 8 robust sigmas up (a rig still
+    # warming when training ended): the score cannot alert here, only a step can; before the
+    # start rule the first window counted the whole excess as its own movement, a step
+    values = fx.raw_values(200, seed=5)
+    values[:, 0] += 8.0 * fx.SCALE[0]
+    events = stream_events(drift_bundles["steps"], values, tmp_path, "started_out")
+    assert of(events, "alert_opened") == []
+    assert [(d["channel"], d["side"]) for d in of(events, "drift")] == [("flow", "above")]
