@@ -47,9 +47,7 @@ def run_length(path: Path, rows: int, seed: int, out: Path, drift: str, channels
     from ganlet.compile.pipeline import CompileOptions
 
     skab_protocol.train_and_compile(path, rows, seed, out, CompileOptions(drift=drift), channels)
-    raw = pd.read_csv(path, sep=";")
-    feed = out / "feed.csv"
-    raw.iloc[rows:].to_csv(feed, index=False)          # only rows the model never saw
+    feed = skab_protocol.rows_from(path, rows, out / "feed.csv")  # rows the model never saw
     run = run_bundle(out / "bundle", feed, out / "gateway")
     scores = read_scores(run.scores)
     hours = (scores["time"].iloc[-1] - scores["time"].iloc[0]).total_seconds() / 3600
@@ -83,23 +81,32 @@ def main() -> None:
     path = a.skab / "anomaly-free" / "anomaly-free.csv"
     if not path.is_file():
         raise SystemExit(f"no SKAB anomaly-free file at {path}")
-    if a.each_channel:
-        each_channel(path, a)
-        return
     warnings.simplefilter("ignore")
     from ganlet.compile.calibrate import DRIFT_ACTION
 
     drift = a.drift or DRIFT_ACTION
+    runs, what = planned_runs(a, path, channels)
+    spacing = f"{a.row_minutes:g} min apart" if a.row_minutes else "as recorded (1 s)"
     print(f"SKAB anomaly-free, seed {a.seed}, defaults (budget 1 false alarm per week), "
-          f"--drift {drift}, channels: {a.channels or 'all'}, rows "
-          f"{f'{a.row_minutes:g} min apart' if a.row_minutes else 'as recorded (1 s)'}")
-    print(f"{'train rows':>10}  {HEADER}")
+          f"--drift {drift}, channels: {what}, rows {spacing}")
+    print(f"{'channel' if a.each_channel else 'train rows':>22}  {HEADER}")
     with tempfile.TemporaryDirectory(prefix="ganlet-normal-") as tmp:
         path = retimed(path, a.row_minutes, Path(tmp))
-        for rows in a.train_rows:
+        for k, (label, rows, names) in enumerate(runs):
             started = time.perf_counter()
-            r = run_length(path, rows, a.seed, Path(tmp) / str(rows), drift, channels)
-            print(f"{r['rows']:>10}  {row_text(r)}  {time.perf_counter() - started:>5.0f}")
+            r = run_length(path, rows, a.seed, Path(tmp) / str(k), drift, names)
+            print(f"{label:>22}  {row_text(r)}  {time.perf_counter() - started:>5.0f}")
+
+
+def planned_runs(a, path: Path, channels) -> tuple:
+    """([(label, training rows, channels)] per run, the channels in words): each training
+    length, or with --each-channel every channel alone at the first length."""
+    if not a.each_channel:
+        return [(str(rows), rows, channels) for rows in a.train_rows], a.channels or "all"
+    names = [c for c in pd.read_csv(path, sep=";", nrows=1).columns
+             if c not in ("datetime", "anomaly", "changepoint")]
+    rows = a.train_rows[0]
+    return [(name, rows, [name]) for name in names], f"each alone, {rows} rows trained"
 
 
 HEADER = (f"{'streamed h':>10}  {'alerts':>6}  {'per week':>9}  {'in alert':>8}  "
@@ -125,27 +132,6 @@ def retimed(path: Path, minutes, tmp: Path) -> Path:
     out = tmp / f"retimed_{minutes:g}min.csv"
     raw.to_csv(out, sep=";", index=False)
     return out
-
-
-def each_channel(path: Path, a) -> None:
-    """Every channel of the file alone, trained on the first --train-rows rows."""
-    from ganlet.compile.calibrate import DRIFT_ACTION
-
-    warnings.simplefilter("ignore")
-    rows = a.train_rows[0]
-    names = [c for c in pd.read_csv(path, sep=";", nrows=1).columns
-             if c not in ("datetime", "anomaly", "changepoint")]
-    print(f"SKAB anomaly-free, each channel alone, first {rows} rows trained, rows "
-          f"{a.row_minutes or 1 / 60:g} min apart, seed {a.seed}, defaults (budget 1 false alarm "
-          "per week)")
-    print(f"{'channel':>22}  {HEADER}")
-    with tempfile.TemporaryDirectory(prefix="ganlet-normal-") as tmp:
-        path = retimed(path, a.row_minutes, Path(tmp))
-        for k, name in enumerate(names):
-            started = time.perf_counter()
-            r = run_length(path, rows, a.seed, Path(tmp) / str(k), a.drift or DRIFT_ACTION,
-                           [name])
-            print(f"{name:>22}  {row_text(r)}  {time.perf_counter() - started:>5.0f}")
 
 
 if __name__ == "__main__":

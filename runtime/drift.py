@@ -155,8 +155,9 @@ class DriftMonitor:
         self.outside = np.zeros(n, dtype=np.int64)
         # since it left, the channel was once further out than the fastest training pace allows
         self.outran = np.zeros(n, dtype=bool)
-        # no hop seen yet; after a gap, until its first hop, the hops it stood for (-1: not known)
-        self.fresh, self.unseen = True, None
+        # no hop seen yet; until the first hop after the start or a gap, the hops that went
+        # unseen (-1: not known, as at the start)
+        self.fresh, self.unseen = True, -1
         # window levels one window earlier: hops back = ceil(window / hop)
         self.past = deque(maxlen=max(1, -(-window // hop)))
 
@@ -178,8 +179,8 @@ class DriftMonitor:
         frozen = np.zeros(len(m), dtype=bool) if left_out is None else np.asarray(left_out)
         if self.fresh:
             self._start(m)
-        elif self.unseen is not None:
-            self._after_gap(m, ~frozen)
+        if self.unseen is not None:
+            self._count_unseen(m, ~frozen)
         if frozen.any() and self.past:
             m[frozen] = self.past[-1][frozen]
         full = len(self.past) == self.past.maxlen
@@ -217,15 +218,16 @@ class DriftMonitor:
         return offset, events, np.where(frozen, 0.0, self._steps(e))
 
     def _start(self, m: np.ndarray) -> None:
-        """The first hop: the module docstring's rule for levels nobody saw move."""
+        """The first hop: the levels held still for the window before (the module docstring's
+        rule for levels nobody saw move)."""
         self.fresh = False
         self.past.extend([m] * self.past.maxlen)
-        self.outside = np.maximum(self.outside, self._paced_hops(self.excess(m)))
 
-    def _after_gap(self, m: np.ndarray, live: np.ndarray) -> None:
-        """The first hop after a gap: the departure clock runs on through the gap's hops, and a
-        channel that left during it left at most that long ago (a channel left out stays as
-        it was)."""
+    def _count_unseen(self, m: np.ndarray, live: np.ndarray) -> None:
+        """The first hop after the start or a gap: the departure clock runs on through the hops
+        that went unseen, and a channel that left in them left at most that long ago; when how
+        long is not known, as long as the fastest pace needs (a channel left out stays as it
+        was)."""
         needed = self._paced_hops(self.excess(m))
         if self.unseen < 0:
             clock = np.maximum(self.outside, needed)

@@ -114,12 +114,18 @@ def fresh_start(bundle: Path, path: Path, frame, out: Path):
     from ganlet.runtime.manifest import load_bundle
 
     out.mkdir(parents=True, exist_ok=True)
-    feed = out / "test_rows.csv"
-    raw = pd.read_csv(path, sep=";")
-    raw.drop(columns=["anomaly", "changepoint"]).iloc[TRAIN_ROWS:].to_csv(feed, index=False)
+    feed = rows_from(path, TRAIN_ROWS, out / "test_rows.csv")
     method, _ = gateway_method(load_bundle(bundle), feed, frame, out, "")
     method.name = BUNDLE_FRESH
     return method
+
+
+def rows_from(path: Path, start: int, feed: Path) -> Path:
+    """A gateway feed of a SKAB file's rows from `start` on (its label columns left out)."""
+    raw = pd.read_csv(path, sep=";")
+    raw.drop(columns=[c for c in ("anomaly", "changepoint") if c in raw.columns]
+             ).iloc[start:].to_csv(feed, index=False)
+    return feed
 
 
 def p99_alerts(out: dict, name: str) -> np.ndarray:
