@@ -275,9 +275,6 @@ def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = Fal
     return pd.read_csv(io.StringIO(text), sep=sep, decimal=decimal, skiprows=skip)
 
 
-# A number written with a decimal comma: 1,5  -0,25  1.234,5 (thousands dots allowed)
-
-
 def refuse_decimal_commas(df: pd.DataFrame, columns, path) -> None:
     """Text columns whose cells are numbers with a decimal comma: say so (the delimiter is
     right; the decimal mark is not the one pandas reads by default)."""

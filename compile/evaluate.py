@@ -452,7 +452,7 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
         feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp))
         if bundle is not None:
             methods["bundle"], capture = gateway_method(bundle, feed, frame, Path(tmp),
-                                                         rule.kind)
+                                                        rule.kind)
         if model is not None and teacher:
             hop = bundle.hop if bundle is not None else 1
             methods["teacher"] = _teacher_method(model, feed, frame, rule, hop)
