@@ -167,7 +167,7 @@ def train(
     units: Optional[str] = typer.Option(None, help="Units, e.g. 'flow=L/min,temp=degC' (default: read from name suffixes)."),
     period: Optional[str] = typer.Option(None, help="Sampling period: seconds or e.g. '1min' (default: median spacing)."),
     max_fill: int = typer.Option(5, "--max-fill", help="Interpolate gaps up to this many periods; longer gaps split the series."),
-    train_until: Optional[str] = typer.Option(None, "--train-until", help="End of the training span: a row count, a fraction (0.6) or a time. Default: all data."),
+    train_until: Optional[str] = typer.Option(None, "--train-until", help="End of the training span: a count of the file's rows, a fraction (0.6) or a time. Default: all data."),
     calibration: float = typer.Option(0.2, help="Fraction of the training span held back (at its end) to calibrate thresholds."),
     window: Optional[int] = typer.Option(None, help="Window length in samples (default 32, shorter for short histories)."),
     config: Optional[Path] = typer.Option(None, help="JSON or TOML file of TeacherConfig fields."),

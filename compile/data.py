@@ -125,6 +125,9 @@ class Frame:
     units: list
     period_s: float
     report: IntakeReport
+    # the times of the rows read, in time order: a row count (--train-until 400) counts the
+    # file's rows, which a grid with filled gaps outnumbers
+    row_times: Optional[np.ndarray] = None
 
     def segments(self, start: int = 0, stop: Optional[int] = None) -> list:
         """(begin, end) row ranges without NaN, inside [start, stop)."""
@@ -424,7 +427,8 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         time_zone=dialect.zone_name,
         blank_cells={str(c): int(n) for c, n in zip(channels, blank)}, blank_runs=blank_runs,
     )
-    return Frame(grid_times, grid, [str(c) for c in channels], units, period, report)
+    return Frame(grid_times, grid, [str(c) for c in channels], units, period, report,
+                 row_times=times_np)
 
 
 def as_numbers(cells: pd.Series, decimal: str = ".") -> pd.Series:
@@ -630,14 +634,15 @@ class Spans:
 
 
 def split_spans(frame: Frame, train_until=None, calibration_fraction: float = 0.2) -> Spans:
-    """train_until: None (all), a row count (int), a fraction (0<f<=1) or a timestamp string."""
+    """train_until: None (all), a count of the file's rows (int), a fraction of the grid
+    (0<f<=1) or a timestamp string."""
     n = len(frame.values)
     if train_until is None:
         end = n
     elif isinstance(train_until, float) and 0 < train_until <= 1:
         end = int(round(n * train_until))
     elif isinstance(train_until, int):
-        end = min(train_until, n)
+        end = rows_end(frame, train_until)
     else:
         try:
             stamp = pd.Timestamp(str(train_until))
@@ -651,6 +656,20 @@ def split_spans(frame: Frame, train_until=None, calibration_fraction: float = 0.
         raise IntakeError("--calibration must be a fraction between 0 and 1")
     cal_start = int(round(end * (1 - calibration_fraction)))
     return Spans(fit=(0, cal_start), calibration=(cal_start, end), rest=(end, n))
+
+
+def rows_end(frame: Frame, rows: int) -> int:
+    """The grid index after the file's first `rows` rows (in time order). Counted on the grid,
+    gaps the intake filled would count as rows: SKAB's files miss about one second in twenty,
+    so their first 400 grid points end at the file's row 380 or so."""
+    if frame.row_times is None or rows <= 0:
+        return min(max(rows, 0), len(frame.values))
+    if rows >= len(frame.row_times):
+        return len(frame.values)
+    offset = (np.datetime64(frame.row_times[rows - 1], "ns") - frame.times.values[0]).astype(
+        "timedelta64[ns]").astype(np.int64) / 1e9
+    slot = int(np.floor(offset / frame.period_s + 0.5))   # the row's grid point, as on_grid puts it
+    return min(slot + 1, len(frame.values))
 
 
 @dataclass
@@ -741,7 +760,7 @@ def without_constant_channels(frame: Frame, spans: Spans, named: bool) -> tuple:
                          frame.channels[j]] for j in keep},
                      warnings=frame.report.warnings + notes)
     return Frame(frame.times, frame.values[:, keep], report.channels, report.units,
-                 frame.period_s, report), notes
+                 frame.period_s, report, frame.row_times), notes
 
 
 def trending_channels(frame: Frame, span: tuple, min_rho: float = TREND_RHO) -> dict:

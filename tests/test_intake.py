@@ -387,6 +387,24 @@ def test_spans_are_chronological_with_the_calibration_held_back(write_csv):
         split_spans(frame, "not a time", 0.2)
 
 
+def test_a_row_count_counts_the_files_rows_not_the_grids(write_csv):
+    """--train-until 300 on a file missing one second in ten trains on the file's first 300
+    rows: the grid's filled gaps do not count as rows (they did: SKAB's first 400 grid points
+    end at its file's row ~381). Reference: the rows pandas.read_csv reads from the same file."""
+    df = correlated_series(1000)
+    df = df.drop(index=np.arange(5, 1000, 10)).reset_index(drop=True)   # 900 rows, 1000 s
+    path = write_csv(df, "holes.csv")
+    frame = load_frame(path)
+    assert len(frame.values) == 1000 and frame.report.filled_points == 100
+    rows = pd.read_csv(path)
+    spans = split_spans(frame, 300, 0.2)
+    assert frame.times[spans.rest[0] - 1] == pd.Timestamp(rows["time"].iloc[299])
+    assert spans == split_spans(frame, str(rows["time"].iloc[299]), 0.2)
+    assert spans.rest[0] == 333                         # 300 rows, 33 holes filled among them
+    assert split_spans(frame, 900, 0.2).rest == (1000, 1000)
+    assert split_spans(frame, 5000, 0.2).rest == (1000, 1000)
+
+
 def test_scaler_and_weights_see_the_fit_span_only(write_csv):
     df = correlated_series(500)
     frame = load_frame(write_csv(df, "a.csv"))
