@@ -666,10 +666,7 @@ def rows_end(frame: Frame, rows: int) -> int:
         return min(max(rows, 0), len(frame.values))
     if rows >= len(frame.row_times):
         return len(frame.values)
-    offset = (np.datetime64(frame.row_times[rows - 1], "ns") - frame.times.values[0]).astype(
-        "timedelta64[ns]").astype(np.int64) / 1e9
-    slot = int(np.floor(offset / frame.period_s + 0.5))   # the row's grid point, as on_grid puts it
-    return min(slot + 1, len(frame.values))
+    return int(grid_index(frame, frame.row_times[rows - 1:rows])[0]) + 1
 
 
 @dataclass
