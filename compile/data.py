@@ -21,7 +21,7 @@ import pandas as pd
 
 from ganlet.runtime.features import rate_mask
 from ganlet.runtime.features import series as feature_series
-from ganlet.runtime.intake import DECIMAL_COMMA, UTF16_MARKS, Dialect, RowError, decode_text
+from ganlet.runtime.intake import UTF16_MARKS, Dialect, RowError, decimal_comma, decode_text
 from ganlet.runtime.times import MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
@@ -284,7 +284,7 @@ def refuse_decimal_commas(df: pd.DataFrame, columns, path) -> None:
     found = []
     for col in columns:
         cells = df[col].dropna().astype(str).str.strip().head(200)
-        if len(cells) and cells.str.fullmatch(DECIMAL_COMMA.pattern).mean() > 0.5:
+        if len(cells) and cells.map(decimal_comma).mean() > 0.5:
             found.append((str(col), cells.iloc[0]))
     if found:
         names = ", ".join(c for c, _ in found)

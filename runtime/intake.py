@@ -69,17 +69,19 @@ REJECT_KINDS = (
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
 # A number written with a decimal comma (and maybe thousands dots): 1,5  -0,25  1.234,5. The
 # gateway refuses such a cell with a hint when its --decimal is "."; the workstation's intake
-# names such columns with the same pattern (compile/data.py refuse_decimal_commas).
+# names such columns with decimal_comma (compile/data.py refuse_decimal_commas).
 DECIMAL_COMMA = re.compile(r"[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+")
 
-
-def decimal_comma(cell: str) -> bool:
-    return DECIMAL_COMMA.fullmatch(cell.strip()) is not None
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
 BLANK_CELLS = frozenset((
     "", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
     "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"))
+
+
+def decimal_comma(cell: str) -> bool:
+    """The cell is a number written with a decimal comma (DECIMAL_COMMA)."""
+    return DECIMAL_COMMA.fullmatch(cell.strip()) is not None
 
 
 class RowError(Exception):
