@@ -658,6 +658,25 @@ def split_spans(frame: Frame, train_until=None, calibration_fraction: float = 0.
     return Spans(fit=(0, cal_start), calibration=(cal_start, end), rest=(end, n))
 
 
+def spans_summary(frame: Frame, spans: Spans) -> str:
+    """Where training ends, in the file's rows and in time: what --train-until and
+    --calibration did."""
+    t, (cal_start, end) = frame.times, spans.calibration
+    lines = [f"training  {t[0]} .. {t[end - 1]}: {file_rows(frame, end)} rows of the file, "
+             f"{end} grid points; calibration from {t[cal_start]} ({end - cal_start} points)"]
+    if end < len(t):
+        lines.append(f"untrained {t[end]} .. {t[-1]}: {len(t) - end} grid points")
+    return "\n".join(lines)
+
+
+def file_rows(frame: Frame, end: int) -> int:
+    """How many of the file's rows fall on the grid points before `end`."""
+    if frame.row_times is None or end <= 0:
+        return end
+    half = np.timedelta64(int(round(frame.period_s * 5e8)), "ns")   # half a period
+    return int(np.searchsorted(frame.row_times, frame.times.values[end - 1] + half, side="left"))
+
+
 def rows_end(frame: Frame, rows: int) -> int:
     """The grid index after the file's first `rows` rows (in time order). Counted on the grid,
     gaps the intake filled would count as rows: SKAB's files miss about one second in twenty,

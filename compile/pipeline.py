@@ -40,6 +40,7 @@ from ganlet.compile.data import (
     load_frame,
     parse_period,
     save_json,
+    spans_summary,
     split_spans,
     trending_channels,
     without_constant_channels,
@@ -158,6 +159,7 @@ def train_from_file(data: Path, out: Path, options: TrainOptions,
     echo(frame.report.summary())
     config = options.detector_config()
     spans = split_spans(frame, options.train_until, options.calibration)
+    echo(spans_summary(frame, spans))
     frame, notes = without_constant_channels(frame, spans, named=bool(options.channels))
     for note in notes:
         echo(f"note: {note}")

@@ -18,6 +18,7 @@ from ganlet.compile.data import (
     choose_window,
     grid_index,
     load_frame,
+    spans_summary,
     split_spans,
     windows_from,
 )
@@ -401,6 +402,9 @@ def test_a_row_count_counts_the_files_rows_not_the_grids(write_csv):
     assert frame.times[spans.rest[0] - 1] == pd.Timestamp(rows["time"].iloc[299])
     assert spans == split_spans(frame, str(rows["time"].iloc[299]), 0.2)
     assert spans.rest[0] == 333                         # 300 rows, 33 holes filled among them
+    said = spans_summary(frame, spans)                  # what `ganlet train` prints
+    assert "300 rows of the file, 333 grid points" in said and "untrained" in said
+    assert "900 rows of the file" in spans_summary(frame, split_spans(frame, None, 0.2))
     assert split_spans(frame, 900, 0.2).rest == (1000, 1000)
     assert split_spans(frame, 5000, 0.2).rest == (1000, 1000)
 
