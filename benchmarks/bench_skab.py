@@ -15,7 +15,9 @@ FAR / MAR / ROC AUC pooled over every test row, per seed and their mean, and whe
 alarms and misses sit: before or after a labelled incident in an alert that reaches it (the
 alert and the label disagree on the incident's edges), apart from any label, at an incident's
 onset, in an incident no alert reaches, or after its alert closed; and per file, the bundle's
-FAR and MAR and its share of every wrong row (do the errors spread, or sit in a few files?).
+FAR and MAR and its share of every wrong row (do the errors spread, or sit in a few files?);
+and the central 90 % of the mean of seeds' F1 / FAR / MAR over other draws of as many files
+(a bootstrap over files: how much a figure on these 16 files says about other files).
 --train-rows below 400
 trains on fewer rows and counts the same rows after 400: how much the figures lean on the
 training length (the held-out files' spans differ). The SKAB folder is test data beside the
@@ -84,6 +86,7 @@ def main() -> None:
         mean = {key: float(np.mean([r[key] for r in rows])) for key in ("f1", "far", "mar", "auc")}
         print(f"{'mean':>4}  {name:28s}  {mean['f1']:6.3f}  {mean['far']:6.3f}  "
               f"{mean['mar']:6.3f}  {mean['auc']:6.3f}")
+    print_intervals(table)
     print("mean of seeds, where the wrong rows sit (evaluate.error_sites): false alarms as "
           "shares of the normal rows (sum = FAR), misses of the labelled rows (sum = MAR)")
     keys = list(next(iter(table.values()))[0]["sites"])
@@ -100,6 +103,19 @@ def main() -> None:
         mean = {key: float(np.mean([r["p99"][key] for r in rows])) for key in ("f1", "far", "mar")}
         print(f"{'p99':>4}  {name:28s}  {mean['f1']:6.3f}  {mean['far']:6.3f}  "
               f"{mean['mar']:6.3f}")
+
+
+def print_intervals(table: dict) -> None:
+    """The mean of seeds' F1 / FAR / MAR with the central 90 % of what other draws of as many
+    files give (skab_protocol.file_interval): how far a figure on these files says anything
+    about files of the same kind, such as the held-out ones."""
+    print("mean of seeds, 90 % interval over files (percentile bootstrap, the files resampled "
+          "as the unit, 4,000 draws)")
+    print(f"{'':4}  {'method':28s}  {'F1':>13}  {'FAR':>13}  {'MAR':>13}")
+    for name, rows in table.items():
+        spans = skab_protocol.file_interval([r["files"] for r in rows])
+        print(f"{'90 %':>4}  {name:28s}  " + "  ".join(
+            f"{spans[k][0]:.3f}..{spans[k][1]:.3f}" for k in ("f1", "far", "mar")))
 
 
 def print_files(table: dict) -> None:

@@ -171,6 +171,31 @@ def per_file(labels: np.ndarray, alert: np.ndarray) -> dict:
             "missed": int((~alert & labels).sum()), "labelled": int(labels.sum())}
 
 
+COUNTS = ("false", "normal", "missed", "labelled")
+
+
+def file_interval(runs: list, level: float = 0.90, resamples: int = 4000,
+                  seed: int = 0) -> dict:
+    """How far the pooled figures move when other files of the same kind are drawn: a
+    percentile bootstrap over files (Efron and Tibshirani, An Introduction to the Bootstrap,
+    1993, ch. 13). runs: per seed, {file: per_file counts}; each resample draws as many files
+    as there are, with replacement, the same draw for every seed, and pools their rows per
+    seed; the figure is the mean over seeds, as the targets read. Returns {"f1" | "far" |
+    "mar": (low, high)}, the central `level` of the resampled figures. The files are the unit:
+    rows within a file are not independent, and the held-out sets are other files."""
+    names = list(runs[0])
+    counts = np.array([[[run[n][k] for k in COUNTS] for n in names] for run in runs], float)
+    draws = np.random.default_rng(seed).integers(0, len(names), (resamples, len(names)))
+    false, normal, missed, labelled = np.moveaxis(counts[:, draws].sum(axis=2), -1, 0)
+    hits = labelled - missed
+    with np.errstate(invalid="ignore", divide="ignore"):
+        figures = {"f1": np.nan_to_num(2 * hits / (2 * hits + false + missed)),
+                   "far": np.nan_to_num(false / normal), "mar": np.nan_to_num(missed / labelled)}
+    tails = (100 * (1 - level) / 2, 100 * (1 + level) / 2)
+    return {k: tuple(float(q) for q in np.percentile(v.mean(axis=0), tails))
+            for k, v in figures.items()}
+
+
 def check_train_rows(train_rows: int) -> None:
     """The protocol's test rows are those after TRAIN_ROWS: fewer training rows may be asked
     for, never more."""

@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+import scipy.stats
 import skab_protocol
 import torch
 import typer
@@ -18,7 +19,7 @@ from typer.testing import CliRunner
 from ganlet.compile.cli_reports import register
 from ganlet.compile.data import load_frame, split_spans
 from ganlet.compile.distil import DistilConfig
-from ganlet.compile.evaluate import BASELINES, evaluate, rolling_z
+from ganlet.compile.evaluate import BASELINES, evaluate, point_metrics, rolling_z
 from ganlet.compile.model import TeacherConfig
 from ganlet.compile.pipeline import CompileOptions, compile_model
 from ganlet.compile.train import save_model, train
@@ -234,3 +235,60 @@ def test_skab_meets_the_published_best(skab):
     # <= 0.10, and a teacher ROC AUC >= 0.85 over the same rows
     assert skab[BUNDLE]["f1"] >= 0.80 and skab[BUNDLE]["far"] <= 0.10, skab
     assert skab["teacher"]["auc"] >= 0.85, skab
+
+
+# ---------------------------------------------------------------------------------------------
+# how far the pooled figures move over other files (bench_skab.py prints it)
+
+
+def _files(n: int, seed: int) -> list:
+    """n invented files of labels and alerts, each of its own length, fault share and skill."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        rows = int(rng.integers(300, 800))
+        labels = np.zeros(rows, bool)
+        labels[rows // 2:rows // 2 + int(rng.integers(50, rows // 2))] = True
+        hit, false = rng.uniform(0.3, 0.95), rng.uniform(0.0, 0.3)
+        out.append((labels, np.where(labels, rng.random(rows) < hit, rng.random(rows) < false)))
+    return out
+
+
+def test_file_interval_matches_scipy_percentile_bootstrap_over_files():
+    files = _files(12, 0)
+    counts = {str(i): skab_protocol.per_file(y, a) for i, (y, a) in enumerate(files)}
+    ours = skab_protocol.file_interval([counts], level=0.90, resamples=20000)
+
+    def pooled_f1(idx):  # the pooled F1 of drawn files, by point_metrics (checked on sklearn)
+        idx = np.asarray(idx, int)
+        return point_metrics(np.concatenate([files[i][0] for i in idx]),
+                             np.concatenate([files[i][1] for i in idx]))["f1"]
+
+    # reference: scipy.stats.bootstrap, percentile method, the files resampled as the unit
+    ref = scipy.stats.bootstrap((np.arange(len(files)),), pooled_f1, vectorized=False,
+                                method="percentile", confidence_level=0.90,
+                                n_resamples=20000, rng=np.random.default_rng(1))
+    low, high = ref.confidence_interval
+    width = high - low
+    assert width > 0.02  # files that differ: the pooled F1 moves with the draw
+    assert ours["f1"][0] == pytest.approx(low, abs=0.05 * width)
+    assert ours["f1"][1] == pytest.approx(high, abs=0.05 * width)
+    whole = point_metrics(np.concatenate([y for y, _ in files]),
+                          np.concatenate([a for _, a in files]))
+    for key in ("f1", "far", "mar"):
+        assert ours[key][0] < whole[key] < ours[key][1]
+
+
+def test_file_interval_of_identical_files_is_their_pooled_figure_and_seeds_are_averaged():
+    labels, alert = _files(1, 3)[0]
+    one = skab_protocol.per_file(labels, alert)
+    exact = point_metrics(labels, alert)  # any draw of identical files pools to the same rates
+    same = skab_protocol.file_interval([{str(i): one for i in range(6)}])
+    for key in ("f1", "far", "mar"):
+        assert same[key] == pytest.approx((exact[key], exact[key]))
+    # two seeds: the figure is the mean over seeds of each draw's pooled figure
+    other = skab_protocol.per_file(labels, ~alert)
+    both = skab_protocol.file_interval([{str(i): one for i in range(6)},
+                                        {str(i): other for i in range(6)}])
+    mean_far = (exact["far"] + point_metrics(labels, ~alert)["far"]) / 2
+    assert both["far"] == pytest.approx((mean_far, mean_far))
