@@ -71,6 +71,7 @@ _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
 # gateway refuses such a cell with a hint when its --decimal is "."; the workstation's intake
 # names such columns with decimal_comma (compile/data.py refuse_decimal_commas).
 DECIMAL_COMMA = re.compile(r"[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+")
+DECIMAL_HINT = " (a decimal comma? pass --decimal ,)"
 
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
@@ -152,7 +153,7 @@ class Dialect:
         try:
             v = float(text)
         except ValueError:
-            hint = " (a decimal comma? pass --decimal ,)" if decimal_comma(cell) else ""
+            hint = DECIMAL_HINT if decimal_comma(cell) else ""
             raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}") from None
         if not math.isfinite(v):
             raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
@@ -162,6 +163,26 @@ class Dialect:
 def parse_time(cell: str, dialect: Optional[Dialect] = None) -> float:
     """One time cell -> epoch seconds, or RowError("bad_time")."""
     return (dialect or _UTC).time(cell.strip())
+
+
+def channel_values(cells: List[Tuple[str, str]], dialect: Optional[Dialect] = None
+                   ) -> Tuple[List[float], int]:
+    """(channel name, cell) pairs of one row -> (values, how many cells held text), by the
+    rule Header.parse states; the MQTT source reads a sample's values by it too."""
+    values, text = [], []  # type: List[float], List[RowError]
+    for name, cell in cells:
+        try:
+            values.append((dialect or _UTC).number(name, cell))
+        except RowError as exc:
+            if exc.kind != "non_numeric" or decimal_comma(cell):
+                raise
+            values.append(math.nan)
+            text.append(exc)
+    if all(math.isnan(v) for v in values):
+        if text:
+            raise text[0]
+        raise RowError("missing_value", "every channel cell is blank")
+    return values, len(text)
 
 
 def header_sep(text: str, time_column: str, dialect: Dialect,
@@ -227,20 +248,10 @@ class Header:
         if len(cells) != self.n_cells:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")
         t = self.dialect.time(cells[self.time_index], after)
-        values, text = [], []  # type: List[float], List[RowError]
-        for name, i in zip(self.channels, self.channel_index):
-            try:
-                values.append(self.dialect.number(name, cells[i]))
-            except RowError as exc:
-                if exc.kind != "non_numeric" or decimal_comma(cells[i]):
-                    raise
-                values.append(math.nan)
-                text.append(exc)
-        if all(math.isnan(v) for v in values):
-            if text:
-                raise text[0]
-            raise RowError("missing_value", "every channel cell is blank")
-        return t, values, len(text)
+        values, n_text = channel_values(
+            [(name, cells[i]) for name, i in zip(self.channels, self.channel_index)],
+            self.dialect)
+        return t, values, n_text
 
 
 def _check_columns(cells: List[str], time_column: str, channels: Sequence[str]) -> None:

@@ -45,7 +45,7 @@ import threading
 import time
 from typing import Callable, Dict, List, Optional
 
-from .intake import RowError, parse_time
+from .intake import DECIMAL_HINT, RowError, channel_values, parse_time
 from .sources import Record, Stop
 
 DEFAULT_PREFIX = "ganlet"
@@ -236,15 +236,23 @@ class Topics:
 
 
 # ---------------------------------------------------------------------- sample messages
-def _number(name: str, value) -> float:
+def _cell(name: str, value) -> str:
+    """A sample's value as the text of a CSV cell: null is blank, a string is its text (bridges
+    that publish every reading as text: "41.2", or a quality flag "Bad"), a number its exact
+    repr; then the row is read by the CSV rule (intake.channel_values)."""
     if value is None:
-        return math.nan  # a blank reading (blanks.py)
+        return ""
+    if isinstance(value, str):
+        return value.strip()
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise RowError("non_numeric", f"channel {name!r}: {str(value)[:40]!r}")
-    v = float(value)
-    if not math.isfinite(v):
-        raise RowError("non_finite", f"channel {name!r}: {value!r}")
-    return v
+    try:
+        number = float(value)  # JSON integers have no bound: 1e400 written out overflows
+    except OverflowError:
+        number = math.inf
+    if not math.isfinite(number):
+        raise RowError("non_finite", f"channel {name!r}: {str(value)[:40]!r}")
+    return repr(number)
 
 
 def _time_of(item: dict) -> float:
@@ -268,14 +276,13 @@ def sample_record(item, channels: List[str], lineno: int) -> Record:
     if not isinstance(values, dict):
         return Record(lineno, time=t, error=RowError(
             "bad_message", "a sample needs a 'values' object {channel: number}"))
-    try:
-        row = [_number(name, values.get(name)) for name in channels]
-    except RowError as exc:
-        return Record(lineno, time=t, error=exc)
-    if all(math.isnan(v) for v in row):  # null or absent: a blank reading (blanks.py)
-        return Record(lineno, time=t, error=RowError(
-            "missing_value", f"no channel of {channels[:5]} has a number"))
-    return Record(lineno, time=t, values=row)
+    try:  # null or absent: a blank reading (blanks.py)
+        row, n_text = channel_values([(name, _cell(name, values.get(name)))
+                                      for name in channels])
+    except RowError as exc:  # without the CSV hint: MQTT input takes no --decimal
+        return Record(lineno, time=t, error=RowError(exc.kind,
+                                                     exc.detail.replace(DECIMAL_HINT, "")))
+    return Record(lineno, time=t, values=row, text_cells=n_text)
 
 
 def message_records(payload: bytes, channels: List[str], first_lineno: int) -> List[Record]:

@@ -32,6 +32,7 @@ from stream_helpers import scores_rows
 
 from ganlet.runtime.intake import format_time
 from ganlet.runtime.mqtt import MqttConfigError, message_records, read_config
+from ganlet.runtime.sources import CsvSource
 
 paho_client = pytest.importorskip(
     "paho.mqtt.client", reason="paho-mqtt is not installed (the dev extra brings it: "
@@ -278,7 +279,7 @@ def test_sample_messages_parse_and_reject_by_kind():
                                                      "extra": "ignored"}},
         {"time": 1709251201, "values": {"flow": 1, "pressure": 2, "vibration": None}},
         {"time": "yesterday", "values": {"flow": 1, "pressure": 2, "vibration": 3}},
-        {"time": 1709251203, "values": {"flow": "1", "pressure": 2, "vibration": 3}},
+        {"time": 1709251203, "values": {"flow": [1], "pressure": 2, "vibration": 3}},
         {"time": 1709251204, "values": {"flow": None}},
         {"time": 1709251205, "values": [1, 2, 3]},
         "flow=1",
@@ -301,6 +302,37 @@ def test_sample_messages_parse_and_reject_by_kind():
     assert nan[0].error.kind == "non_finite"
     assert message_records(b"{not json", NAMES, 1)[0].error.kind == "bad_message"
     assert message_records(b"\xff\xfe", NAMES, 1)[0].error.kind == "bad_encoding"
+
+
+def test_a_reading_sent_as_text_is_read_as_the_same_cell_of_a_csv_feed(tmp_path):
+    # Bridges that publish every reading as a JSON string ("41.2"): each value is read as the
+    # same text in a CSV feed is, by the CSV source itself (blank, number or refused alike).
+    cells = ["41.2", " -3e-2 ", "", "NaN", "n/a", "7"]
+    texts = ["12,5", "inf", "one"]
+    msgs = [{"time": 1709251200 + k, "values": {"flow": c, "pressure": 1, "vibration": 2}}
+            for k, c in enumerate(cells + texts)]
+    recs = message_records(json.dumps(msgs).encode(), NAMES, 1)
+    feed = tmp_path / "feed.csv"
+    feed.write_text("time;flow;pressure;vibration\n" + "".join(
+        f"{m['time']};{m['values']['flow'].strip()};1;2\n" for m in msgs))
+    with open(feed, "rb") as fh:
+        rows = [r for r in CsvSource(fh, "time", NAMES) if r.header is None]
+    assert len(rows) == len(recs) == len(msgs)
+    for rec, row in zip(recs, rows):
+        assert (rec.error and rec.error.kind) == (row.error and row.error.kind), (rec, row)
+        if rec.error is None:
+            assert np.array_equal(rec.values, row.values, equal_nan=True), (rec, row)
+    assert recs[0].values == [41.2, 1.0, 2.0] and math.isnan(recs[2].values[0])
+    # a decimal comma refuses the sample, as the row; a flag beside numbers is a blank reading
+    assert [r.error and r.error.kind for r in recs[-3:]] == ["non_numeric", "non_finite", None]
+    assert recs[-1].text_cells == 1 and math.isnan(recs[-1].values[0])
+    assert "--decimal" not in recs[-3].error.detail  # MQTT input takes no --decimal
+    every = message_records(b'{"time": 1, "values": {"flow": "Bad", "pressure": "Comm Fail"}}',
+                            NAMES, 1)[0]
+    assert every.error.kind == "non_numeric"  # no channel reads a number: refused, as the row
+    # a JSON integer too large for a float (Python's json reads it whole): refused, not raised
+    huge = message_records(b'{"time": 1, "values": {"flow": 1' + b"0" * 400 + b"}}", NAMES, 1)
+    assert huge[0].error.kind == "non_finite"
 
 
 def test_config_file_must_be_private(tmp_path):
