@@ -89,7 +89,7 @@ def replay_on_gateway(out: Path, quick: bool, seed: int, echo: Callable[[str], N
         options = TrainOptions(train_until=info["train_end"], config=config, seed=seed)
         result = train_from_file(Path(info["data"]), out / "model", options, echo=echo)
         asked.write_text(json.dumps(asdict(config)))
-    echo("   " + result.describe())
+    echo("   " + result.describe().replace("\n", "\n   "))
 
     echo("== 3. compile for the default board")
     compiled = compile_dir(result.out, out / "bundle",

@@ -133,9 +133,33 @@ class TrainResult:
 
     def describe(self) -> str:
         h = self.model.history
-        return (f"trained on {h['train_windows']} windows of {self.model.teacher.config.window} "
-                f"in {self.seconds:.1f} s (peak RSS {h['peak_rss_mb']:.0f} MB); "
-                f"model in {self.out}")
+        return "\n".join(learned_summary(h) + [
+            f"trained on {h['train_windows']} windows of {self.model.teacher.config.window} "
+            f"in {self.seconds:.1f} s (peak RSS {h['peak_rss_mb']:.0f} MB); model in {self.out}"])
+
+
+# Below this R2 on every channel the network has learned no more than the channels' levels
+# (a tenth of a channel's variance: a judgement, not a measured optimum).
+LEARNED_R2 = 0.1
+
+
+def learned_summary(history: dict) -> list:
+    """Lines saying how much of each channel the network reconstructs on the windows it was
+    fitted on (train.fit_r2), and a note when it learned no more than the channels' levels."""
+    r2 = history.get("fit_r2")
+    if not r2:
+        return []
+    lines = ["learned   R2 of the reconstruction on the fit span: " + ", ".join(
+        f"{name} {value:.2f}" for name, value in r2.items())]
+    if max(r2.values()) < LEARNED_R2:
+        lines.append(
+            f"note: the network reconstructs no channel better than R2 {LEARNED_R2} on the "
+            f"{history['train_windows']} windows it was fitted on: it puts out about each "
+            "channel's training level, so the score measures how far each channel's newest "
+            "readings sit from that level, in units of its normal error. Steps, offsets and "
+            "spikes still score; a broken relation between channels that leaves every level "
+            "where it was does not. A longer history lets the network learn the relations.")
+    return lines
 
 
 def rate_channels(frame, spans, asked: list, echo: Echo) -> list:

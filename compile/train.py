@@ -88,6 +88,7 @@ def train(frame: Frame, spans: Spans, config: TeacherConfig,
         x_fit = x_fit[::stride]
     teacher = Teacher.build(len(frame.channels), config)
     history = fit_teacher(teacher, torch.from_numpy(x_fit), teacher.config, progress)
+    history["fit_r2"] = dict(zip(frame.channels, map(float, fit_r2(teacher, x_fit))))
     return TrainedModel(
         teacher=teacher, scaler=scaler, channels=frame.channels, units=frame.units,
         period_s=frame.period_s, time_col=frame.report.time_col, spans=spans,
@@ -208,6 +209,16 @@ def score_windows(det: Teacher, windows: np.ndarray, score: Optional[dict] = Non
     rule = ScoreRule(score or score_section())
     scores, _, res = rule.score(windows, teacher_reconstruct(det, windows))
     return scores, res
+
+
+def fit_r2(det: Teacher, windows: np.ndarray) -> np.ndarray:
+    """Per channel, the coefficient of determination of G(E(x)) on windows [N, L, C]: 1 - its
+    mean squared error / the channel's variance about its mean. 0: the network does no better
+    than putting out the channel's mean level; 1: it reconstructs the channel exactly."""
+    x = windows.reshape(-1, windows.shape[2]).astype(np.float64)
+    error = ((x - teacher_reconstruct(det, windows).reshape(x.shape)) ** 2).mean(axis=0)
+    spread = x.var(axis=0)
+    return np.where(spread > 0, 1 - error / np.where(spread > 0, spread, 1), np.nan)
 
 
 class TeacherScorer:

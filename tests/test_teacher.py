@@ -8,12 +8,13 @@ import pandas as pd
 import pytest
 import torch
 from sklearn.ensemble import IsolationForest
-from sklearn.metrics import roc_auc_score
+from sklearn.metrics import r2_score, roc_auc_score
 from synthetic import correlated_series, inject
 
 from ganlet.compile.data import IntakeOptions, choose_window, grid_index, load_frame, split_spans
 from ganlet.compile.model import TeacherConfig
-from ganlet.compile.train import scores_on, train
+from ganlet.compile.pipeline import LEARNED_R2, learned_summary
+from ganlet.compile.train import fit_r2, scores_on, teacher_reconstruct, train
 
 pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
@@ -124,3 +125,38 @@ def test_small_history_trains_and_scores_every_full_window(write_csv):
     assert np.isnan(scores[:window - 1]).all()
     assert np.isfinite(scores[window - 1:]).all() and np.isfinite(res[window - 1:]).all()
     assert (scores[window - 1:] > 0).all()
+
+
+def test_fit_r2_is_sklearns_r2_per_channel_and_recorded_in_the_history(write_csv):
+    frame = _frame(write_csv, correlated_series(500))
+    model = train(frame, split_spans(frame, None, 0.2), TINY)
+    windows = model.windows_of(model.spans.fit)
+    ours = fit_r2(model.teacher, windows)
+    flat = windows.reshape(-1, windows.shape[2])
+    recon = teacher_reconstruct(model.teacher, windows).reshape(flat.shape)
+    # reference: sklearn.metrics.r2_score, one figure per channel
+    assert ours == pytest.approx(r2_score(flat.astype(float), recon.astype(float),
+                                          multioutput="raw_values"), abs=1e-9)
+    assert list(model.history["fit_r2"]) == frame.channels  # on the windows it trained on
+    assert np.isfinite(list(model.history["fit_r2"].values())).all()
+
+
+@pytest.mark.slow
+def test_on_skabs_400_row_files_the_network_learns_only_the_levels_and_train_says_so(skab_dir):
+    # Measured (docs/detection.md, stop 34): with the default recipe, SKAB valve1's 400-row
+    # training spans (about 300 windows) leave a network that puts out each channel's level:
+    # its error equals the channel's variance. A longer history of the same rig (the
+    # anomaly-free file, first 1,000 rows) learns the slow channels.
+    def learned(path, rows):
+        frame = load_frame(path, IntakeOptions())
+        spans = split_spans(frame, rows, 0.2)
+        return train(frame, spans, TeacherConfig()).history
+
+    short = learned(skab_dir / "valve1" / "5.csv", 400)
+    assert max(short["fit_r2"].values()) < LEARNED_R2, short["fit_r2"]
+    assert any(line.startswith("note: the network reconstructs no channel")
+               for line in learned_summary(short))
+    longer = learned(skab_dir / "anomaly-free" / "anomaly-free.csv", 1000)
+    assert longer["fit_r2"]["Thermocouple"] > 0.5, longer["fit_r2"]
+    lines = learned_summary(longer)
+    assert len(lines) == 1 and lines[0].startswith("learned   R2 of the reconstruction")
