@@ -259,8 +259,11 @@ def _time_of(item: dict) -> float:
     t = item.get("time")
     if isinstance(t, str):
         return parse_time(t.strip())
-    if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
-        return float(t)
+    if isinstance(t, (int, float)) and not isinstance(t, bool):
+        try:  # the CSV epoch cell's rule: 1900..9999, a hint for milliseconds
+            return parse_time(repr(float(t)))
+        except OverflowError:  # a JSON integer beyond a float
+            raise RowError("bad_time", f"'time' {str(t)[:40]!r} lies outside 1900..9999") from None
     raise RowError("bad_time", f"'time' {str(t)[:40]!r} is neither ISO 8601 nor epoch seconds")
 
 
@@ -296,6 +299,8 @@ def message_records(payload: bytes, channels: List[str], first_lineno: int) -> L
         return [Record(first_lineno, error=RowError("bad_encoding", "message is not UTF-8"))]
     except ValueError as exc:
         return [Record(first_lineno, error=RowError("bad_message", f"not JSON ({exc})"))]
+    except RecursionError:  # arrays or objects nested thousands deep: raised, not a ValueError
+        return [Record(first_lineno, error=RowError("bad_message", "JSON nested too deep"))]
     items = doc if isinstance(doc, list) else [doc]
     return [sample_record(item, channels, first_lineno + k) for k, item in enumerate(items)]
 

@@ -400,7 +400,16 @@ def test_feed_in_alerts_out_match_the_csv_run(setup, broker, tmp_path, capsys):
     sent = feeder.send(values[:300], 0)
     feeder.send_raw("{not json")  # rejected: counted and reported, the stream goes on
     feeder.send_raw(json.dumps({"time": format_time(fx.T0 + 300), "values": {"flow": None}}))
-    sent += 2 + feeder.send(values[300:], 300, batch=10)  # arrays of 10 samples too
+    # Hostile messages, each rejected while the stream goes on. Before, the first two raised
+    # out of the MQTT source (Python's json module raises RecursionError on deep nesting; a
+    # JSON integer beyond a float raised OverflowError) and stopped the gateway (this test
+    # timed out at f62d990); the third was taken as a sample dated 1e300 s after the epoch,
+    # where a CSV feed refuses any time outside 1900..9999.
+    feeder.send_raw("[" * 20000 + "]" * 20000)
+    huge = "1" + "0" * 400  # a JSON integer no float holds
+    feeder.send_raw(f'{{"time": "{format_time(fx.T0 + 300)}", "values": {{"flow": {huge}}}}}')
+    feeder.send_raw(json.dumps({"time": 1e300, "values": {"flow": 1.0}}))
+    sent += 5 + feeder.send(values[300:], 300, batch=10)  # arrays of 10 samples too
     wait_until(lambda: processed_all(hmi, N_ROWS), what="every sample to be scored")
     elapsed = time.monotonic() - t0
     proc.send_signal(signal.SIGTERM)
@@ -413,7 +422,7 @@ def test_feed_in_alerts_out_match_the_csv_run(setup, broker, tmp_path, capsys):
     assert {q for _, q, _ in hmi.of("alerts")} == {1}
     errors = hmi.payloads("input_errors")
     totals = errors[-1]["totals"]
-    assert totals == {"bad_message": 1, "missing_value": 1}
+    assert totals == {"bad_message": 2, "missing_value": 1, "non_finite": 1, "bad_time": 1}
     status = hmi.payloads("status")
     assert status[0]["state"] == "online" and status[0]["bundle_id"] == setup["alerts"][0]["bundle_id"]
     assert status[-1] == dict(status[0], state="offline", reason="signal")
