@@ -169,10 +169,11 @@ def channel_values(cells: List[Tuple[str, str]], dialect: Optional[Dialect] = No
                    ) -> Tuple[List[float], int]:
     """(channel name, cell) pairs of one row -> (values, how many cells held text), by the
     rule Header.parse states; the MQTT source reads a sample's values by it too."""
+    number = (dialect or _UTC).number
     values, text = [], []  # type: List[float], List[RowError]
     for name, cell in cells:
         try:
-            values.append((dialect or _UTC).number(name, cell))
+            values.append(number(name, cell))
         except RowError as exc:
             if exc.kind != "non_numeric" or decimal_comma(cell):
                 raise
