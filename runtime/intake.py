@@ -67,6 +67,11 @@ REJECT_KINDS = (
     "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
+# A number as pandas.read_csv reads one (ASCII digits, a point, an exponent) and its infinities:
+# Python's float() also takes "1_000", "NAN" and other scripts' digits, which training read as
+# text, so the gateway read them as numbers where training saw a blank.
+_NUMBER = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+_INFINITE = re.compile(r"[+-]?inf(?:inity)?", re.IGNORECASE)
 # A number written with a decimal comma (and maybe thousands dots): 1,5  -0,25  1.234,5. The
 # gateway refuses such a cell with a hint when its --decimal is "."; the workstation's intake
 # names such columns with decimal_comma (compile/data.py refuse_decimal_commas).
@@ -150,12 +155,13 @@ class Dialect:
         if cell in BLANK_CELLS:
             return math.nan
         text = cell.replace(",", ".") if self.decimal == "," else cell
-        try:
-            v = float(text)
-        except ValueError:
+        if _INFINITE.fullmatch(text):
+            raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
+        if not _NUMBER.fullmatch(text):
             hint = DECIMAL_HINT if decimal_comma(cell) else ""
-            raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}") from None
-        if not math.isfinite(v):
+            raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}")
+        v = float(text)
+        if not math.isfinite(v):  # beyond a float: 1e999
             raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
         return v
 

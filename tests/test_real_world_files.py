@@ -97,3 +97,38 @@ def test_offsets_changing_mid_file_are_read_as_utc(write_csv, start):
     assert (rep.period_s, rep.grid_points, rep.duplicates, rep.out_of_order) == (60.0, 240, 0, 0)
     assert rep.long_gaps == [] and rep.filled_points == 0
     np.testing.assert_allclose(frame.values, df[["flow", "power", "temp"]].to_numpy())
+
+
+def test_cells_pythons_float_reads_but_pandas_does_not_are_blank_on_both_sides(tmp_path):
+    # Python's float() reads "1_000" (PEP 515), other scripts' digits and "NAN"; pandas.read_csv
+    # reads them as text, so training takes them as blank cells. The gateway read them as
+    # numbers (1000, 123, 12) until its number rule became pandas'.
+    from ganlet.runtime.sources import CsvSource
+
+    odd = ["1_000", "\u0661\u0662\u0663", "NAN", "\uff11\uff12", "0x10", "1e"]
+    fine = ["1.", ".5", "+3", "1E+05", "-2e-3", "007"]
+    cells = odd + fine
+    for cell in cells:  # reference: pandas.read_csv, a column of this cell and one number
+        column = pd.read_csv(pd.io.common.StringIO(f"a\n{cell}\n5\n"))["a"]
+        assert pd.api.types.is_numeric_dtype(column) == (cell in fine), cell
+    times = pd.date_range("2024-01-01", periods=60, freq="1s").strftime("%Y-%m-%dT%H:%M:%SZ")
+    df = pd.DataFrame({"time": times, "a": np.arange(60) + 0.5, "b": np.arange(60) * 2.0})
+    df["a"] = df["a"].astype(object)
+    df.loc[10:10 + len(cells) - 1, "a"] = cells
+    path = tmp_path / "odd.csv"
+    df.to_csv(path, index=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        frame = load_frame(path, IntakeOptions(max_fill_periods=10))
+    assert frame.report.blank_cells["a"] == len(odd)
+    with open(path, "rb") as fh:
+        rows = [r for r in CsvSource(fh, "time", ["a", "b"]) if r.header is None]
+    read = {r.lineno - 2: r for r in rows}  # data row k is on line k + 2
+    for k, cell in enumerate(cells, start=10):
+        rec = read[k]
+        assert rec.error is None, (cell, rec.error)
+        if cell in odd:
+            assert np.isnan(rec.values[0]) and rec.text_cells == 1, cell
+        else:
+            assert rec.values[0] == pytest.approx(float(cell)), cell
+            assert rec.values[0] == pytest.approx(frame.values[k, 0]), cell
