@@ -13,8 +13,8 @@ README's demo figure is seed 7's, and a change to detection should be judged ove
 default draws were looked at while the detector was tuned, and so were 13 17 19 23 (to find the
 CUSUM's state-change rule) and 29 31 37 41 (to choose its form). --seeds 43 47 53 59 were run
 only before and after that rule, and 61 67 71 73 79 83 89 97 101 103 107 109 only once, to
-measure the detector as it stood (stop 28): judge a change on those too, and keep them held
-out: tune on the others. Once a held-out draw has been looked at to find or choose a rule,
+measure the detector as it stood (stop 28), and 113 127 131 137 139 149 151 157 once at stop
+34: judge a change on those too, and keep them held out: tune on the others. Once a held-out draw has been looked at to find or choose a rule,
 name a fresh set (docs/detection.md gives what each set showed).
 """
 
