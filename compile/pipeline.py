@@ -310,6 +310,7 @@ def compile_model(model: TrainedModel, out: Path, options: CompileOptions,
     with torch_threads(options.threads):
         plan = plan_board(model, board)
         echo(plan.describe())
+        echo_learned_note(model, echo)
         return compile_plan(model, out, plan, board, options, name, StudentStore(model_dir),
                             progress, model_dir)
 
@@ -329,9 +330,17 @@ def compile_boards(model: TrainedModel, out_root: Path, boards: list, options: C
         plans = [plan_board(model, b) for b in boards]
         for plan in plans:
             echo(plan.describe())
+        echo_learned_note(model, echo)
         store = StudentStore(model_dir)
         return [compile_plan(model, out, plan, board, options, name, store, progress, model_dir)
                 for out, plan, board in zip(outs, plans, boards)]
+
+
+def echo_learned_note(model: TrainedModel, echo: Echo) -> None:
+    """Train's note when the network learned no more than the channels' levels
+    (learned_summary), again for whoever compiles without having seen training's output."""
+    for line in learned_summary(model.history)[1:]:
+        echo(line)
 
 
 def compile_plan(model: TrainedModel, out: Path, plan: StudentPlan, board: Board,

@@ -34,9 +34,14 @@ from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.distil import DistilConfig, distil
 from ganlet.compile.model import TeacherConfig
 from ganlet.compile.pack import service_unit
-from ganlet.compile.pipeline import STUDENTS_DIR, int8_source_file, student_file
+from ganlet.compile.pipeline import (
+    STUDENTS_DIR,
+    echo_learned_note,
+    int8_source_file,
+    student_file,
+)
 from ganlet.compile.sizing import size_student
-from ganlet.compile.train import save_model, score_windows, train
+from ganlet.compile.train import load_model, save_model, score_windows, train
 from ganlet.runtime.lstm import Network
 from ganlet.runtime.manifest import SCHEMA_VERSION
 from ganlet.runtime.weights import load_weights
@@ -78,7 +83,8 @@ def bundle(teacher):
     manifest_bytes = (out / "manifest.json").read_bytes()
     bundle_id = hashlib.sha256(manifest_bytes).hexdigest()
     record = teacher["model_dir"] / STUDENTS_DIR / f"{bundle_id[:16]}.json"
-    return {"dir": out, "key_file": key_file, "stdout": result.stdout, "started": started,
+    return {"dir": out, "key_file": key_file, "stdout": result.stdout, "stderr": result.stderr,
+            "started": started,
             "manifest": json.loads(manifest_bytes), "manifest_bytes": manifest_bytes,
             "fp32": student_file(teacher["model_dir"], bundle_id),
             "report": json.loads(record.read_text())["report"]}
@@ -469,3 +475,32 @@ def test_out_that_is_not_a_bundle_is_refused_before_distillation(teacher, tmp_pa
     assert len(lines) == 1 and lines[0].startswith("error: ") and str(out) in lines[0]
     assert (out.read_text() == "not a folder" if kind == "file"
             else (out / "notes.txt").read_text() == "someone's files")
+
+
+def test_compile_repeats_trains_note_when_the_network_learned_only_levels(teacher, bundle,
+                                                                          tmp_path):
+    # whoever compiles may not have seen `ganlet train`'s output (pipeline.learned_summary)
+    model_dir = tmp_path / "model"
+    shutil.copytree(teacher["model_dir"], model_dir)
+    history_file = model_dir / "history.json"
+    history = json.loads(history_file.read_text())
+    names = list(history["fit_r2"])
+    # the fixture's `ganlet compile` said it exactly when this tiny teacher learned so little
+    learned_little = max(history["fit_r2"].values()) < 0.1
+    assert ("note: the network reconstructs no channel" in bundle["stderr"]) == learned_little
+
+    def said(r2) -> list:
+        lines = []
+        if r2 is None:
+            history.pop("fit_r2", None)  # a model trained before fit_r2 was recorded
+        else:
+            history["fit_r2"] = dict(zip(names, r2))
+        history_file.write_text(json.dumps(history))
+        echo_learned_note(load_model(model_dir), lines.append)
+        return lines
+
+    level_only = said([0.02] * len(names))
+    assert len(level_only) == 1 and level_only[0].startswith(
+        "note: the network reconstructs no channel better than R2 0.1")
+    assert said([0.02] * (len(names) - 1) + [0.5]) == []
+    assert said(None) == []
