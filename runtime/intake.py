@@ -42,7 +42,7 @@ import math
 import re
 from typing import List, Optional, Sequence, Tuple
 
-from .times import DATE_ORDERS, TimeError, zone_from_name, zone_name
+from .times import DATE_ORDERS, NUMBER, TimeError, zone_from_name, zone_name
 from .times import format_time as format_time  # re-exported: events format times through here
 from .times import parse_time as parse_time_cell
 
@@ -67,10 +67,9 @@ REJECT_KINDS = (
     "time_jump",  # jumped ahead and the rows after it did not confirm the jump (clock.py)
 )
 _EPOCH_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]*")
-# A number as pandas.read_csv reads one (ASCII digits, a point, an exponent) and its infinities:
-# Python's float() also takes "1_000", "NAN" and other scripts' digits, which training read as
-# text, so the gateway read them as numbers where training saw a blank.
-_NUMBER = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+# A channel cell is a number as pandas.read_csv reads one (times.NUMBER) or one of its
+# infinities: Python's float() also takes "1_000", "NAN" and other scripts' digits, which
+# training read as text, so the gateway read them as numbers where training saw a blank.
 _INFINITE = re.compile(r"[+-]?inf(?:inity)?", re.IGNORECASE)
 # A number written with a decimal comma (and maybe thousands dots): 1,5  -0,25  1.234,5. The
 # gateway refuses such a cell with a hint when its --decimal is "."; the workstation's intake
@@ -157,7 +156,7 @@ class Dialect:
         text = cell.replace(",", ".") if self.decimal == "," else cell
         if _INFINITE.fullmatch(text):
             raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
-        if not _NUMBER.fullmatch(text):
+        if not NUMBER.fullmatch(text):
             hint = DECIMAL_HINT if decimal_comma(cell) else ""
             raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}")
         v = float(text)

@@ -29,7 +29,9 @@ MAX_TIME = 253402300800.0  # 10000-01-01T00:00:00Z, excluded
 DATE_ORDERS = ("dayfirst", "monthfirst")
 MAX_CELL = 64  # longer time cells are refused before any regex sees them
 
-_EPOCH = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+# A decimal number in ASCII digits, as pandas.read_csv reads one: an epoch-seconds time cell,
+# and a channel cell (intake.py)
+NUMBER = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
 _DATES = (  # (form, pattern); groups per form are read in _date_fields
     ("calendar", re.compile(r"([0-9]{4})-([0-9]{2})-([0-9]{2})")),
     ("week", re.compile(r"([0-9]{4})-W([0-9]{2})-([0-9])")),
@@ -166,7 +168,7 @@ def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str]
         raise TimeError("empty time cell")
     if len(text) > MAX_CELL:
         raise TimeError(f"time cell of {len(text)} characters")
-    if _EPOCH.fullmatch(text):
+    if NUMBER.fullmatch(text):
         return _checked(float(text), text, epoch=True)
     common = _COMMON.fullmatch(text)
     if common:
