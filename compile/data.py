@@ -670,11 +670,11 @@ def spans_summary(frame: Frame, spans: Spans) -> str:
 
 
 def file_rows(frame: Frame, end: int) -> int:
-    """How many of the file's rows fall on the grid points before `end`."""
+    """How many of the file's rows fall on the grid points before `end` (grid_index's
+    rounding, as rows_end)."""
     if frame.row_times is None or end <= 0:
         return end
-    half = np.timedelta64(int(round(frame.period_s * 5e8)), "ns")   # half a period
-    return int(np.searchsorted(frame.row_times, frame.times.values[end - 1] + half, side="left"))
+    return int((grid_index(frame, frame.row_times) < end).sum())
 
 
 def rows_end(frame: Frame, rows: int) -> int:

@@ -104,16 +104,23 @@ def point_metrics(y_true, y_pred) -> dict:
     An empty denominator gives 0 (no positives predicted: precision 0, as sklearn's
     zero_division=0)."""
     y, p = np.asarray(y_true, bool), np.asarray(y_pred, bool)
-    tp = int((y & p).sum())
-    fp = int((~y & p).sum())
-    fn = int((y & ~p).sum())
-    tn = int((~y & ~p).sum())
-    precision = tp / (tp + fp) if tp + fp else 0.0
-    recall = tp / (tp + fn) if tp + fn else 0.0
-    f1 = 2 * precision * recall / (precision + recall) if precision + recall else 0.0
-    return {"precision": precision, "recall": recall, "f1": f1,
-            "far": fp / (fp + tn) if fp + tn else 0.0, "mar": fn / (fn + tp) if fn + tp else 0.0,
-            "tp": tp, "fp": fp, "fn": fn, "tn": tn}
+    counts = {"tp": int((y & p).sum()), "fp": int((~y & p).sum()),
+              "fn": int((y & ~p).sum()), "tn": int((~y & ~p).sum())}
+    return {**{k: float(v) for k, v in rates(**counts).items()}, **counts}
+
+
+def rates(tp, fp, fn, tn) -> dict:
+    """point_metrics' rates of confusion counts, scalars or arrays alike (an empty denominator
+    gives 0)."""
+    tp, fp, fn, tn = (np.asarray(v, np.float64) for v in (tp, fp, fn, tn))
+
+    def ratio(a, b):
+        return np.where(b > 0, a / np.where(b > 0, b, 1.0), 0.0)
+
+    precision, recall = ratio(tp, tp + fp), ratio(tp, tp + fn)
+    return {"precision": precision, "recall": recall,
+            "f1": ratio(2 * precision * recall, precision + recall),
+            "far": ratio(fp, fp + tn), "mar": ratio(fn, fn + tp)}
 
 
 def error_sites(y_true, y_pred) -> dict:

@@ -149,17 +149,21 @@ def learned_summary(history: dict) -> list:
     r2 = history.get("fit_r2")
     if not r2:
         return []
-    lines = ["learned   R2 of the reconstruction on the fit span: " + ", ".join(
-        f"{name} {value:.2f}" for name, value in r2.items())]
-    if max(r2.values()) < LEARNED_R2:
-        lines.append(
-            f"note: the network reconstructs no channel better than R2 {LEARNED_R2} on the "
+    return ["learned   R2 of the reconstruction on the fit span: " + ", ".join(
+        f"{name} {value:.2f}" for name, value in r2.items())] + learned_note(history)
+
+
+def learned_note(history: dict) -> list:
+    """The note of learned_summary, when no channel reaches LEARNED_R2 (else none)."""
+    r2 = history.get("fit_r2")
+    if not r2 or max(r2.values()) >= LEARNED_R2:
+        return []
+    return [f"note: the network reconstructs no channel better than R2 {LEARNED_R2} on the "
             f"{history['train_windows']} windows it was fitted on: it puts out about each "
             "channel's training level, so the score measures how far each channel's newest "
             "readings sit from that level, in units of its normal error. Steps, offsets and "
             "spikes still score; a broken relation between channels that leaves every level "
-            "where it was does not. A longer history lets the network learn the relations.")
-    return lines
+            "where it was does not. A longer history lets the network learn the relations."]
 
 
 def rate_channels(frame, spans, asked: list, echo: Echo) -> list:
@@ -339,7 +343,7 @@ def compile_boards(model: TrainedModel, out_root: Path, boards: list, options: C
 def echo_learned_note(model: TrainedModel, echo: Echo) -> None:
     """Train's note when the network learned no more than the channels' levels
     (learned_summary), again for whoever compiles without having seen training's output."""
-    for line in learned_summary(model.history)[1:]:
+    for line in learned_note(model.history):
         echo(line)
 
 

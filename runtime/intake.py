@@ -40,7 +40,7 @@ A rejected row raises RowError whose `kind` is one of REJECT_KINDS; the service 
 import csv
 import math
 import re
-from typing import List, Optional, Sequence, Tuple
+from typing import Iterable, List, Optional, Sequence, Tuple, Union
 
 from .times import DATE_ORDERS, NUMBER, TimeError, zone_from_name, zone_name
 from .times import format_time as format_time  # re-exported: events format times through here
@@ -154,15 +154,14 @@ class Dialect:
         if cell in BLANK_CELLS:
             return math.nan
         text = cell.replace(",", ".") if self.decimal == "," else cell
-        if _INFINITE.fullmatch(text):
-            raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
-        if not NUMBER.fullmatch(text):
+        if NUMBER.fullmatch(text):
+            v = float(text)
+            if math.isfinite(v):
+                return v
+        elif not _INFINITE.fullmatch(text):
             hint = DECIMAL_HINT if decimal_comma(cell) else ""
             raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}")
-        v = float(text)
-        if not math.isfinite(v):  # beyond a float: 1e999
-            raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")
-        return v
+        raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")  # inf, or 1e999
 
 
 def parse_time(cell: str, dialect: Optional[Dialect] = None) -> float:
@@ -170,13 +169,17 @@ def parse_time(cell: str, dialect: Optional[Dialect] = None) -> float:
     return (dialect or _UTC).time(cell.strip())
 
 
-def channel_values(cells: List[Tuple[str, str]], dialect: Optional[Dialect] = None
-                   ) -> Tuple[List[float], int]:
+def channel_values(cells: Iterable[Tuple[str, Union[str, float]]],
+                   dialect: Optional[Dialect] = None) -> Tuple[List[float], int]:
     """(channel name, cell) pairs of one row -> (values, how many cells held text), by the
-    rule Header.parse states; the MQTT source reads a sample's values by it too."""
+    rule Header.parse states; the MQTT source reads a sample's values by it too, its JSON
+    numbers passed as floats already checked finite."""
     number = (dialect or _UTC).number
     values, text = [], []  # type: List[float], List[RowError]
     for name, cell in cells:
+        if isinstance(cell, float):
+            values.append(cell)
+            continue
         try:
             values.append(number(name, cell))
         except RowError as exc:
@@ -255,8 +258,7 @@ class Header:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")
         t = self.dialect.time(cells[self.time_index], after)
         values, n_text = channel_values(
-            [(name, cells[i]) for name, i in zip(self.channels, self.channel_index)],
-            self.dialect)
+            zip(self.channels, (cells[i] for i in self.channel_index)), self.dialect)
         return t, values, n_text
 
 

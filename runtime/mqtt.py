@@ -43,10 +43,11 @@ import socket
 import ssl
 import threading
 import time
-from typing import Callable, Dict, List, Optional
+from typing import Callable, Dict, List, Optional, Union
 
 from .intake import DECIMAL_HINT, RowError, channel_values, parse_time
 from .sources import Record, Stop
+from .times import TimeError, checked_time
 
 DEFAULT_PREFIX = "ganlet"
 PLAIN_PORT, TLS_PORT = 1883, 8883  # IANA's ports for MQTT and MQTT over TLS (from memory)
@@ -236,10 +237,10 @@ class Topics:
 
 
 # ---------------------------------------------------------------------- sample messages
-def _cell(name: str, value) -> str:
-    """A sample's value as the text of a CSV cell: null is blank, a string is its text (bridges
-    that publish every reading as text: "41.2", or a quality flag "Bad"), a number its exact
-    repr; then the row is read by the CSV rule (intake.channel_values)."""
+def _cell(name: str, value) -> Union[str, float]:
+    """A sample's value as a CSV cell: null is blank, a string is its text (bridges that publish
+    every reading as text: "41.2", or a quality flag "Bad"), a number its finite float; then
+    the row is read by the CSV rule (intake.channel_values)."""
     if value is None:
         return ""
     if isinstance(value, str):
@@ -252,7 +253,7 @@ def _cell(name: str, value) -> str:
         number = math.inf
     if not math.isfinite(number):
         raise RowError("non_finite", f"channel {name!r}: {str(value)[:40]!r}")
-    return repr(number)
+    return number
 
 
 def _time_of(item: dict) -> float:
@@ -260,10 +261,14 @@ def _time_of(item: dict) -> float:
     if isinstance(t, str):
         return parse_time(t.strip())
     if isinstance(t, (int, float)) and not isinstance(t, bool):
-        try:  # the CSV epoch cell's rule: 1900..9999, a hint for milliseconds
-            return parse_time(repr(float(t)))
+        try:
+            number = float(t)
         except OverflowError:  # a JSON integer beyond a float
-            raise RowError("bad_time", f"'time' {str(t)[:40]!r} lies outside 1900..9999") from None
+            number = math.inf
+        try:  # the CSV epoch cell's rule: 1900..9999, a hint for milliseconds
+            return checked_time(number, str(t), epoch=True)
+        except TimeError as exc:
+            raise RowError("bad_time", str(exc)) from None
     raise RowError("bad_time", f"'time' {str(t)[:40]!r} is neither ISO 8601 nor epoch seconds")
 
 

@@ -169,7 +169,7 @@ def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str]
     if len(text) > MAX_CELL:
         raise TimeError(f"time cell of {len(text)} characters")
     if NUMBER.fullmatch(text):
-        return _checked(float(text), text, epoch=True)
+        return checked_time(float(text), text, epoch=True)
     common = _COMMON.fullmatch(text)
     if common:
         y, mo, d, h, mi, s = map(int, common.groups()[:6])
@@ -186,10 +186,12 @@ def parse_time(cell: str, zone: tzinfo = timezone.utc, date_order: Optional[str]
             later = _local_offset(zone, y, mo, d, h, mi, s, fold=1)
             if wall - later + frac > after:
                 offset = later
-    return _checked(wall - offset + frac, text)
+    return checked_time(wall - offset + frac, text)
 
 
-def _checked(t: float, text: str, epoch: bool = False) -> float:
+def checked_time(t: float, text: str, epoch: bool = False) -> float:
+    """Epoch seconds t if it lies in 1900..9999, else TimeError quoting `text` (with a hint
+    for milliseconds when `epoch`)."""
     if not math.isfinite(t) or not MIN_TIME <= t < MAX_TIME:
         hint = " (epoch milliseconds? give seconds)" if epoch and 1e11 < abs(t) < 1e14 else ""
         raise TimeError(f"time {text[:40]!r} lies outside 1900..9999{hint}")

@@ -183,17 +183,16 @@ def file_interval(runs: list, level: float = 0.90, resamples: int = 4000,
     seed; the figure is the mean over seeds, as the targets read. Returns {"f1" | "far" |
     "mar": (low, high)}, the central `level` of the resampled figures. The files are the unit:
     rows within a file are not independent, and the held-out sets are other files."""
+    from ganlet.compile.evaluate import rates
+
     names = list(runs[0])
     counts = np.array([[[run[n][k] for k in COUNTS] for n in names] for run in runs], float)
     draws = np.random.default_rng(seed).integers(0, len(names), (resamples, len(names)))
     false, normal, missed, labelled = np.moveaxis(counts[:, draws].sum(axis=2), -1, 0)
-    hits = labelled - missed
-    with np.errstate(invalid="ignore", divide="ignore"):
-        figures = {"f1": np.nan_to_num(2 * hits / (2 * hits + false + missed)),
-                   "far": np.nan_to_num(false / normal), "mar": np.nan_to_num(missed / labelled)}
+    figures = rates(tp=labelled - missed, fp=false, fn=missed, tn=normal - false)
     tails = (100 * (1 - level) / 2, 100 * (1 + level) / 2)
-    return {k: tuple(float(q) for q in np.percentile(v.mean(axis=0), tails))
-            for k, v in figures.items()}
+    return {k: tuple(float(q) for q in np.percentile(figures[k].mean(axis=0), tails))
+            for k in ("f1", "far", "mar")}
 
 
 def check_train_rows(train_rows: int) -> None:
