@@ -90,6 +90,11 @@ from typing import Optional, Sequence
 import numpy as np
 
 MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
+# A reported drift is announced again (`drift_grew`) each time its excess doubles: a channel
+# still moving away, or a fault on a channel already in drift (re-centred with it, so the score
+# cannot see it: benchmarks/bench_ramps.py), is news for the operator; a few events per drift
+# (1, 2, 4, 8 ... sigmas), never a flood.
+GROWN = 2.0
 MAX_UNSEEN_HOPS = 2 ** 40  # a gap counted as longer is as long: the hop counters stay int64
 
 
@@ -149,6 +154,7 @@ class DriftMonitor:
         self.reported = np.zeros(n, dtype=bool)
         self.since = [None] * n  # type: List[Optional[str]]
         self.peak = np.zeros(n)
+        self.told = np.zeros(n)  # the excess a reported drift was last announced at
         self.inside = np.zeros(n, dtype=np.int64)  # hops back inside, per channel in drift
         # hops since the channel left its envelope: outside in a row before a drift, every hop
         # (inside or out) during one, so the pace is always measured over the whole departure
@@ -208,11 +214,16 @@ class DriftMonitor:
                         and not (blocked[c] and self.outran[c])):
                     self.in_drift[c], self.since[c], self.peak[c] = True, time_text, e[c]
             if self.in_drift[c] and not self.reported[c] and e[c] > MARGIN:
-                self.reported[c] = True
+                self.reported[c], self.told[c] = True, e[c]
                 events.append({"event": "drift", "channel": self.channels[c],
                                "time": time_text, "since": self.since[c],
                                **self.departure(m, c),
                                "action": ACTION_TEXT[self.action] + "; " + OPERATOR_ACTION})
+            elif self.in_drift[c] and self.reported[c] and e[c] >= GROWN * self.told[c]:
+                events.append({"event": "drift_grew", "channel": self.channels[c],
+                               "time": time_text, "since": self.since[c],
+                               **self.departure(m, c), "was": round(float(self.told[c]), 6)})
+                self.told[c] = e[c]
         offset = np.where(self.in_drift & self.recentre & ~frozen,
                           np.where(m > self.hi, e, -e), 0.0)
         return offset, events, np.where(frozen, 0.0, self._steps(e))
@@ -262,7 +273,7 @@ class DriftMonitor:
             events.append({"event": "drift_ended", "channel": self.channels[c],
                            "time": time_text, "since": self.since[c],
                            "peak_excess": round(float(self.peak[c]), 6), "reason": reason})
-        self.in_drift[c], self.reported[c] = False, False
+        self.in_drift[c], self.reported[c], self.told[c] = False, False, 0.0
         self.since[c], self.inside[c] = None, 0
         return events
 
@@ -276,6 +287,7 @@ class DriftMonitor:
         return {"in_drift": [bool(v) for v in self.in_drift],
                 "reported": [bool(v) for v in self.reported], "since": list(self.since),
                 "peak": [float(v) for v in self.peak], "inside": [int(v) for v in self.inside],
+                "told": [float(v) for v in self.told],
                 "outside": [int(v) for v in self.outside],
                 "outran": [bool(v) for v in self.outran], "fresh": self.fresh,
                 "unseen": self.unseen, "past": [[float(v) for v in m] for m in self.past]}
@@ -290,6 +302,9 @@ class DriftMonitor:
         self.reported = np.asarray(d["reported"], dtype=bool)
         self.since = list(d["since"])
         self.peak = np.asarray(d["peak"], dtype=np.float64)
+        # a state from before `told`: a reported drift was last announced at its largest excess
+        self.told = np.asarray(d.get("told", np.where(self.reported, self.peak, 0.0)),
+                               dtype=np.float64)
         self.inside = np.asarray(d["inside"], dtype=np.int64)
         self.outside = np.asarray(d["outside"], dtype=np.int64)
         # a state from before `outran` existed: every channel outside counts as having outrun

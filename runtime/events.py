@@ -55,6 +55,7 @@ EVENTS = (
     "channel_lost",  # a channel's cells stayed blank past max_gap_periods: scored without it
     "channel_back",  # a lost channel reads again; it rejoins the score after a window
     "drift",  # a channel slowly left its training range and is re-centred (drift.py)
+    "drift_grew",  # a reported drift's excess doubled since it was last announced
     "drift_ended",  # a reported drift is over: back inside the range, or moving too fast
     "time_jump",  # the feed's times jumped and enough rows confirmed it (clock.py): from, to
     "clock_suspect",  # the gateway's own clock reads earlier than any plausible row

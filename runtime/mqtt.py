@@ -66,6 +66,7 @@ EVENT_TOPICS = {  # event -> (topic under BASE, QoS)
     "alert_opened": ("alerts", 1),
     "alert_closed": ("alerts", 1),
     "drift": ("drift", 1),
+    "drift_grew": ("drift", 1),
     "drift_ended": ("drift", 1),
     "channel_lost": ("channels", 1),
     "channel_back": ("channels", 1),

@@ -474,11 +474,12 @@ def _check_restored(det: Detector, bundle) -> None:
 
 
 def _check_drift(drift, n: int) -> None:
-    arrays = (drift.in_drift, drift.reported, drift.peak, drift.inside, drift.outside,
-              drift.outran)
+    arrays = (drift.in_drift, drift.reported, drift.peak, drift.told, drift.inside,
+              drift.outside, drift.outran)
     if any(a.shape != (n,) for a in arrays) or len(drift.since) != n:
         raise ValueError("drift state does not fit this bundle")
     if not (np.isfinite(drift.peak).all() and (drift.peak >= 0).all()
+            and np.isfinite(drift.told).all() and (drift.told >= 0).all()
             and (drift.inside >= 0).all() and (drift.outside >= 0).all()):
         raise ValueError("drift state holds impossible counts or excesses")
     if not all(s is None or isinstance(s, str) for s in drift.since):
