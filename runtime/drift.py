@@ -80,8 +80,12 @@ MARGINs where it is a step (0 elsewhere), and the Judge (detector.py) alerts on 
 reading. A step that holds still stops being one once the fastest normal pace could have got
 that far, and becomes a drift as above; in between the channel is left to the score.
 Events: `drift` when a channel enters drift (channel, how far in robust sigmas, since when, which
-side), `drift_ended` when it is over (with the largest excess seen, and the reason: "back"
-inside its envelope, or "faster" than a drift).
+side), `drift_grew` each time a reported drift's excess has doubled since it was last announced
+(the same fields and `was`, the excess then: a channel still moving away, or a fault on a
+channel already in drift, which is re-centred with it so the score cannot see it, is news for
+the operator; a few events per drift, 1, 2, 4, 8 ... sigmas, never a flood), `drift_ended`
+when it is over (with the largest excess seen, and the reason: "back" inside its envelope, or
+"faster" than a drift).
 """
 
 from collections import deque
@@ -90,11 +94,7 @@ from typing import Optional, Sequence
 import numpy as np
 
 MARGIN = 1.0  # scaled units: one robust standard deviation of the channel
-# A reported drift is announced again (`drift_grew`) each time its excess doubles: a channel
-# still moving away, or a fault on a channel already in drift (re-centred with it, so the score
-# cannot see it: benchmarks/bench_ramps.py), is news for the operator; a few events per drift
-# (1, 2, 4, 8 ... sigmas), never a flood.
-GROWN = 2.0
+GROWN = 2.0  # a reported drift is announced again each time its excess has grown this much
 MAX_UNSEEN_HOPS = 2 ** 40  # a gap counted as longer is as long: the hop counters stay int64
 
 
