@@ -9,9 +9,10 @@ test rig, see its README) is normal operation from start to end. Per training le
 rows train with `ganlet train`'s defaults, `ganlet compile` packs a bundle for the default board
 (budget: one false alarm per week), and every later row goes through `run.py stream` as a
 gateway would see it. Prints the alerts raised, the streamed hours, alarms per week, the share
-of streamed time inside an open alert, the hops above the threshold, the drift events, how
-many alerts the CUSUM opened ("off" where the history was too short to arm it) and how many a
-level step opened (runtime/drift.py). Every alert here is a false alarm; the budget is a
+of streamed time inside an open alert, the hops above the threshold, the drift events and the
+`drift_grew` events (a reported drift whose excess doubled), how many alerts the CUSUM opened
+("off" where the history was too short to arm it) and how many a level step opened
+(runtime/drift.py). Every alert here is a false alarm; the budget is a
 promise about data like the training span, so the gap between the two is what a short history
 costs. `--channels` trains on those channels only (as `ganlet train --channels`): one channel
 alone has nothing to dilute its error (docs/detection.md, stop 30); `--each-channel` runs every
@@ -60,7 +61,8 @@ def run_length(path: Path, rows: int, seed: int, out: Path, drift: str, channels
             "per_week": len(opened) / (hours * 3600) * WEEK_S,
             "in_alert": float(scores["alert"].mean()),
             "hops_above": float((scores["score"] > scores["threshold"]).mean()),
-            "drifts": sum(e["event"] == "drift" for e in run.events)}
+            "drifts": sum(e["event"] == "drift" for e in run.events),
+            "grew": sum(e["event"] == "drift_grew" for e in run.events)}
 
 
 def main() -> None:
@@ -110,12 +112,12 @@ def planned_runs(a, path: Path, channels) -> tuple:
 
 
 HEADER = (f"{'streamed h':>10}  {'alerts':>6}  {'per week':>9}  {'in alert':>8}  "
-          f"{'hops above':>10}  {'drifts':>6}  {'by cusum':>8}  {'by step':>7}  {'s':>5}")
+          f"{'hops above':>10}  {'drifts':>6}  {'grew':>4}  {'by cusum':>8}  {'by step':>7}  {'s':>5}")
 
 
 def row_text(r: dict) -> str:
     return (f"{r['hours']:>10.2f}  {r['alerts']:>6}  {r['per_week']:>9.1f}  "
-            f"{r['in_alert']:>8.3f}  {r['hops_above']:>10.3f}  {r['drifts']:>6}  "
+            f"{r['in_alert']:>8.3f}  {r['hops_above']:>10.3f}  {r['drifts']:>6}  {r['grew']:>4}  "
             f"{'off' if r['by_cusum'] is None else r['by_cusum']:>8}  {r['by_step']:>7}")
 
 

@@ -2,19 +2,21 @@
 
     python benchmarks/bench_ramps.py [--train-rows 2000] [--seed 0] [--sigmas 3 6 12]
                                      [--minutes 1 5 15] [--channels Current,Accelerometer1RMS]
+                                     [--down]
 
 SKAB's anomaly-free file (../shared/data/skab/anomaly-free, one-second rows of a healthy test
 rig, see its README) trains a bundle with `ganlet train`'s defaults on its first rows and
 `ganlet compile`'s defaults. Then the rows after training go through `run.py stream` as they
 are, and again once per injected fault: from --at rows into the stream, one channel ramps
-linearly from its reading to its reading plus S robust standard deviations (the bundle's own
+linearly from its reading to its reading plus (--down: minus) S robust standard deviations (the bundle's own
 scale, manifest `scaler`) over M minutes, holds there for --hold-minutes and is then as
 recorded. The injection is ours; the rows under it are the rig's. Per fault the table gives:
 
     outcome     alert (an alert covered part of the fault), drift (no alert in it, but the
                 ramped channel was reported as a drift: the gateway said "collect fresh normal
                 data and retrain"), grew (no alert; the channel was already a reported drift,
-                and its `drift_grew` event said it moved further), nothing
+                and a `drift_grew` event said it moved further), nothing. A drift event counts
+                only beyond those the untouched stream sent on that channel in the same span
     in alert    share of the fault's hops inside an alert
     delay s     from the ramp's start to the first hop in alert
     outside     alerts opened outside the fault, beyond those of the untouched stream
@@ -65,17 +67,26 @@ def opened_times(run) -> list:
             if e["event"] == "alert_opened"]
 
 
-def judged(run, scores: pd.DataFrame, start, end, channel: str, base_outside: int) -> dict:
-    """One stream's verdict on the fault between times start and end."""
+def told(run, kind: str, channel: str, start, end) -> int:
+    """How many `kind` events a gateway run sent on `channel` between times start and end."""
+    return sum(e["event"] == kind and e["channel"] == channel
+               and start <= pd.Timestamp(e["time"]).tz_localize(None) < end
+               for e in run.events)
+
+
+def judged(run, base_run, scores: pd.DataFrame, start, end, channel: str) -> dict:
+    """One stream's verdict on the fault between times start and end; a drift event counts
+    only beyond those the untouched stream sent on the channel in the same span (a warming
+    channel's own growth is not the fault's)."""
     inside = (scores["time"] >= start) & (scores["time"] < end)
     alert = scores["alert"].astype(bool)
     hits = scores["time"][inside & alert]
     outside = sum(not (start <= t < end) for t in opened_times(run))
-    told = {e["event"] for e in run.events if e["event"] in ("drift", "drift_grew")
-            and e["channel"] == channel
-            and start <= pd.Timestamp(e["time"]).tz_localize(None) < end}
-    outcome = ("alert" if len(hits) else "drift" if "drift" in told
-               else "grew" if "drift_grew" in told else "nothing")
+    base_outside = sum(not (start <= t < end) for t in opened_times(base_run))
+    more = {kind for kind in ("drift", "drift_grew") if told(run, kind, channel, start, end)
+            > told(base_run, kind, channel, start, end)}
+    outcome = ("alert" if len(hits) else "drift" if "drift" in more
+               else "grew" if "drift_grew" in more else "nothing")
     return {"outcome": outcome, "in_alert": float(alert[inside].mean()),
             "delay_s": (hits.iloc[0] - start).total_seconds() if len(hits) else None,
             "outside": outside - base_outside}
@@ -87,6 +98,7 @@ def main() -> None:
     ap.add_argument("--train-rows", type=int, default=2000)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--sigmas", type=float, nargs="+", default=[3, 6, 12])
+    ap.add_argument("--down", action="store_true", help="ramp the channels down instead of up")
     ap.add_argument("--minutes", type=float, nargs="+", default=[1, 5, 15])
     ap.add_argument("--hold-minutes", type=float, default=5)
     ap.add_argument("--at", type=int, default=1000, help="rows into the stream the ramp starts")
@@ -127,7 +139,8 @@ def main() -> None:
         times = pd.to_datetime(rows["datetime"])
         base_run, _ = stream(rows, "untouched")
         base_opened = opened_times(base_run)
-        print(f"SKAB anomaly-free, {a.train_rows} rows trained (seed {a.seed}), defaults; "
+        print(f"SKAB anomaly-free, {a.train_rows} rows trained (seed {a.seed}), defaults, "
+              f"ramps {'down' if a.down else 'up'}; "
               f"{len(rows)} rows streamed; untouched: {len(base_opened)} alert(s), "
               f"{sum(e['event'] == 'drift' for e in base_run.events)} drift event(s)")
         print(f"{'channel':>22}  {'sigmas':>6}  {'ramp min':>8}  {'outcome':>7}  "
@@ -138,11 +151,11 @@ def main() -> None:
             hold_rows = int(round(a.hold_minutes * 60 / period))
             end_row = min(a.at + ramp_rows + hold_rows, len(rows) - 1)
             tag = f"{names.index(channel)}_{size:g}_{minutes:g}"
-            run, scores = stream(injected(rows, channel, sigma[channel], size, a.at, ramp_rows,
-                                          hold_rows), tag)
+            signed = -size if a.down else size
+            run, scores = stream(injected(rows, channel, sigma[channel], signed, a.at,
+                                          ramp_rows, hold_rows), tag)
             start, end = times.iloc[a.at], times.iloc[end_row]
-            r = judged(run, scores, start, end, channel,
-                       sum(not (start <= t < end) for t in base_opened))
+            r = judged(run, base_run, scores, start, end, channel)
             tally[r["outcome"]] += 1
             delay = "-" if r["delay_s"] is None else f"{r['delay_s']:.0f}"
             print(f"{channel:>22}  {size:>6g}  {minutes:>8g}  {r['outcome']:>7}  "
