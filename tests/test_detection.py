@@ -583,6 +583,18 @@ def test_a_drift_that_keeps_growing_is_announced_again_each_time_its_excess_doub
     assert events[1]["excess"] == pytest.approx(8.0) and events[1]["was"] < 4.0
 
 
+def test_every_drift_event_kind_is_published_on_the_drift_topic():
+    # the gateway's event kinds (events.py) and what MQTT publishes (mqtt.py): a drift kind
+    # missing from the topics would be written locally and never reach the broker
+    from ganlet.runtime.events import EVENTS
+    from ganlet.runtime.mqtt import EVENT_TOPICS
+
+    assert set(EVENT_TOPICS) <= set(EVENTS)
+    drift_kinds = [k for k in EVENTS if k.startswith("drift")]
+    assert drift_kinds == ["drift", "drift_grew", "drift_ended"]
+    assert {EVENT_TOPICS[k] for k in drift_kinds} == {("drift", 1)}
+
+
 def test_when_a_drift_was_last_announced_survives_a_restart():
     mon = _drift_monitor()
     ramp = [min(0.02 * k, 3.0) for k in range(200)]
