@@ -19,7 +19,9 @@ recorded. The injection is ours; the rows under it are the rig's. Per fault the 
                 only beyond those the untouched stream sent on that channel in the same span
     in alert    share of the fault's hops inside an alert
     delay s     from the ramp's start to the first hop in alert
-    outside     alerts opened outside the fault, beyond those of the untouched stream
+    outside     alerts opened outside the fault, beyond those of the untouched stream (the
+                end of the hold, where the channel drops back to its reading, is itself a step
+                and can open one)
 
 A channel that leaves its training range no faster than training ever moved it in a window is
 a drift (runtime/drift.py): on a history where the channel only jitters, that pace is its
@@ -92,7 +94,7 @@ def judged(run, base_run, scores: pd.DataFrame, start, end, channel: str) -> dic
             "outside": outside - base_outside}
 
 
-def main() -> None:
+def arguments():
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--skab", type=Path, default=skab_protocol.SKAB)
     ap.add_argument("--train-rows", type=int, default=2000)
@@ -105,12 +107,37 @@ def main() -> None:
     ap.add_argument("--stream-rows", type=int, default=2600)
     ap.add_argument("--channels", default=None,
                     help="comma-separated channels to ramp (default: every channel)")
-    a = ap.parse_args()
+    return ap.parse_args()
+
+
+def bundle_scales(bundle: Path, asked) -> tuple:
+    """(the bundle's channel names, each one's robust scale, the channels to ramp)."""
+    manifest = json.loads((bundle / "manifest.json").read_text())
+    names = [c["name"] for c in manifest["channels"]]
+    channels = asked.split(",") if asked else names
+    unknown = sorted(set(channels) - set(names))
+    if unknown:
+        raise SystemExit(f"not channels of the bundle: {', '.join(unknown)}; it has "
+                         f"{', '.join(names)}")
+    return names, dict(zip(names, manifest["scaler"]["scale"])), channels
+
+
+def stream(bundle: Path, frame: pd.DataFrame, work: Path):
+    """The bundle's `run.py stream` on the rows: (the run, its scores)."""
+    from ganlet.compile.gateway import read_scores, run_bundle
+
+    feed = work.with_suffix(".csv")
+    frame.to_csv(feed, sep=";", index=False)
+    run = run_bundle(bundle, feed, work)
+    return run, read_scores(run.scores)
+
+
+def main() -> None:
+    a = arguments()
     path = a.skab / "anomaly-free" / "anomaly-free.csv"
     if not path.is_file():
         raise SystemExit(f"no SKAB anomaly-free file at {path}")
     warnings.simplefilter("ignore")
-    from ganlet.compile.gateway import read_scores, run_bundle
     from ganlet.compile.pipeline import CompileOptions
 
     raw = pd.read_csv(path, sep=";")
@@ -118,52 +145,36 @@ def main() -> None:
     period = pd.to_datetime(raw["datetime"]).diff().median().total_seconds()
     if a.at + 1 >= len(rows):
         raise SystemExit(f"--at {a.at} is past the {len(rows)} streamed rows")
+    times = pd.to_datetime(rows["datetime"])
+    ramp_rows = {m: max(1, int(round(m * 60 / period))) for m in a.minutes}
+    hold_rows = int(round(a.hold_minutes * 60 / period))
     with tempfile.TemporaryDirectory(prefix="ganlet-ramps-") as tmp:
         tmp = Path(tmp)
         skab_protocol.train_and_compile(path, a.train_rows, a.seed, tmp, CompileOptions())
-        manifest = json.loads((tmp / "bundle" / "manifest.json").read_text())
-        names = [c["name"] for c in manifest["channels"]]
-        sigma = dict(zip(names, manifest["scaler"]["scale"]))
-        channels = a.channels.split(",") if a.channels else names
-        unknown = sorted(set(channels) - set(names))
-        if unknown:
-            raise SystemExit(f"not channels of the bundle: {', '.join(unknown)}; it has "
-                             f"{', '.join(names)}")
-
-        def stream(frame: pd.DataFrame, tag: str):
-            feed = tmp / f"{tag}.csv"
-            frame.to_csv(feed, sep=";", index=False)
-            run = run_bundle(tmp / "bundle", feed, tmp / tag)
-            return run, read_scores(run.scores)
-
-        times = pd.to_datetime(rows["datetime"])
-        base_run, _ = stream(rows, "untouched")
-        base_opened = opened_times(base_run)
+        bundle = tmp / "bundle"
+        names, sigma, channels = bundle_scales(bundle, a.channels)
+        base_run, _ = stream(bundle, rows, tmp / "untouched")
         print(f"SKAB anomaly-free, {a.train_rows} rows trained (seed {a.seed}), defaults, "
-              f"ramps {'down' if a.down else 'up'}; "
-              f"{len(rows)} rows streamed; untouched: {len(base_opened)} alert(s), "
+              f"ramps {'down' if a.down else 'up'}; {len(rows)} rows streamed; untouched: "
+              f"{len(opened_times(base_run))} alert(s), "
               f"{sum(e['event'] == 'drift' for e in base_run.events)} drift event(s)")
         print(f"{'channel':>22}  {'sigmas':>6}  {'ramp min':>8}  {'outcome':>7}  "
               f"{'in alert':>8}  {'delay s':>7}  {'outside':>7}")
         tally = {"alert": 0, "drift": 0, "grew": 0, "nothing": 0}
         for channel, size, minutes in itertools.product(channels, a.sigmas, a.minutes):
-            ramp_rows = max(1, int(round(minutes * 60 / period)))
-            hold_rows = int(round(a.hold_minutes * 60 / period))
-            end_row = min(a.at + ramp_rows + hold_rows, len(rows) - 1)
-            tag = f"{names.index(channel)}_{size:g}_{minutes:g}"
-            signed = -size if a.down else size
-            run, scores = stream(injected(rows, channel, sigma[channel], signed, a.at,
-                                          ramp_rows, hold_rows), tag)
-            start, end = times.iloc[a.at], times.iloc[end_row]
-            r = judged(run, base_run, scores, start, end, channel)
+            fault = injected(rows, channel, sigma[channel], -size if a.down else size, a.at,
+                             ramp_rows[minutes], hold_rows)
+            run, scores = stream(bundle, fault,
+                                 tmp / f"{names.index(channel)}_{size:g}_{minutes:g}")
+            end_row = min(a.at + ramp_rows[minutes] + hold_rows, len(rows) - 1)
+            r = judged(run, base_run, scores, times.iloc[a.at], times.iloc[end_row], channel)
             tally[r["outcome"]] += 1
             delay = "-" if r["delay_s"] is None else f"{r['delay_s']:.0f}"
             print(f"{channel:>22}  {size:>6g}  {minutes:>8g}  {r['outcome']:>7}  "
                   f"{r['in_alert']:>8.3f}  {delay:>7}  {r['outside']:>7}", flush=True)
-        total = sum(tally.values())
-        print(f"of {total} faults: {tally['alert']} alerted, {tally['drift']} reported only as "
-              f"a drift, {tally['grew']} only as a drift that grew, {tally['nothing']} not "
-              "seen")
+    print(f"of {sum(tally.values())} faults: {tally['alert']} alerted, {tally['drift']} "
+          f"reported only as a drift, {tally['grew']} only as a drift that grew, "
+          f"{tally['nothing']} not seen")
 
 
 if __name__ == "__main__":
