@@ -14,6 +14,7 @@ import math
 from dataclasses import asdict, dataclass, field
 
 from ganlet.compile.boards import Board
+from ganlet.compile.calibrate import K_MAX
 from ganlet.runtime.thresholds import pot_peaks_at_most
 
 # Students below the teacher, largest first: (encoder widths, generator widths), widths grow
@@ -36,16 +37,25 @@ STUDENT_RUNGS = (
 PYTHON_NUMPY_BASE_MB = 24.0
 ONNXRUNTIME_EXTRA_MB = 30.0
 # Bytes on flash beyond the raw weights, estimated generously (an upper bound; the packer
-# checks the real figure after packing). Fixed part: manifest without the threshold's peaks
-# (~5 KB, its file list names every runtime file), INSTALL.txt with the unit (~5 KB), the unit
-# file (~1.3 KB), run.py (~15 KB: it carries a copy of runtime/trust.py, the checks that run
-# before any bundle code), the signatures, the ONNX graph's fixed nodes.
-PACKING_OVERHEAD_BYTES = 30_000
+# checks the real figure after packing). Fixed part, measured on a packed 48-channel bundle:
+# run.py 15.2 KB (it carries a copy of runtime/trust.py, the checks that run before any bundle
+# code), the manifest without its per-channel numbers and the threshold's peaks 6.3 KB (its
+# file list names every runtime file), INSTALL.txt 3.9 KB, the unit file 0.8 KB: 26.2 KB, and
+# a fifth more for what grows with the code.
+PACKING_OVERHEAD_BYTES = 32_000
 # Per stored array (measured on packed bundles: ~260 bytes of npy header + zip entries in
 # weights.npz, ~120 bytes of initializer + node records in model.onnx).
 PER_ARRAY_BYTES = 400
-# Per channel: its name, unit, scaler centre and scale in the manifest and INSTALL.txt.
-PER_CHANNEL_BYTES = 200
+# Per channel, in the manifest: its name, unit and feature, and one number per section that
+# holds one for every channel (scaler centre and scale, drift lo / hi / v_max, the held-reading
+# limit) plus a centre and a normal-error scale per operating regime, at the most regimes
+# calibrate keeps. A number in the manifest's indented JSON takes ~29 bytes (17 significant
+# digits, sign, the nesting's indent). Measured on a 48-channel bundle with 4 regimes: 461
+# bytes a channel (200 had been assumed, and a 48-channel model the estimate said fitted the
+# default board was refused by the packer after its distillation).
+NUMBERS_PER_CHANNEL = 6 + 2 * K_MAX
+BYTES_PER_NUMBER = 32
+PER_CHANNEL_BYTES = 80 + NUMBERS_PER_CHANNEL * BYTES_PER_NUMBER
 # The POT threshold carries its calibration peaks (runtime/thresholds.pot_peaks_at_most of the
 # training hops, 1000 at most) as indented JSON lines of at most ~32 bytes each.
 BYTES_PER_PEAK = 32

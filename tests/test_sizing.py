@@ -7,14 +7,17 @@ parameter count."""
 
 from __future__ import annotations
 
+import json
 import re
 
 import numpy as np
+import pandas as pd
 import pytest
 from synthetic import correlated_series
 from typer.testing import CliRunner
 
 from ganlet.compile.boards import DEFAULT_BOARD, list_boards, load_board
+from ganlet.compile.calibrate import K_MAX
 from ganlet.compile.cli import app
 from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.layout import network_weights
@@ -300,3 +303,33 @@ def test_the_threshold_share_of_flash_follows_the_training_history(tmp_path):
     hop4 = plan_for(board, 4, 2, *TEACHER, 32, 4, 60.0, history_rows=20_000)
     assert unknown.storage_bytes - short.storage_bytes == BYTES_PER_PEAK * (1000 - 10)
     assert unknown.storage_bytes - hop4.storage_bytes == BYTES_PER_PEAK * (1000 - 100)
+
+
+def regime_series(n: int, channels: int, seed: int = 0) -> pd.DataFrame:
+    """Many channels driven by one duty that steps between four held states (60 rows each),
+    so calibration finds the most operating regimes it keeps, and noise on top."""
+    rng = np.random.default_rng(seed)
+    duty = np.repeat([0.0, 1.0, 2.0, 3.0], 60)[np.arange(n) % 240]
+    gains = rng.uniform(0.5, 2.0, channels)
+    values = 10 + np.outer(duty, gains) + 0.05 * rng.standard_normal((n, channels))
+    frame = pd.DataFrame(values, columns=[f"sensor_{c:02d}" for c in range(channels)])
+    frame.insert(0, "time", pd.date_range("2026-01-05", periods=n, freq="60s"))
+    return frame
+
+
+def test_a_wide_bundle_with_the_most_regimes_packs_within_its_flash_estimate(tmp_path):
+    """48 channels and four operating regimes: the manifest's per-channel numbers dominate.
+    The estimate had assumed 200 bytes a channel (516 measured), so a 48-channel model the
+    sizing said fitted the default board was refused by the packer after its distillation."""
+    csv = tmp_path / "wide.csv"
+    regime_series(1500, 48).to_csv(csv, index=False)
+    frame = load_frame(csv, IntakeOptions())
+    cfg = TeacherConfig(window=16, adversarial_epochs=1, inversion_epochs=2,
+                        encoder_hidden=(16,), generator_hidden=(8, 16), discriminator_hidden=8)
+    model_dir = save_model(train(frame, split_spans(frame, None, 0.2), cfg), tmp_path / "model")
+    result = CliRunner().invoke(app, ["compile", str(model_dir), "--out", str(tmp_path / "B")])
+    assert result.exit_code == 0, result.output
+    manifest = json.loads((tmp_path / "B" / "manifest.json").read_text())
+    assert len(manifest["score"]["regimes"]["centres"]) == K_MAX  # the worst case per channel
+    core = sum(p.stat().st_size for p in (tmp_path / "B").iterdir() if p.is_file())
+    assert core <= manifest["board"]["estimate"]["storage_kb"] * 1024
