@@ -21,7 +21,14 @@ import pandas as pd
 
 from ganlet.runtime.features import rate_mask
 from ganlet.runtime.features import series as feature_series
-from ganlet.runtime.intake import UTF16_MARKS, Dialect, RowError, decimal_comma, decode_text
+from ganlet.runtime.intake import (
+    UTF16_MARKS,
+    Dialect,
+    RowError,
+    decimal_comma,
+    decode_text,
+    digit_grouped,
+)
 from ganlet.runtime.times import MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
@@ -292,6 +299,21 @@ def refuse_decimal_commas(df: pd.DataFrame, columns, path) -> None:
                           f"{found[0][1]!r}); read them with --decimal ','")
 
 
+def refuse_grouped_digits(texts: dict, decimal: str, path) -> None:
+    """Columns whose cells that are not plain numbers are mostly numbers with their digits
+    grouped in thousands (runtime/intake.py DIGIT_GROUPS; an export formatted 1,234.5): read as
+    text the column would be left out, and in a column of smaller plain numbers the large
+    values read as blank, both without a word. `texts`: each column's text cells."""
+    found = [(str(col), cells.iloc[0]) for col, cells in texts.items()
+             if len(cells) and cells.map(lambda c: digit_grouped(c, decimal)).mean() > 0.5]
+    if found:
+        names = ", ".join(c for c, _ in found)
+        raise IntakeError(f"{path}: column(s) {names} hold numbers with their digits grouped in "
+                          f"thousands (e.g. {found[0][1]!r}), which neither ganlet nor the "
+                          "gateway reads; export the file with plain numbers (no digit "
+                          "grouping)")
+
+
 def find_time_column(df: pd.DataFrame, requested: Optional[str]) -> str:
     if requested is not None:
         if requested not in df.columns:
@@ -485,6 +507,7 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
                               f"columns are {', '.join(map(str, df.columns))}")
         channels = list(opts.channels)
         texts = {c: text_cells(df[c], opts.decimal) for c in channels}
+        refuse_grouped_digits(texts, opts.decimal, path)
         not_numeric = [c for c in channels if not mostly_numbers(df[c], texts[c])]
         refuse_decimal_commas(df, not_numeric, path)
         if not_numeric:
@@ -493,6 +516,7 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
         candidates = [c for c in df.columns if c != time_col and c not in excluded
                       and not pd.api.types.is_bool_dtype(df[c])]
         texts = {c: text_cells(df[c], opts.decimal) for c in candidates}
+        refuse_grouped_digits(texts, opts.decimal, path)
         text = [c for c in candidates if not mostly_numbers(df[c], texts[c])]
         refuse_decimal_commas(df, text, path)
         channels = [c for c in candidates if c not in text]

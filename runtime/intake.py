@@ -56,7 +56,7 @@ REJECT_KINDS = (
     "column_count",  # fewer or more cells than the header
     "bad_time",  # time cell empty or not a time we read (see the docstring)
     "missing_value",  # every channel cell is blank (one blank cell is read as NaN: blanks.py)
-    "non_numeric",  # no channel cell a number, some text; or a number with a decimal comma
+    "non_numeric",  # no channel cell a number, some text; or a number written another way
     "non_finite",  # NaN or +-inf
     "out_of_range",  # finite, but absurdly far from the scaler's center (service)
     "out_of_order",  # time earlier than the last accepted sample (service)
@@ -76,6 +76,15 @@ _INFINITE = re.compile(r"[+-]?inf(?:inity)?", re.IGNORECASE)
 # names such columns with decimal_comma (compile/data.py refuse_decimal_commas).
 DECIMAL_COMMA = re.compile(r"[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+")
 DECIMAL_HINT = " (a decimal comma? pass --decimal ,)"
+# A number with its digits grouped in thousands, where nothing else reads it so (a decimal part
+# after the groups, or two groups or more): 1,234.5  1,234,567 beside a decimal point; 1.234,5
+# 1.234.567 beside a decimal comma. Neither side reads one (pandas.read_csv does not without
+# `thousands`, and a value read as blank or as text would drop the reading without a word): the
+# gateway refuses such a cell with this hint, the workstation such a column (compile/data.py
+# refuse_grouped_digits). "1,234" alone may be a decimal comma: the hint above.
+DIGIT_GROUPS = {".": re.compile(r"[+-]?\d{1,3}(?:,\d{3})+\.\d+|[+-]?\d{1,3}(?:,\d{3}){2,}"),
+                ",": re.compile(r"[+-]?\d{1,3}(?:\.\d{3})+,\d+|[+-]?\d{1,3}(?:\.\d{3}){2,}")}
+GROUPS_HINT = " (digits grouped in thousands? send plain numbers: 1234.5)"
 
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
@@ -87,6 +96,11 @@ BLANK_CELLS = frozenset((
 def decimal_comma(cell: str) -> bool:
     """The cell is a number written with a decimal comma (DECIMAL_COMMA)."""
     return DECIMAL_COMMA.fullmatch(cell.strip()) is not None
+
+
+def digit_grouped(cell: str, decimal: str = ".") -> bool:
+    """The cell is a number with its digits grouped in thousands (DIGIT_GROUPS)."""
+    return DIGIT_GROUPS[decimal].fullmatch(cell.strip()) is not None
 
 
 class RowError(Exception):
@@ -149,6 +163,13 @@ class Dialect:
         except TimeError as exc:
             raise RowError("bad_time", str(exc)) from None
 
+    def hint(self, cell: str) -> str:
+        """Why a cell that is not a number in this dialect is a number written another way
+        ("" for text, such as a quality flag)."""
+        if digit_grouped(cell, self.decimal):
+            return GROUPS_HINT
+        return DECIMAL_HINT if self.decimal == "." and decimal_comma(cell) else ""
+
     def number(self, name: str, cell: str) -> float:
         """A channel cell's value; NaN for a blank cell (BLANK_CELLS)."""
         if cell in BLANK_CELLS:
@@ -159,8 +180,7 @@ class Dialect:
             if math.isfinite(v):
                 return v
         elif not _INFINITE.fullmatch(text):
-            hint = DECIMAL_HINT if decimal_comma(cell) else ""
-            raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{hint}")
+            raise RowError("non_numeric", f"channel {name!r}: {cell[:40]!r}{self.hint(cell)}")
         raise RowError("non_finite", f"channel {name!r}: {cell[:40]!r}")  # inf, or 1e999
 
 
@@ -174,17 +194,17 @@ def channel_values(cells: Iterable[Tuple[str, Union[str, float]]],
     """(channel name, cell) pairs of one row -> (values, how many cells held text), by the
     rule Header.parse states; the MQTT source reads a sample's values by it too, its JSON
     numbers passed as floats already checked finite."""
-    number = (dialect or _UTC).number
+    dialect = dialect or _UTC
     values, text = [], []  # type: List[float], List[RowError]
     for name, cell in cells:
         if isinstance(cell, float):
             values.append(cell)
             continue
         try:
-            values.append(number(name, cell))
+            values.append(dialect.number(name, cell))
         except RowError as exc:
-            if exc.kind != "non_numeric" or decimal_comma(cell):
-                raise
+            if exc.kind != "non_numeric" or dialect.hint(cell):
+                raise  # a number written another way: read as blank it would drop the reading
             values.append(math.nan)
             text.append(exc)
     if all(math.isnan(v) for v in values):
@@ -250,9 +270,10 @@ class Header:
 
         A channel cell holding text (a historian's quality flag: "Bad", "Comm Fail") while
         another channel reads a number is read as a blank reading (blanks.py), so one failed
-        transmitter does not refuse the other channels' readings; a cell that looks like a
-        number with a decimal comma is still refused (the feed's --decimal is wrong), and so is
-        a row whose every channel cell is text or blank."""
+        transmitter does not refuse the other channels' readings; a cell that is a number
+        written another way is still refused with a hint (Dialect.hint: a decimal comma, the
+        feed's --decimal being wrong; digits grouped in thousands), and so is a row whose every
+        channel cell is text or blank."""
         cells = self.dialect.split(line)
         if len(cells) != self.n_cells:
             raise RowError("column_count", f"{len(cells)} cells, header has {self.n_cells}")

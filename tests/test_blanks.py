@@ -237,6 +237,27 @@ def test_a_cell_with_a_decimal_comma_still_refuses_its_row():
     assert math.isnan(values[0]) and values[1] == 2.5 and text == 1
 
 
+def test_a_cell_grouped_in_thousands_refuses_its_row_with_a_hint():
+    # 1,234.5 (quoted in a comma file, as a spreadsheet writes it) and 1.234,5 beside a decimal
+    # comma: numbers written another way, refused with what to send instead; a 1,234 with no
+    # decimal part may be a decimal comma and keeps that hint
+    from ganlet.runtime.intake import GROUPS_HINT, Header, RowError
+    header = Header("time,flow,pressure", "time", ["flow", "pressure"], Dialect(sep=","))
+    for cell in ('"1,234.5"', '"-12,345,678"'):
+        with pytest.raises(RowError) as info:
+            header.parse(f"2026-03-02T10:00:00Z,{cell},2")
+        assert info.value.kind == "non_numeric" and GROUPS_HINT in str(info.value)
+    with pytest.raises(RowError, match="decimal comma"):
+        header.parse('2026-03-02T10:00:00Z,"1,234",2')
+    continental = Header("time;flow;pressure", "time", ["flow", "pressure"],
+                         Dialect(sep=";", decimal=","))
+    with pytest.raises(RowError) as info:
+        continental.parse("2026-03-02T10:00:00Z;1.234,5;2")
+    assert GROUPS_HINT in str(info.value) and "--decimal" not in str(info.value)
+    t, values, text = header.parse("2026-03-02T10:00:00Z,1234.5,2")
+    assert values == [1234.5, 2.0] and text == 0
+
+
 def test_a_blank_neither_holds_nor_moves_a_reading():
     held = HeldReadings([3])
     for v in (1.0, 1.0, math.nan, 1.0, 1.0):

@@ -28,6 +28,40 @@ def test_decimal_commas_are_named_not_the_delimiter(write_csv, options):
     assert "flow" in message
 
 
+def grouped(values, sep: str, point: str) -> list:
+    """Each value as a spreadsheet formats it with digit grouping (reference: Python's format
+    specification, PEP 378: `f"{v:,.1f}"`), separators swapped for the continental dialect."""
+    return [f"{v:,.1f}".replace(",", "\0").replace(".", point).replace("\0", sep)
+            for v in values]
+
+
+@pytest.mark.parametrize("dialect", ["point", "comma"])
+def test_numbers_grouped_in_thousands_are_refused_naming_the_column(write_csv, dialect):
+    # an export formatted 1,234.5 (or 1.234,5): read as text the speed would be left out, and
+    # with plain numbers under 1,000 beside them its large values would read as blank
+    df = correlated_series(300)
+    df["speed"] = 1000 + 150 * (df["flow"] - 10)           # about 600 to 1,400 rpm
+    assert (df["speed"] < 1000).any() and (df["speed"] >= 1000).any()
+    if dialect == "point":
+        df["speed"] = grouped(df["speed"], ",", ".")
+        path, options, thousands = write_csv(df), IntakeOptions(), ","
+    else:
+        df["speed"] = grouped(df["speed"], ".", ",")
+        path = write_csv(df, sep=";", decimal=",")
+        options, thousands = IntakeOptions(sep=";", decimal=","), "."
+    # reference: pandas.read_csv reads the column as numbers only when told the grouping
+    told = pd.read_csv(path, sep=options.sep or ",", decimal=options.decimal,
+                       thousands=thousands)["speed"]
+    assert pd.api.types.is_float_dtype(told) and told.max() > 1000
+    with pytest.raises(IntakeError) as err:
+        load_frame(path, options)
+    message = str(err.value)
+    assert "speed" in message and "grouped in thousands" in message and "plain numbers" in message
+    with pytest.raises(IntakeError, match="grouped in thousands"):
+        load_frame(path, IntakeOptions(sep=options.sep, decimal=options.decimal,
+                                       channels=["flow", "speed"]))
+
+
 def test_text_columns_without_decimal_commas_keep_the_general_message(write_csv):
     df = correlated_series(50)
     df["flow"] = "off"                   # text, but not numbers with a decimal comma
