@@ -5,7 +5,8 @@
     open      score > threshold on `min_hops` consecutive hops -> "opened"; the alert starts at
               the first of those hops (open_since_hop) and its peak includes them
     close     score < close_ratio * threshold -> "closed" (hysteresis: between the two levels an
-              open alert stays open and a closed one stays closed)
+              open alert stays open and a closed one stays closed); with off_hops > 1 (the
+              Judge's off-delay, detector.py) only on that many consecutive such hops
     cooldown  for `cooldown_hops` hops after the closing hop no alert opens, and those hops do
               not count towards a new run of `min_hops`
 
@@ -69,6 +70,7 @@ class AlertMachine:
         self._run_len = 0
         self._run_peak = 0.0
         self._cooldown_left = 0
+        self._quiet = 0  # consecutive hops of an open alert below the closing level
 
     @property
     def run_len(self) -> int:
@@ -84,8 +86,9 @@ class AlertMachine:
     def is_warm(self) -> bool:
         return self.hop >= self.warmup_hops
 
-    def step(self, score: float, threshold: float) -> Optional[str]:
-        """Advance one hop; returns None, "warmed_up", "opened" or "closed"."""
+    def step(self, score: float, threshold: float, off_hops: int = 1) -> Optional[str]:
+        """Advance one hop; returns None, "warmed_up", "opened" or "closed". off_hops: hops in a
+        row below the closing level that close an open alert."""
         i = self.hop
         self.hop += 1
         score = float(score)
@@ -96,9 +99,14 @@ class AlertMachine:
         if self.is_open:
             self.peak_score = max(self.peak_score, score)
             if score < self.close_ratio * threshold:
-                self.is_open = False
-                self._cooldown_left = self.cooldown_hops
-                return CLOSED
+                self._quiet += 1
+                if self._quiet >= off_hops:
+                    self.is_open = False
+                    self._quiet = 0
+                    self._cooldown_left = self.cooldown_hops
+                    return CLOSED
+            elif score >= self.close_ratio * threshold:  # a NaN hop leaves the count as it is
+                self._quiet = 0
             return None
 
         if self._cooldown_left > 0:
@@ -140,6 +148,7 @@ class AlertMachine:
             "run_len": self._run_len,
             "run_peak": self._run_peak,
             "cooldown_left": self._cooldown_left,
+            "quiet": self._quiet,
         }
 
     @classmethod
@@ -153,4 +162,5 @@ class AlertMachine:
         m._run_len = int(d["run_len"])
         m._run_peak = float(d["run_peak"])
         m._cooldown_left = int(d["cooldown_left"])
+        m._quiet = int(d.get("quiet", 0))  # a state from before the off-delay: none counted
         return m

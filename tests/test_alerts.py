@@ -64,6 +64,20 @@ def test_cooldown_hops_do_not_count_towards_min_hops():
     assert m.open_since_hop == 4
 
 
+def test_an_off_delay_closes_only_after_that_many_quiet_hops_in_a_row():
+    m = machine(min_hops=1)
+    seq = [2.0, 0.1, 2.0, 0.1, 0.1, 2.0, 0.1, 0.1, 0.1, 2.0]
+    # open hop 0; one quiet hop (1) and a loud one (2) restart the count; 3-4 quiet, 5 loud;
+    # 6-8 three quiet in a row: closed at 8, the third; 9 opens again (no cooldown)
+    assert [m.step(s, 1.0, off_hops=3) for s in seq] == [
+        "opened", None, None, None, None, None, None, None, "closed", "opened"]
+    restored = AlertMachine.from_state(json.loads(json.dumps(m.state())))
+    assert restored.state() == m.state()
+    # a state from before the off-delay counts no quiet hop
+    old = {k: v for k, v in m.state().items() if k != "quiet"}
+    assert AlertMachine.from_state(old).state() == m.state()
+
+
 def test_nan_neither_opens_nor_closes():
     m = machine(min_hops=2)
     nan = float("nan")
@@ -79,13 +93,16 @@ def test_threshold_is_read_per_hop():
 
 def test_state_round_trip():
     seq = [0.5, 2.0, 2.0, 0.9, 3.0, 0.1, 2.0, 2.0, 2.0, 0.5, 0.1, 2.0, 2.0, 2.5, 0.7, 0.2]
-    for cut in range(len(seq)):
-        m = machine(warmup_hops=1, min_hops=2, close_ratio=0.5, cooldown_hops=2)
-        run(m, seq[:cut])
-        restored = AlertMachine.from_state(json.loads(json.dumps(m.state())))
-        assert restored.state() == m.state()
-        assert run(restored, seq[cut:]) == run(m, seq[cut:])
-        assert restored.state() == m.state()
+    for off_hops in (1, 2):
+        for cut in range(len(seq)):
+            m = machine(warmup_hops=1, min_hops=2, close_ratio=0.5, cooldown_hops=2)
+            [m.step(s, 1.0, off_hops) for s in seq[:cut]]
+            restored = AlertMachine.from_state(json.loads(json.dumps(m.state())))
+            assert restored.state() == m.state()
+            rest = seq[cut:]
+            assert [restored.step(s, 1.0, off_hops) for s in rest] == [
+                m.step(s, 1.0, off_hops) for s in rest]
+            assert restored.state() == m.state()
 
 
 def test_full_sequence_expected_transitions():

@@ -173,6 +173,33 @@ def test_an_alert_the_score_opened_stays_open_while_a_channel_is_a_step():
     assert closing_hop([0.0] * len(scores)) == (7, 10)  # the score alone: closed as it fell
 
 
+def test_a_step_alert_rides_out_a_hop_of_its_channel_back_at_the_edge():
+    """A step is there or not, so the deadband cannot hold its alert through one hop of a level
+    flickering at its envelope's edge (SKAB valve1 file 4: a flow meter alternating between
+    two readings closed the fault's alert, and the cooldown kept it shut for a window): a step
+    or held-reading alert closes after as many quiet hops as open one; a score alert closes on
+    the first hop below its deadband."""
+    from ganlet.runtime.detector import Judge
+
+    alerting = {"warmup_hops": 0, "min_hops": 3, "close_ratio": 0.95, "cooldown_hops": 4}
+
+    def events(scores, steps):
+        judge = Judge("b", ["flow", "pressure"], ["m3/h", "bar"],
+                      {"kind": "static", "level": 10.0}, alerting)
+        return [(k, e["event"], e.get("opened_by")) for k, (score, s) in
+                enumerate(zip(scores, steps))
+                for e in judge.step(float(k), score, steps=np.array([s, 0.0]))
+                if e["event"] in ("alert_opened", "alert_closed")]
+
+    quiet = [1.0] * 16
+    flicker = [0.0] * 2 + [3.0] * 4 + [0.0] + [3.0] * 4 + [0.0] * 5   # back for hop 6 only
+    assert events(quiet, flicker) == [(4, "alert_opened", "step"), (13, "alert_closed", "step")]
+    back = [0.0] * 2 + [3.0] * 4 + [0.0] * 10                         # back from hop 6
+    assert events(quiet, back) == [(4, "alert_opened", "step"), (8, "alert_closed", "step")]
+    loud = [1.0] * 2 + [20.0] * 4 + [1.0] + [20.0] * 4 + [1.0] * 5
+    assert events(loud, [0.0] * 16) == [(4, "alert_opened", "score"), (6, "alert_closed", "score")]
+
+
 def test_drift_reported_only_names_the_channel_once(drift_bundles, tmp_path):
     """--drift report: the drift is scored as it is (so it alerts, as a fault of that size
     would) and is reported once as drift, naming the channel."""
