@@ -353,6 +353,29 @@ def refuse_split_time(df: pd.DataFrame, time_col, path) -> None:
                 "for training and for the gateway")
 
 
+def refuse_long_format(df: pd.DataFrame, time_col, path) -> None:
+    """One reading per row (a historian's narrow export: time, tag, value): most rows share
+    their time with others and differ in one column naming the sensor. Read as it stands, every
+    sensor's readings at a time would be averaged into one channel without a word; say how to
+    pivot it into one column per sensor, the shape training and the gateway read."""
+    if len(df) < 4 or df.duplicated([time_col]).mean() < 0.5:
+        return
+    for col in df.columns:
+        names = df[col].nunique()
+        if col == time_col or not 2 <= names <= len(df) // 2:
+            continue
+        if df.duplicated([time_col, col]).mean() < 0.01:
+            values = [str(c) for c in df.columns if c not in (time_col, col)]
+            shown = ", ".join(repr(str(v)) for v in df[col].dropna().unique()[:3])
+            shown += ", ..." if names > 3 else ""
+            raise IntakeError(
+                f"{path}: rows repeat their time, one per {col!r} ({names} names: {shown}): "
+                "the file holds one reading per row; ganlet reads one column per sensor, in "
+                "training and on the gateway. Pivot it first, e.g. with pandas: "
+                f"df.pivot_table(index={str(time_col)!r}, columns={str(col)!r}, "
+                f"values={values[0] if len(values) == 1 else values!r}).reset_index()")
+
+
 def units_row(df: pd.DataFrame, time_col, dialect: Dialect, notes: list) -> Optional[dict]:
     """{column: unit} when the first data row is a units row, else None: its time cell is not
     a time and its cells make columns text that are numbers below it ('', 'bar', 'degC' under
@@ -413,6 +436,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     notes: list = []
     time_col = find_time_column(df, opts.time_col)
     refuse_split_time(df, time_col, path)
+    refuse_long_format(df, time_col, path)
     row_units = units_row(df, time_col, dialect, notes)
     if row_units is not None:
         df = read_table(Path(path), opts.sep, opts.decimal, skip_units_row=True)

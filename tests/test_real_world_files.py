@@ -62,6 +62,41 @@ def test_numbers_grouped_in_thousands_are_refused_naming_the_column(write_csv, d
                                        channels=["flow", "speed"]))
 
 
+@pytest.mark.parametrize("tag", ["names", "numbers"])
+def test_one_reading_per_row_is_refused_with_the_pivot_that_fixes_it(write_csv, tag):
+    # a historian's narrow export (reference: pandas.DataFrame.melt writes that shape from the
+    # wide frame): read as it stands, the three sensors at each time were averaged into one
+    # channel "value"; a numeric tag id was even a channel of its own
+    wide = correlated_series(300)
+    narrow = wide.melt(id_vars="time", var_name="tag", value_name="value").sort_values("time")
+    if tag == "numbers":
+        narrow["tag"] = narrow["tag"].map({"flow": 101, "power": 102, "temp": 103})
+    path = write_csv(narrow, name="narrow.csv")
+    with pytest.raises(IntakeError) as err:
+        load_frame(path)
+    message = str(err.value)
+    assert "'tag'" in message and "one reading per row" in message and "pivot_table" in message
+    # the pivot the message gives restores a file that reads as the wide one does
+    pivoted = pd.read_csv(path).pivot_table(index="time", columns="tag",
+                                            values="value").reset_index()
+    frame = load_frame(write_csv(pivoted, name="pivoted.csv"))
+    assert frame.values.shape == (300, 3)
+    order = ["flow", "power", "temp"] if tag == "names" else ["101", "102", "103"]
+    assert frame.channels == order
+    np.testing.assert_allclose(frame.values, wide[["flow", "power", "temp"]].to_numpy(),
+                               rtol=1e-12)
+
+
+def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
+    # a logger that wrote a few rows twice: averaged and said, as before
+    df = correlated_series(300)
+    df = pd.concat([df, df.iloc[:40]]).sort_values("time")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        frame = load_frame(write_csv(df))
+    assert frame.report.duplicates == 40 and frame.channels == ["flow", "power", "temp"]
+
+
 def test_text_columns_without_decimal_commas_keep_the_general_message(write_csv):
     df = correlated_series(50)
     df["flow"] = "off"                   # text, but not numbers with a decimal comma
