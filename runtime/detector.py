@@ -136,7 +136,7 @@ class Judge:
             self.alert = None
             if self.cusum is not None:  # its evidence belongs to the alert, not to what follows
                 self.cusum.clear()
-        return events
+        return events + self._held_news(t)
 
     def see(self, raw: Sequence[float]) -> None:
         """One grid row's raw readings (the held-reading runs count rows, not hops)."""
@@ -182,6 +182,21 @@ class Judge:
         an off-delay there lengthened every alert and cost more false rows than it found."""
         by = None if self.alert is None else self.alert.get("opened_by")
         return self.machine.min_hops if by in (BY_STEP, BY_HELD) else 1
+
+    def _held_news(self, t: float) -> List[dict]:
+        """`reading_held` for each channel whose run has just passed its limit while an alert
+        about something else is open (held.py); with none open, the run opens its own alert."""
+        if self.held is None:
+            return []
+        past = self.held.newly_past()
+        a = self.alert
+        if a is None or not self.machine.is_open:
+            return []
+        own = (a.get("moved") or {}).get("name") if a.get("opened_by") == BY_HELD else None
+        return [{"event": "reading_held", "channel": self.channels[c], "unit": self.units[c],
+                 "time": format_time(t), "readings": self.held.runs[c],
+                 "limit": self.held.limits[c], "alert_id": a["alert_id"]}
+                for c in past if self.channels[c] != own]
 
     def _held_judged(self) -> float:
         """The worst held run in the score's units: above the level by the level's size times

@@ -57,6 +57,7 @@ EVENTS = (
     "drift",  # a channel slowly left its training range and is re-centred (drift.py)
     "drift_grew",  # a reported drift's excess doubled since it was last announced
     "drift_ended",  # a reported drift is over: back inside the range, or moving too fast
+    "reading_held",  # a reading repeated past its limit while another alert was open (held.py)
     "time_jump",  # the feed's times jumped and enough rows confirmed it (clock.py): from, to
     "clock_suspect",  # the gateway's own clock reads earlier than any plausible row
     "header_changed",  # a header line mid-stream: columns remapped, or rows refused

@@ -27,13 +27,17 @@ history, not by name.
 The Judge (detector.py) hands the alert machine level + |level| x (run / limit - 1) of the
 channel with the largest ratio (level x run / limit for a positive level): a run longer than
 its limit passes the level whatever the score's sign, the alert names that channel and
-closes when the reading moves again. Runs restart after a gap or a clock reset (the readings
+closes when the reading moves again. A run that passes its limit while an alert the score,
+the CUSUM, a step or another held reading opened is open cannot open one of its own; the Judge
+says it at once as `reading_held` (channel, readings, limit, the open alert's id), once per run,
+so a frozen transmitter is not hidden behind an alert about something else until that one has
+closed and cooled down. Runs restart after a gap or a clock reset (the readings
 before it are not known to lead up to the ones after it). The limits sit in the threshold policy
 under HELD_KEY.
 """
 
 import math
-from typing import Any, Dict, Optional, Sequence
+from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
@@ -53,6 +57,7 @@ class HeldReadings:
         n = len(self.limits)
         self.runs = [0] * n
         self.last = [None] * n  # type: List[Optional[float]]
+        self.told = [False] * n  # the run past its limit was announced (newly_past)
 
     @classmethod
     def from_policy(cls, policy: Dict[str, Any], channels: int) -> "Optional[HeldReadings]":
@@ -78,10 +83,21 @@ class HeldReadings:
                 continue
             v = float(row[c])
             if math.isnan(v):
-                self.runs[c], self.last[c] = 0, None
+                self.runs[c], self.last[c], self.told[c] = 0, None, False
                 continue
-            self.runs[c] = self.runs[c] + 1 if v == self.last[c] else 1
+            held = v == self.last[c]
+            self.runs[c] = self.runs[c] + 1 if held else 1
+            self.told[c] = self.told[c] and held
             self.last[c] = v
+
+    def newly_past(self) -> List[int]:
+        """Watched channels whose run has passed its limit and was not yet announced; each is
+        announced once per run (a new reading or a blank starts a new one)."""
+        past = [c for c, lim in enumerate(self.limits)
+                if lim and self.runs[c] > lim and not self.told[c]]
+        for c in past:
+            self.told[c] = True
+        return past
 
     def worst(self) -> int:
         """The watched channel with the largest run / limit."""
@@ -96,15 +112,22 @@ class HeldReadings:
     def clear(self) -> None:
         self.runs = [0] * len(self.limits)
         self.last = [None] * len(self.limits)
+        self.told = [False] * len(self.limits)
 
     def state(self) -> Dict[str, list]:
-        return {"runs": list(self.runs), "last": list(self.last)}
+        return {"runs": list(self.runs), "last": list(self.last), "told": list(self.told)}
 
     def restore(self, d: Any) -> None:
         n = len(self.limits)
-        ok = (isinstance(d, dict) and sorted(d) == ["last", "runs"]
+        # a state from before `told`: a run already past its limit counts as announced
+        told = d.get("told") if isinstance(d, dict) else None
+        if isinstance(d, dict) and told is None and isinstance(d.get("runs"), list):
+            told = [type(r) is int and bool(lim) and r > lim
+                    for r, lim in zip(d["runs"], self.limits)]
+        ok = (isinstance(d, dict) and sorted(k for k in d if k != "told") == ["last", "runs"]
               and isinstance(d["runs"], list) and isinstance(d["last"], list)
-              and len(d["runs"]) == len(d["last"]) == n
+              and isinstance(told, list) and all(type(v) is bool for v in told)
+              and len(d["runs"]) == len(d["last"]) == len(told) == n
               and all(type(r) is int and r >= 0 for r in d["runs"])
               and all((v is None) == (r == 0) for v, r in zip(d["last"], d["runs"]))
               and all(v is None or (isinstance(v, (int, float)) and not isinstance(v, bool)
@@ -113,6 +136,7 @@ class HeldReadings:
             raise ValueError("the held-reading runs are malformed")
         self.runs = list(d["runs"])
         self.last = [None if v is None else float(v) for v in d["last"]]
+        self.told = list(told)
 
 
 # ---------------------------------------------------------------- fitted on the workstation

@@ -8,7 +8,8 @@ Topics, under BASE = <prefix>/<bundle name> (prefix default "ganlet"):
     BASE/samples       in, QoS 1: samples (or the topic given to --mqtt-in)
     BASE/alerts        out, QoS 1: alert_opened / alert_closed events
     BASE/drift         out, QoS 1: drift events
-    BASE/channels      out, QoS 1: channel_lost / channel_back events (blanks.py)
+    BASE/channels      out, QoS 1: channel_lost / channel_back events (blanks.py), reading_held
+                       (held.py)
     BASE/input_errors  out, QoS 0: input_error events
     BASE/heartbeat     out, QoS 0: heartbeat events
     BASE/status        out, QoS 1, retained: "online" once connected (and subscribed), "offline"
@@ -70,6 +71,7 @@ EVENT_TOPICS = {  # event -> (topic under BASE, QoS)
     "drift_ended": ("drift", 1),
     "channel_lost": ("channels", 1),
     "channel_back": ("channels", 1),
+    "reading_held": ("channels", 1),
     "time_jump": ("input_errors", 0),
     "input_error": ("input_errors", 0),
     "heartbeat": ("heartbeat", 0),

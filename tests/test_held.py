@@ -14,7 +14,7 @@ import pytest
 import runtime_fixtures as fx
 import skab_protocol
 
-from ganlet.runtime.alerts import BY_HELD
+from ganlet.runtime.alerts import BY_HELD, BY_SCORE
 from ganlet.runtime.detector import Detector, Judge
 from ganlet.runtime.held import ALPHA, HeldReadings, calibrate_held, channel_limit, run_lengths
 from ganlet.runtime.manifest import BundleError, load_bundle
@@ -129,6 +129,49 @@ def test_a_frozen_reading_opens_an_alert_naming_it_and_closes_when_it_moves():
     for _ in range(4):
         judge.see([0.0, 7.25])
     assert judge.held.ratio() == 1.0
+
+
+def test_a_reading_frozen_while_another_alert_is_open_is_said_at_once_once_per_run():
+    # the score holds an alert open from hop 10 to hop 150; channel b freezes at hops 40-79 and
+    # again at 90-119: each run is said when it passes its limit, naming the open alert, not
+    # hidden until that alert has closed and cooled down (stop 36)
+    judge = _judge([None, 4])
+    rng = np.random.default_rng(7)
+    held, opened = [], []
+    for k in range(200):
+        frozen = 40 <= k < 80 or 90 <= k < 120
+        judge.see([0.0, 7.25 if frozen else float(rng.standard_normal())])
+        for e in judge.step(float(k), 20.0 if 10 <= k < 150 else 1.0):
+            if e["event"] == "reading_held":
+                held.append(dict(e, k=k))
+            elif e["event"] == "alert_opened":
+                opened.append(e)
+    assert [o["opened_by"] for o in opened] == [BY_SCORE]
+    assert [h["k"] for h in held] == [44, 94]  # the fifth identical reading, once per run
+    assert all(h["channel"] == "b" and h["limit"] == 4 and h["readings"] == 5
+               and h["alert_id"] == opened[0]["alert_id"] for h in held)
+    # with no alert open the frozen reading opens its own, which names it: nothing more is said
+    judge = _judge([None, 4])
+    events = []
+    for k in range(100):
+        judge.see([0.0, 7.25 if 40 <= k < 80 else float(rng.standard_normal())])
+        events += [e["event"] for e in judge.step(float(k), 1.0)]
+    assert "reading_held" not in events and events.count("alert_opened") == 1
+
+
+def test_what_was_said_of_a_held_run_survives_a_restart():
+    judge = _judge([None, 4])
+    for _ in range(6):
+        judge.see([0.0, 7.25])
+    assert judge.held.newly_past() == [1] and judge.held.newly_past() == []
+    again = _judge([None, 4])
+    again.held.restore(json.loads(json.dumps(judge.held.state())))
+    assert again.held.newly_past() == [] and again.held.told == [False, True]
+    older = {k: v for k, v in judge.held.state().items() if k != "told"}
+    again.held.restore(older)  # a state from before `told`: a run past its limit was said
+    assert again.held.told == [False, True] and again.held.newly_past() == []
+    again.see([0.0, 7.5])  # a new reading starts a new run, not yet past
+    assert again.held.told == [False, False]
 
 
 def test_a_detector_names_the_held_channel_and_resumes_its_runs_exactly(tmp_path):
