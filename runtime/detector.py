@@ -186,17 +186,16 @@ class Judge:
     def _held_news(self, t: float) -> List[dict]:
         """`reading_held` for each channel whose run has just passed its limit while an alert
         about something else is open (held.py); with none open, the run opens its own alert."""
-        if self.held is None:
-            return []
-        past = self.held.newly_past()
         a = self.alert
-        if a is None or not self.machine.is_open:
+        if self.held is None or a is None or not self.machine.is_open:
             return []
-        own = (a.get("moved") or {}).get("name") if a.get("opened_by") == BY_HELD else None
+        own = None  # the channel whose held run opened this alert, which names it already
+        if a.get("opened_by") == BY_HELD:  # `moved` is set once the opening hop is over
+            own = (a.get("moved") or {}).get("name") or self.channels[self.held.worst()]
         return [{"event": "reading_held", "channel": self.channels[c], "unit": self.units[c],
                  "time": format_time(t), "readings": self.held.runs[c],
                  "limit": self.held.limits[c], "alert_id": a["alert_id"]}
-                for c in past if self.channels[c] != own]
+                for c in self.held.newly_past() if self.channels[c] != own]
 
     def _held_judged(self) -> float:
         """The worst held run in the score's units: above the level by the level's size times
