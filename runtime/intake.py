@@ -25,7 +25,8 @@ Time cells (our own parser, times.py; the same answers on every supported Python
                     20260302T100000+0100, 2026-03-02 (midnight), week dates 2026-W10-1 and
                     2026W101; 'T' or spaces before the time; hh, hh:mm, hh:mm:ss or hhmmss;
                     fractions after '.' or ','; zones Z, +hh:mm, +hhmm, +hh (and '-')
-    other           2026/03/02 10:00 (year first); 02/03/2026 with --dayfirst or --monthfirst
+    other           2026/03/02 10:00 (year first); 02/03/2026 with --dayfirst or --monthfirst;
+                    the 12-hour clock after a date, h:mm[:ss[.f]] AM/PM (6/1/2026 1:05:00 PM)
     refused         ordinal dates (2026-061), hour 24, leap second :60, two-digit years, month
                     names, anything before 1900 or after 9999 (epoch 1e15, 1e308, -1e11, and
                     0001-01-01T00:00+05:00 among them), and a local time the clocks skip when

@@ -10,7 +10,7 @@ intake.py's docstring; in short:
     numeric, year last  02/03/2026  02.03.2026  02-03-2026    only with a date order (dayfirst
                         or monthfirst): 03/04 cannot be read safely without one
     time of day         T or spaces, then hh[:mm[:ss[.f]]] or hh[mm[ss[.f]]]; ',' or '.' before
-                        the fraction
+                        the fraction; or the 12-hour clock, h:mm[:ss[.f]] AM/PM (1:05 PM)
     zone                Z  +hh:mm  +hhmm  +hh (also '-'), optionally after one space; without a
                         zone the time is read in the stream's zone (UTC unless told otherwise)
 
@@ -45,6 +45,10 @@ _FRAC = r"(?:[.,](?P<frac>[0-9]+))?"
 _TIMES = (
     re.compile(r"(?P<h>[0-9]{2})(?::(?P<m>[0-9]{2})(?::(?P<s>[0-9]{2})" + _FRAC + ")?)?" + _ZONE),
     re.compile(r"(?P<h>[0-9]{2})(?:(?P<m>[0-9]{2})(?:(?P<s>[0-9]{2})" + _FRAC + ")?)?" + _ZONE),
+    # the 12-hour clock of spreadsheet and US exports: 1:05 PM, 12:00:00 AM (one or two hour
+    # digits, minutes always, AM or PM in any case, after at most one space)
+    re.compile(r"(?P<h>[0-9]{1,2}):(?P<m>[0-9]{2})(?::(?P<s>[0-9]{2})" + _FRAC + ")? ?"
+               r"(?P<half>[AaPp][Mm])" + _ZONE),
 )
 _SEPARATOR = re.compile(r"[Tt]| +")
 # the form loggers write most, read in one match (the general path gives the same answer)
@@ -237,9 +241,21 @@ def _time_fields(rest: str, text: str):
             m = pattern.fullmatch(body)
             if m:
                 frac = float("0." + m.group("frac")) if m.group("frac") else 0.0
-                return (int(m.group("h")), int(m.group("m") or 0), int(m.group("s") or 0), frac,
+                return (_hour(m, text), int(m.group("m") or 0), int(m.group("s") or 0), frac,
                         _offset(m.group("zone")))
-    raise TimeError(f"time {text[:40]!r}: the time of day is not hh:mm[:ss[.f]][zone]")
+    raise TimeError(f"time {text[:40]!r}: the time of day is not hh:mm[:ss[.f]][zone] or "
+                    "h:mm[:ss] AM/PM")
+
+
+def _hour(m, text: str) -> int:
+    """The hour of a time-of-day match on the 24-hour clock: 12 AM is 0, 12 PM is 12, 1 PM 13."""
+    h = int(m.group("h"))
+    half = (m.groupdict().get("half") or "").upper()
+    if not half:
+        return h
+    if not 1 <= h <= 12:
+        raise TimeError(f"time {text[:40]!r}: an hour of the 12-hour clock is 1 to 12")
+    return h % 12 + (12 if half == "PM" else 0)
 
 
 def _offset(zone: Optional[str]) -> Optional[float]:

@@ -97,6 +97,19 @@ def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_r
     assert frame.report.duplicates == 40 and frame.channels == ["flow", "power", "temp"]
 
 
+def test_a_12_hour_clock_export_trains_on_the_times_pandas_reads(write_csv):
+    # a US spreadsheet export: 6/1/2025 1:05:00 PM; refused before stop 36 (bad time of day)
+    df = correlated_series(300)
+    df["time"] = df["time"].dt.strftime("%m/%d/%Y %I:%M:%S %p")
+    path = write_csv(df)
+    with pytest.raises(IntakeError, match="--monthfirst"):
+        load_frame(path)  # the date's order is still asked for
+    frame = load_frame(path, IntakeOptions(date_order="monthfirst"))
+    # reference: pandas.to_datetime with the C format's %I (12-hour clock) and %p
+    expected = pd.to_datetime(pd.read_csv(path)["time"], format="%m/%d/%Y %I:%M:%S %p")
+    assert list(pd.DatetimeIndex(frame.times)) == list(expected)
+
+
 def test_text_columns_without_decimal_commas_keep_the_general_message(write_csv):
     df = correlated_series(50)
     df["flow"] = "off"                   # text, but not numbers with a decimal comma

@@ -146,6 +146,26 @@ def test_numeric_dates_need_an_order_and_read_as_told():
     assert parse_time("2025/11/10 08:30") == day  # year first: no order needed
 
 
+def test_the_12_hour_clock_reads_as_strptime_reads_it():
+    # reference: the standard library's strptime with %I and %p (the C 12-hour clock), over two
+    # days minute by minute (every 12 AM / 12 PM boundary), as spreadsheets write it: leading
+    # zeros dropped, seconds or not, AM/PM in either case, with or without the space
+    start = datetime(2025, 6, 1)
+    for k in range(0, 2 * 1440, 7):
+        t = start + pd.Timedelta(minutes=k).to_pytimedelta()
+        expected = t.replace(tzinfo=timezone.utc).timestamp()
+        full = t.strftime("%m/%d/%Y %I:%M:%S %p")
+        assert datetime.strptime(full, "%m/%d/%Y %I:%M:%S %p") == t
+        short = f"{t.month}/{t.day}/{t.year} {int(t.strftime('%I'))}:{t.minute:02d} "
+        for cell in (full, short + t.strftime("%p"), short + t.strftime("%p").lower(),
+                     short.rstrip() + t.strftime("%p")):
+            assert parse_time(cell, Dialect(date_order="monthfirst")) == expected, cell
+    assert parse_time("2025-06-01 1:05 PM +01:00") == parse_time("2025-06-01T12:05:00Z")
+    for cell in ("6/1/2025 0:30 AM", "6/1/2025 13:00 PM", "6/1/2025 12:61 PM", "2025-06-01 9:05"):
+        with pytest.raises(RowError):
+            parse_time(cell, Dialect(date_order="monthfirst"))
+
+
 def test_decimal_comma_epoch_seconds():
     assert parse_time("1772445600,5", Dialect(sep=";", decimal=",")) == 1772445600.5
     assert parse_time("2026-03-02T10:00:00,5Z") == 1772445600.5  # ISO allows ',' anyway
@@ -241,6 +261,7 @@ def test_python39_gateway_reads_times_exactly_as_the_host(tmp_path):
         "2026-03-02T10:00:00+0100", "2026-03-02T10:00:00.5Z", "20260302T000000Z", "2026-W10-1",
         "2026W101", "2026-03-29T02:30:00", "2026-10-25T02:30:00", "2026-11-01T01:30:00",
         "10/11/2025 08:30", "10.11.2025", "1772445600,5", "2026-03-02 10:00 +01:00",
+        "6/1/2025 12:00:00 AM", "6/1/2025 12:30 pm", "2025-06-01 1:05PM +01:00", "6/1/2025 0:30 AM",
     ] + list(_mutations(random.Random(5), 1500))
     host = _table([sys.executable], cells, tmp_path)
     py39 = _table(list(gw.argv_prefix), cells, tmp_path, env=gw.env)
