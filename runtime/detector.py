@@ -106,6 +106,12 @@ class Judge:
     def is_open(self) -> bool:
         return self.machine.is_open
 
+    @property
+    def cause(self) -> Optional[str]:
+        """What opened the alert on record (alerts.OPENED_BY); None with none, or from a state
+        older than the key."""
+        return None if self.alert is None else self.alert.get("opened_by")
+
     def step(self, t: float, score: float, parts: Optional[np.ndarray] = None,
              drifting: bool = False, steps: Optional[np.ndarray] = None,
              state_change: bool = False) -> List[dict]:
@@ -155,7 +161,7 @@ class Judge:
                 self.cusum.clear()
             else:
                 self.cusum.add(score, state_change)
-        by = None if self.alert is None else self.alert.get("opened_by")
+        by = self.cause
         step = self._in_score_units(worst_step) if worst_step > 0 else -np.inf
         if by == BY_SCORE:
             # closes when the score falls back and no channel is a step: a fault's level can
@@ -180,8 +186,7 @@ class Judge:
         off-delay of the same length: alarm-management common practice, from memory). The
         score and the CUSUM move by degrees and close on their first hop below the deadband:
         an off-delay there lengthened every alert and cost more false rows than it found."""
-        by = None if self.alert is None else self.alert.get("opened_by")
-        return self.machine.min_hops if by in (BY_STEP, BY_HELD) else 1
+        return self.machine.min_hops if self.cause in (BY_STEP, BY_HELD) else 1
 
     def _held_news(self, t: float) -> List[dict]:
         """`reading_held` for each channel whose run has just passed its limit while an alert
@@ -190,7 +195,7 @@ class Judge:
         if self.held is None or a is None or not self.machine.is_open:
             return []
         own = None  # the channel whose held run opened this alert, which names it already
-        if a.get("opened_by") == BY_HELD:  # `moved` is set once the opening hop is over
+        if self.cause == BY_HELD:  # `moved` is set once the opening hop is over
             own = (a.get("moved") or {}).get("name") or self.channels[self.held.worst()]
         return [{"event": "reading_held", "channel": self.channels[c], "unit": self.units[c],
                  "time": format_time(t), "readings": self.held.runs[c],
@@ -238,7 +243,7 @@ class Judge:
         at least the average (all False when nothing is open or pending, or the open alert is
         the CUSUM's: drift.py says why)."""
         pending = self.machine.is_open or self.machine.run_len > 0
-        crept = self.alert is not None and self.alert.get("opened_by") == BY_CUSUM
+        crept = self.cause == BY_CUSUM
         if not pending or not self.recent or crept:
             return np.zeros(len(self.channels), dtype=bool)
         last = self.recent[-1][2]
