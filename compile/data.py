@@ -515,6 +515,22 @@ def note_text_cells(cells: pd.Series, text: pd.Series, name, notes: list) -> Non
         warnings.warn(notes[-1], stacklevel=3)
 
 
+def counts_rows(cells: pd.Series) -> bool:
+    """The column is k, k+1, k+2, ... in file order: a row number (the index column pandas'
+    to_csv writes, with an empty header read as "Unnamed: 0", or a sample id). It tells the
+    network only where a row sits, and on the gateway every new row is a level training never
+    saw: a drift from the first hop. A counter that measures something (a totaliser, a cycle
+    count) does not step by exactly one every row."""
+    if len(cells) < 3 or not pd.api.types.is_numeric_dtype(cells) or cells.isna().any():
+        return False
+    steps = np.diff(cells.to_numpy(np.float64))
+    return bool((steps == 1.0).all())
+
+
+def _first_counts(cells: pd.Series) -> str:
+    return ", ".join(f"{v:g}" for v in cells.to_numpy(np.float64)[:3])
+
+
 def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
                   notes: list) -> tuple:
     """(channels, excluded columns): --channels as named, else every column of numbers that
@@ -543,11 +559,17 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
         refuse_grouped_digits(texts, opts.decimal, path)
         text = [c for c in candidates if not mostly_numbers(df[c], texts[c])]
         refuse_decimal_commas(df, text, path)
-        channels = [c for c in candidates if c not in text]
+        counters = [c for c in candidates if c not in text and counts_rows(df[c])]
+        channels = [c for c in candidates if c not in text and c not in counters]
         for c in text:
             notes.append(f"column {str(c)!r} holds text, not numbers: left out")
             warnings.warn(notes[-1], stacklevel=3)
-        excluded += text
+        for c in counters:
+            notes.append(f"column {str(c)!r} counts the rows ({_first_counts(df[c])}, ...): a "
+                         "row number, not a measurement: left out (name it in --channels to "
+                         "keep it)")
+            warnings.warn(notes[-1], stacklevel=3)
+        excluded += text + counters
     for c in channels:
         note_text_cells(df[c], texts[c], c, notes)
     if not channels:

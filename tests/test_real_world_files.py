@@ -87,6 +87,31 @@ def test_one_reading_per_row_is_refused_with_the_pivot_that_fixes_it(write_csv, 
                                rtol=1e-12)
 
 
+@pytest.mark.parametrize("counter", ["pandas index", "sample number"])
+def test_a_row_number_column_is_left_out_and_said(tmp_path, counter):
+    # reference: pandas.DataFrame.to_csv writes the frame's index as a first column with an
+    # empty header (index=True is its default), and pandas.read_csv names it "Unnamed: 0";
+    # files shared as CSV often carry it. It was trained on as a channel: 0, 1, 2 ... is a
+    # level the gateway never saw again, a drift from the first hop
+    df = correlated_series(300)
+    rng = np.random.default_rng(0)
+    df["strokes"] = np.cumsum(rng.integers(0, 3, len(df)))  # a measured count: steps of 0-2
+    path = tmp_path / "data.csv"
+    if counter == "pandas index":
+        df.to_csv(path)
+    else:
+        df.insert(0, "sample", np.arange(1, len(df) + 1))
+        df.to_csv(path, index=False)
+    name = pd.read_csv(path).columns[0]
+    assert name == ("Unnamed: 0" if counter == "pandas index" else "sample")
+    with pytest.warns(UserWarning, match=f"'{name}' counts the rows .* a row number"):
+        frame = load_frame(path)
+    assert frame.channels == ["flow", "power", "temp", "strokes"]
+    assert name in frame.report.excluded
+    kept = load_frame(path, IntakeOptions(channels=[name, "flow"]))  # named, it is a channel
+    np.testing.assert_array_equal(kept.values[:, 0], pd.read_csv(path)[name].to_numpy())
+
+
 def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
     # a logger that wrote a few rows twice: averaged and said, as before
     df = correlated_series(300)
