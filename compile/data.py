@@ -7,6 +7,7 @@ inside a segment, and no window that spans a long gap.
 
 from __future__ import annotations
 
+import copy
 import csv
 import io
 import json
@@ -29,7 +30,7 @@ from ganlet.runtime.intake import (
     decode_text,
     digit_grouped,
 )
-from ganlet.runtime.times import MAX_TIME, MIN_TIME
+from ganlet.runtime.times import DATE_ORDERS, MAX_TIME, MIN_TIME
 
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
 LABEL_NAMES = ("anomaly", "label", "labels", "changepoint", "fault", "target", "is_anomaly",
@@ -589,7 +590,8 @@ def timed_rows(df: pd.DataFrame, time_col, channels: list, dialect, notes: list)
         first = int(np.flatnonzero(bad_time)[0])
         raise IntakeError(f"column {time_col!r}: {int(bad_time.sum())} of {len(df)} times cannot "
                           f"be parsed (first at data row {first + 1}: {str(raw_times.iloc[first])!r}); "
-                          f"{time_problem(raw_times.iloc[first], dialect)}; use ISO 8601 "
+                          f"{time_problem(raw_times.iloc[first], dialect)}"
+                          f"{date_order_hint(raw_times, dialect)}; use ISO 8601 "
                           "(2026-03-02T10:00:00) or epoch seconds, or pick another column with "
                           "--time-col")
     values = df[channels].apply(as_numbers, decimal=dialect.decimal).to_numpy(
@@ -992,6 +994,25 @@ def epoch_to_datetime(seconds: np.ndarray) -> np.ndarray:
         np.int64)
     out[ok] = ns.astype("datetime64[ns]")
     return out
+
+
+def date_order_hint(raw: pd.Series, dialect: Dialect) -> str:
+    """Where no date order was given and the column itself settles it (a day past 12 in one
+    field: 28/12/2015 is day first), which flag reads it; "" otherwise. Still asked, not
+    assumed: the gateway reads one row at a time, and 03/04/2026 alone says nothing."""
+    if dialect.date_order is not None or pd.api.types.is_numeric_dtype(raw):
+        return ""
+    cells = raw.dropna().astype(str)
+    read = {}
+    for order in DATE_ORDERS:
+        other = copy.copy(dialect)
+        other.date_order = order
+        read[order] = bool(parse_times(cells, other).notna().all())
+    if read["dayfirst"] == read["monthfirst"]:
+        return ""
+    order = "dayfirst" if read["dayfirst"] else "monthfirst"
+    return (f" (this column reads only as {order.replace('first', ' first')}: train and stream "
+            f"with --{order})")
 
 
 def time_problem(cell, dialect: Dialect) -> str:

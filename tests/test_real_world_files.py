@@ -112,6 +112,26 @@ def test_a_row_number_column_is_left_out_and_said(tmp_path, counter):
     np.testing.assert_array_equal(kept.values[:, 0], pd.read_csv(path)[name].to_numpy())
 
 
+@pytest.mark.parametrize("order, form", [("dayfirst", "%d/%m/%Y %H:%M:%S"),
+                                         ("monthfirst", "%m/%d/%Y %H:%M:%S")])
+def test_a_date_column_that_settles_its_own_order_names_the_flag(write_csv, order, form):
+    # numeric dates with the year last are still asked for (03/04/2026 alone says nothing), but
+    # a column with a day past 12 reads only one way, and the error now says which. Reference:
+    # the cells are datetime.strftime's, and pandas.to_datetime(format=...) reads them back
+    df = correlated_series(30 * 24, period_s=3600)  # 5 Jan .. 3 Feb: days past 12
+    df["time"] = df["time"].dt.strftime(form)
+    path = write_csv(df)
+    with pytest.raises(IntakeError, match=f"reads only as .* with --{order}"):
+        load_frame(path)
+    frame = load_frame(path, IntakeOptions(date_order=order))
+    expected = pd.to_datetime(pd.read_csv(path)["time"], format=form)
+    np.testing.assert_array_equal(frame.row_times, expected.to_numpy())
+    early = df.iloc[:24 * 7].copy()  # 5 .. 11 January: either order reads every cell
+    with pytest.raises(IntakeError) as err:
+        load_frame(write_csv(early, name="early.csv"))
+    assert "only you know" in str(err.value) and "reads only as" not in str(err.value)
+
+
 def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
     # a logger that wrote a few rows twice: averaged and said, as before
     df = correlated_series(300)
