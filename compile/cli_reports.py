@@ -62,7 +62,13 @@ def verify_cmd(
 def evaluate_cmd(
     source: Path = typer.Argument(..., help="Model directory or bundle folder."),
     data: Path = typer.Argument(..., help="Sensor data (CSV or Parquet)."),
-    incidents: Path = typer.Option(..., "--incidents", help="CSV start,end[,kind] (inclusive)."),
+    incidents: Optional[Path] = typer.Option(
+        None, "--incidents", help="CSV start,end[,kind] (inclusive). Default: the incidents "
+        "the data file's own label column marks (see --labels)."),
+    labels: Optional[str] = typer.Option(
+        None, "--labels", help="Without --incidents: the data file's column that marks "
+        "incident rows (a number other than 0, or text other than its most common value); "
+        "default: its one label-like column (anomaly, label, is_anomaly ...)."),
     start: Optional[str] = typer.Option(
         None, "--from", help="First evaluated point: a row number or a time (default: all)."),
     threshold: str = typer.Option(
@@ -82,11 +88,14 @@ def evaluate_cmd(
     from ganlet.compile.cli import tidy_warnings
 
     eval_from = int(start) if start is not None and start.isdigit() else start
+    if incidents is not None and labels is not None:
+        _fail("give --incidents FILE or --labels COLUMN, not both")
     with tidy_warnings():
         result = _run(lambda: e.evaluate(source, data, incidents, eval_from=eval_from,
                                          threshold=threshold,
                                          baselines=() if no_baselines else e.BASELINES,
-                                         model_dir=model, alarms_per_week=alarms_per_week))
+                                         model_dir=model, alarms_per_week=alarms_per_week,
+                                         labels=labels))
         typer.echo(result.summary())
         if json_out:
             e.write_json(result, json_out)

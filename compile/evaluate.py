@@ -49,13 +49,17 @@ from ganlet.compile.calibrate import (
     risk_per_hop,
 )
 from ganlet.compile.data import (
+    LABEL_NAMES,
     Frame,
     IntakeError,
     IntakeOptions,
     RobustScaler,
+    as_numbers,
+    find_time_column,
     grid_index,
     load_frame,
     parse_times,
+    read_table,
     runs,
 )
 from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
@@ -89,6 +93,39 @@ def read_incidents(path) -> pd.DataFrame:
     kind = df["kind"].astype(str) if "kind" in df.columns else pd.Series(["incident"] * len(df))
     return pd.DataFrame({"start": start.to_numpy(), "end": end.to_numpy(),
                          "kind": kind.to_numpy()})
+
+
+def incidents_in_file(path: Path, column: Optional[str], options: IntakeOptions) -> tuple:
+    """(incidents, the column read) from the data file's own label column: each run of labelled
+    rows, in time order, is one incident from its first row's time to its last's. A row is
+    labelled when its cell is a number other than 0, or text other than the column's most
+    common value (NORMAL, Normal ...: a labelled file is mostly normal); a blank is not.
+    `column` None: the one label-like column the file holds (data.LABEL_NAMES)."""
+    df = read_table(Path(path), options.sep, options.decimal)
+    if column is None:
+        found = [c for c in df.columns if str(c).strip().lower() in LABEL_NAMES]
+        if len(found) != 1:
+            held = f"holds {', '.join(map(repr, found))}" if found else "holds no label column"
+            raise IntakeError(f"{path} {held}: give the incidents with --incidents FILE, or "
+                              "the column that marks them with --labels COLUMN")
+        column = found[0]
+    elif column not in df.columns:
+        raise IntakeError(f"--labels {column!r}: no such column in {path}; columns are "
+                          f"{', '.join(map(str, df.columns))}")
+    times = parse_times(df[find_time_column(df, options.time_col)], options.dialect())
+    cells = df[column]
+    numbers = as_numbers(cells, options.decimal)
+    if numbers.notna().sum() >= 0.5 * cells.notna().sum():
+        labelled, kinds = numbers.fillna(0).to_numpy() != 0, pd.Series(str(column), df.index)
+    else:
+        text = cells.astype(str).str.strip().where(cells.notna())
+        labelled, kinds = (text.notna() & (text != text.mode().iloc[0])).to_numpy(), text
+    order = np.argsort(times.to_numpy(), kind="stable")
+    t, flagged, kinds = times.to_numpy()[order], labelled[order], kinds.to_numpy()[order]
+    flagged &= ~pd.isna(t)
+    spans = runs(flagged)
+    return pd.DataFrame({"start": [t[a] for a, _ in spans], "end": [t[b - 1] for _, b in spans],
+                         "kind": [str(kinds[a]) for a, _ in spans]}), str(column)
 
 
 def incident_labels(times: pd.DatetimeIndex, incidents: pd.DataFrame) -> np.ndarray:
@@ -436,21 +473,32 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
              eval_mask: Optional[np.ndarray] = None, threshold: str = "pot",
              baselines: Sequence[str] = BASELINES, teacher: bool = True,
              model_dir: Optional[Path] = None,
-             alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK) -> EvalResult:
+             alarms_per_week: float = DEFAULT_ALARMS_PER_WEEK,
+             labels: Optional[str] = None) -> EvalResult:
     """source: a model directory or a bundle (then model_dir, its teacher's folder, adds the
-    teacher and the baselines). eval_from: first evaluated row (int) or time (str); eval_mask:
+    teacher and the baselines). incidents: a start,end[,kind] CSV or DataFrame, or None to read
+    them from the data file's label column (`labels`, or the one label-like column it holds:
+    incidents_in_file). eval_from: first evaluated row (int) or time (str); eval_mask:
     explicit grid points to evaluate (overrides eval_from); baselines: which of BASELINES to
     run (none: ()). threshold and alarms_per_week are
     for a model directory (a bundle uses its own)."""
     bundle, model, rule, notes = _source(source, model_dir, threshold, alarms_per_week)
     contract = bundle if bundle is not None else model
-    frame: Frame = load_frame(data, IntakeOptions(
+    options = IntakeOptions(
         time_col=contract.time_column if bundle is not None else model.time_col,
         channels=list(contract.channels), period_s=contract.period_s,
         max_fill_periods=(bundle.max_gap_periods if bundle is not None
                           else model.max_fill_periods),
-        tz=(bundle.manifest.get("time_zone") if bundle is not None else model.time_zone)))
-    inc = incidents if isinstance(incidents, pd.DataFrame) else read_incidents(incidents)
+        tz=(bundle.manifest.get("time_zone") if bundle is not None else model.time_zone))
+    frame: Frame = load_frame(data, options)
+    if isinstance(incidents, pd.DataFrame):
+        inc = incidents
+    elif incidents is not None:
+        inc = read_incidents(incidents)
+    else:
+        inc, column = incidents_in_file(data, labels, options)
+        notes.append(f"incidents: {len(inc)} run(s) of labelled rows in the file's column "
+                     f"{column!r}")
     y = incident_labels(frame.times, inc)
     evaluated = _evaluated(frame, eval_mask, eval_from)
     notes = notes + blank_channel_note(frame, evaluated)

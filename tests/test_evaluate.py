@@ -173,6 +173,49 @@ def test_bundle_cli_html_json(synthetic, tmp_path):
 
 
 
+@pytest.mark.parametrize("label", ["numbers", "text"])
+def test_incidents_are_read_from_the_files_own_label_column(synthetic, tmp_path, label):
+    # a labelled file (a 0/1 `anomaly` column as SKAB's, a status column NORMAL / BROKEN as
+    # many plant exports) is evaluated without writing an incidents file; reference: the
+    # labels as pandas.read_csv reads them, and each run of them one incident
+    df = pd.read_csv(synthetic["data"])
+    if label == "numbers":
+        column, kwargs = "anomaly", {}
+        df[column] = synthetic["labels"].astype(int)
+    else:
+        column, kwargs = "status", {"labels": "status"}
+        df[column] = np.where(synthetic["labels"], "BROKEN", "NORMAL")
+    data = tmp_path / "labelled.csv"
+    df.to_csv(data, index=False)
+    cells = pd.read_csv(data)[column]
+    flagged = (cells != 0) if label == "numbers" else (cells != "NORMAL")
+    r = evaluate(synthetic["bundle"], data, None, eval_from=500, baselines=(), **kwargs)
+    np.testing.assert_array_equal(r.labels, flagged.to_numpy())
+    starts = int((flagged & ~flagged.shift(fill_value=False)).sum())
+    assert len(r.incidents) == starts >= 1
+    assert f"incidents: {starts} run(s) of labelled rows in the file's column '{column}'" in r.notes
+    if label == "text":
+        assert set(r.incidents["kind"]) == {"BROKEN"}
+    by_file = evaluate(synthetic["bundle"], synthetic["data"], synthetic["incidents"],
+                       eval_from=500, baselines=())
+    assert r.methods["bundle"].metrics == by_file.methods["bundle"].metrics
+    # two label columns, or one that is not there: say what to give
+    app = typer.Typer()
+    register(app)
+    df["changepoint"] = 0
+    df.to_csv(data, index=False)
+    out = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(data)])
+    if label == "numbers":
+        assert out.exit_code == 2 and "'anomaly', 'changepoint'" in out.output
+        assert "--labels COLUMN" in out.output
+    out = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(data),
+                                   "--labels", "nope"])
+    assert out.exit_code == 2 and "--labels 'nope': no such column" in out.output
+    out = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(data), "--labels",
+                                   column, "--incidents", str(synthetic["incidents"])])
+    assert out.exit_code == 2 and "not both" in out.output
+
+
 def test_evaluate_reads_a_windows_1252_file_and_says_so_once(synthetic, tmp_path):
     # The data read three times (the workstation's frame, the gateway's feed, the report's
     # facts): its note came three times, as Python warnings with source lines.
