@@ -95,6 +95,8 @@ class IntakeReport:
     channel_ranges: dict       # name -> [min, max] in raw units
     warnings: list = field(default_factory=list)
     time_zone: str = "UTC"     # the zone zone-less times were read in
+    decimal: str = "."         # the decimal mark numbers were read with
+    date_order: Optional[str] = None  # how numeric dates with the year last were read
     # name -> grid points where the channel alone is blank (the row has other readings)
     blank_cells: dict = field(default_factory=dict)
     # name -> the blank run, in grid points (rows missing whole counted in), that 19 in 20 of
@@ -471,7 +473,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         grid_points=len(grid), unparsable_times=unparsable, out_of_order=out_of_order,
         duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
         long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
-        time_zone=dialect.zone_name,
+        time_zone=dialect.zone_name, decimal=dialect.decimal, date_order=dialect.date_order,
         blank_cells={str(c): int(n) for c, n in zip(channels, blank)}, blank_runs=blank_runs,
     )
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report,
@@ -1026,8 +1028,9 @@ def time_problem(cell, dialect: Dialect) -> str:
 
 def grid_index(frame: Frame, times) -> np.ndarray:
     """The grid row each timestamp falls on (rounded to the nearest period); text times are read
-    in the frame's zone."""
-    parsed = parse_times(pd.Series(times), Dialect(tz=frame.report.time_zone))
+    in the frame's zone and date order."""
+    parsed = parse_times(pd.Series(times), Dialect(tz=frame.report.time_zone,
+                                                   date_order=frame.report.date_order))
     if parsed.isna().any():
         raise IntakeError(f"{int(parsed.isna().sum())} times cannot be parsed")
     stamps = parsed.to_numpy()

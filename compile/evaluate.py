@@ -67,6 +67,7 @@ from ganlet.compile.verify import alert_events, clean_json, replay_alerts, repla
 from ganlet.runtime.alerts import default_alerting
 from ganlet.runtime.cusum import MIN_EXCURSIONS
 from ganlet.runtime.drift import STEP_TEXT, action_summary
+from ganlet.runtime.manifest import trained_dialect
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
 BASELINES = ("IsolationForest", "GaussianMixture", "OneClassSVM", "rolling z-score")
@@ -484,12 +485,13 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     for a model directory (a bundle uses its own)."""
     bundle, model, rule, notes = _source(source, model_dir, threshold, alarms_per_week)
     contract = bundle if bundle is not None else model
+    written = (trained_dialect(bundle.manifest) if bundle is not None else
+               {"tz": model.time_zone, "decimal": model.decimal, "date_order": model.date_order})
     options = IntakeOptions(
         time_col=contract.time_column if bundle is not None else model.time_col,
         channels=list(contract.channels), period_s=contract.period_s,
         max_fill_periods=(bundle.max_gap_periods if bundle is not None
-                          else model.max_fill_periods),
-        tz=(bundle.manifest.get("time_zone") if bundle is not None else model.time_zone))
+                          else model.max_fill_periods), **written)
     frame: Frame = load_frame(data, options)
     if isinstance(incidents, pd.DataFrame):
         inc = incidents
@@ -504,7 +506,8 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     notes = notes + blank_channel_note(frame, evaluated)
     methods, capture = {}, None
     with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
-        feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp))
+        feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp),
+                           options.decimal)
         if bundle is not None:
             methods["bundle"], capture = gateway_method(bundle, feed, frame, Path(tmp),
                                                         rule.kind)

@@ -24,17 +24,20 @@ class UnusableInput(ValueError):
     """The inputs cannot be compared at all (exit code 2); the message says why."""
 
 
-def gateway_csv(data: Path, time_col: str, channels: Sequence[str], workdir: Path) -> Path:
-    """DATA as the gateway reads it (comma CSV, header, one row per sample, rows in file order).
-    A comma CSV is passed as is; other delimiters or Parquet are rewritten row for row."""
+def gateway_csv(data: Path, time_col: str, channels: Sequence[str], workdir: Path,
+                decimal: str = ".") -> Path:
+    """DATA as run_bundle feeds it to the gateway (comma CSV, header, one row per sample, rows in
+    file order, numbers with a decimal point: run_bundle says --decimal .). A comma CSV is
+    passed as is; other delimiters, a decimal comma or Parquet are rewritten row for row, the
+    time cells as they were."""
     data = Path(data)
-    if data.suffix.lower() == ".csv":
+    if data.suffix.lower() == ".csv" and decimal == ".":
         with open(data, encoding="utf-8", errors="replace") as fh:
             header = fh.readline()
         cells = [c.strip().strip('"') for c in header.split(",")]
         if time_col in cells and all(c in cells for c in channels):
             return data
-    table = read_table(data, None)
+    table = read_table(data, None, decimal)
     missing = [c for c in [time_col, *channels] if c not in table.columns]
     if missing:
         raise IntakeError(f"{data}: column(s) {', '.join(missing)} the bundle needs are absent")
@@ -70,7 +73,8 @@ def run_bundle(bundle_dir: Path, feed: Path, out_dir: Path, backend: str = "nump
         stale.unlink(missing_ok=True)
     cmd = [sys.executable, str(Path(bundle_dir) / "run.py"), "stream", "--input", str(feed),
            "--scores-out", str(scores), "--backend", backend, "--score-every", "0",
-           "--heartbeat", "0", "--checkpoint-every", "0", "--skip-signature", "--replay", *extra]
+           "--heartbeat", "0", "--checkpoint-every", "0", "--skip-signature", "--replay",
+           "--decimal", ".", *extra]
     proc = subprocess.run(cmd, capture_output=True, text=True)
     (out_dir / "events.jsonl").write_text(proc.stdout)
     if proc.returncode != 0:

@@ -402,6 +402,7 @@ def bundle_manifest(model: TrainedModel, plan: StudentPlan, board: Board, cal: C
                  "generator": plan.generator_hidden},
         score=cal.score, threshold=cal.policy, alerting=cal.alerting, drift=cal.drift,
         false_alarms=cal.false_alarms, time_zone=model.time_zone,
+        decimal_mark=model.decimal, date_order=model.date_order,
         board={"name": board.name, "cpu_class": board.cpu_class,
                "budget": {"storage_kb": board.storage_budget_kb, "ram_mb": board.ram_budget_mb,
                           "hop_ms": plan.hop_seconds_budget * 1e3,

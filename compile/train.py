@@ -52,6 +52,8 @@ class TrainedModel:
     segments: list = field(default_factory=list)
     max_fill_periods: int = 5
     time_zone: str = "UTC"             # zone-less times were read in this zone (--tz)
+    decimal: str = "."                 # numbers were written with this decimal mark (--decimal)
+    date_order: Optional[str] = None   # numeric dates were read in this order (--dayfirst ...)
 
     def segments_of(self, span: tuple) -> list:
         """Gap-free segments inside a span (fit or calibration) of the kept series."""
@@ -95,7 +97,8 @@ def train(frame: Frame, spans: Spans, config: TeacherConfig,
         summary=frame.report.to_json(), history=history, series=series,
         raw=np.asarray(frame.values[:end], np.float64),
         segments=segments_in(series, 0, end), max_fill_periods=max_fill_periods,
-        time_zone=frame.report.time_zone,
+        time_zone=frame.report.time_zone, decimal=frame.report.decimal,
+        date_order=frame.report.date_order,
     )
 
 
@@ -274,6 +277,7 @@ def save_model(model: TrainedModel, out: Path) -> Path:
         "channels": model.channels, "units": model.units, "period_s": model.period_s,
         "time_col": model.time_col, "spans": model.spans.to_json(),
         "max_fill_periods": model.max_fill_periods, "time_zone": model.time_zone,
+        "decimal": model.decimal, "date_order": model.date_order,
         "segments": [list(s) for s in model.segments],
     })
     arrays = {"series": model.series.astype(np.float32)}
@@ -307,7 +311,8 @@ def load_model(path: Path) -> TrainedModel:
         history=json.loads((path / "history.json").read_text()), series=series, raw=raw,
         segments=[tuple(s) for s in meta["segments"]],
         max_fill_periods=meta.get("max_fill_periods", 5),
-        time_zone=meta.get("time_zone", "UTC"),
+        time_zone=meta.get("time_zone", "UTC"), decimal=meta.get("decimal", "."),
+        date_order=meta.get("date_order"),
     )
 
 

@@ -43,7 +43,13 @@ from ganlet.compile.gateway import (
 from ganlet.runtime.clock import JUMP, REFUSE, Timeline
 from ganlet.runtime.detector import Detector, Judge
 from ganlet.runtime.intake import Dialect, RowError
-from ganlet.runtime.manifest import PARITY_TOLERANCES, Bundle, BundleError, load_bundle
+from ganlet.runtime.manifest import (
+    PARITY_TOLERANCES,
+    Bundle,
+    BundleError,
+    load_bundle,
+    trained_dialect,
+)
 from ganlet.runtime.scorer import NetworkScorer, make_scorer
 from ganlet.runtime.sources import CsvSource
 from ganlet.runtime.thresholds import HELD_KEY
@@ -152,7 +158,8 @@ class Replay:
 def replay_feed(bundle: Bundle, scorer, feed: Path,
                 device_scores: Optional[dict] = None) -> Replay:
     """Feed a CSV through runtime.detector.Detector as `run.py stream --replay` does, with
-    `scorer`: the bundle's time zone, and jumps in time held until confirmed (clock.Timeline).
+    `scorer`: the bundle's time zone and date order, and jumps in time held until confirmed
+    (clock.Timeline).
     With `device_scores` ({hop time in epoch milliseconds: score}) the Judge takes the device's
     score at each of its hops instead of the scorer's, while drift, steps, state changes and
     held readings still come from the rows: does the device's alert column follow from its
@@ -180,7 +187,7 @@ def replay_feed(bundle: Bundle, scorer, feed: Path,
             return
         hops.extend(e for e in events if e["event"] == "score")
 
-    dialect = Dialect(tz=bundle.manifest.get("time_zone"))
+    dialect = Dialect(**{**trained_dialect(bundle.manifest), "decimal": "."})  # gateway_csv's
     with open(feed, "rb") as fh:
         for rec in CsvSource(fh, bundle.time_column, bundle.channels, dialect=dialect):
             if rec.values is None:  # blank, header or refused line
@@ -398,7 +405,8 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
     tol = Tolerances.from_manifest(bundle.manifest, tolerances)
     notes = []
     with tempfile.TemporaryDirectory(prefix="ganlet-verify-") as tmp:
-        feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp))
+        feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp),
+                           trained_dialect(bundle.manifest)["decimal"])
         if device_scores is None:
             device = read_scores(run_bundle(bundle.dir, feed, Path(tmp) / "gateway").scores)
             source = "workstation run of the bundle's run.py stream (numpy backend)"

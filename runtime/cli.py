@@ -27,7 +27,7 @@ from .clock import BACKLOG_DAYS, CONFIRM_ROWS, MAX_AHEAD_S
 from .cusum import STATE_CHANGE_KEY
 from .drift import STEP_TEXT, action_summary
 from .intake import DECIMALS, Dialect
-from .manifest import BundleError, load_bundle
+from .manifest import BundleError, load_bundle, trained_dialect
 from .scorer import BACKENDS, make_scorer
 from .thresholds import extrapolation_note
 from .trust import read_keys
@@ -94,14 +94,16 @@ def _input_options(s: argparse.ArgumentParser) -> None:
     g = s.add_argument_group("input dialect (as for `ganlet train`)")
     g.add_argument("--sep", help="CSV separator (default: the one that splits the header into "
                                  "the bundle's columns); TAB as '\t'")
-    g.add_argument("--decimal", choices=DECIMALS, default=".",
-                   help="decimal mark of numbers (',' for 1,5; the separator must differ)")
+    g.add_argument("--decimal", choices=DECIMALS,
+                   help="decimal mark of numbers (',' for 1,5; the separator must differ; "
+                        "default: the training data's, manifest decimal_mark)")
     g.add_argument("--tz", metavar="NAME",
                    help="zone of times written without one: IANA name, UTC or +hh:mm "
                         "(default: the zone the bundle was trained in, else UTC)")
     order = g.add_mutually_exclusive_group()
     order.add_argument("--dayfirst", dest="date_order", action="store_const", const="dayfirst",
-                       help="read numeric dates with the year last as day/month/year")
+                       help="read numeric dates with the year last as day/month/year (default: "
+                            "the training data's order, manifest date_order)")
     order.add_argument("--monthfirst", dest="date_order", action="store_const",
                        const="monthfirst", help="read them as month/day/year")
     c = s.add_argument_group("time plausibility")
@@ -119,10 +121,11 @@ def _input_options(s: argparse.ArgumentParser) -> None:
 def _dialect(args, bundle) -> Dialect:
     """ValueError with a message for options that do not fit together."""
     sep = "\t" if args.sep in ("\\t", "TAB", "tab") else args.sep
-    tz = args.tz if args.tz is not None else bundle.manifest.get("time_zone")
+    trained = trained_dialect(bundle.manifest)
+    given = {"tz": args.tz, "decimal": args.decimal, "date_order": args.date_order}
     if args.max_ahead < 0 or args.backlog_days < 0 or args.confirm_rows < 2:
         raise ValueError("--max-ahead and --backlog-days must be >= 0, --confirm-rows >= 2")
-    return Dialect(sep=sep, decimal=args.decimal, tz=tz, date_order=args.date_order)
+    return Dialect(sep=sep, **{k: trained[k] if v is None else v for k, v in given.items()})
 
 
 def _mqtt_options(s: argparse.ArgumentParser) -> None:

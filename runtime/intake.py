@@ -8,15 +8,17 @@ Dialect (the same options as `ganlet train`, so one file trains and streams):
     --sep C         separator: , ; TAB or | (default: the one that splits the header into the
                     bundle's columns)
     --decimal ,     decimal comma in numbers and in epoch seconds (1,5); the separator must
-                    then be another character
+                    then be another character. Default: the training data's mark (manifest
+                    decimal_mark), else "."
     --tz NAME       zone of times written without one: an IANA name (Europe/Berlin, via the
                     standard zoneinfo module and the system's tzdata), UTC, or a fixed offset
                     +01:00. Default: the zone the bundle was trained in (manifest time_zone),
                     else UTC. Events always carry UTC with 'Z'.
     --dayfirst / --monthfirst
                     how to read numeric dates with the year last (02/03/2026, 02.03.2026);
-                    without one they are refused (bad_time) with a message saying so, never
-                    read month-first in silence.
+                    default: the order the training data was read in (manifest
+                    date_order); without one they are refused (bad_time) with a message saying
+                    so, never read month-first in silence.
 
 Time cells (our own parser, times.py; the same answers on every supported Python):
     epoch seconds   1772445600, 1772445600.25, 1.7e9 (a cell of digits is always epoch seconds,

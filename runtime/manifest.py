@@ -41,6 +41,7 @@ from .cusum import Cusum
 from .drift import DriftMonitor
 from .features import FEATURE_KINDS, rate_mask
 from .held import HeldReadings
+from .intake import DATE_ORDERS, DECIMALS
 from .lstm import contract_shapes
 from .score import ScoreRule
 from .thresholds import make_threshold
@@ -179,10 +180,28 @@ def validate_manifest(manifest: dict) -> None:
     _check_scaler(manifest)
     _check_network(manifest["network"])
     _check_sections(manifest)
+    _check_dialect(manifest)
     for rel, digest in manifest["files"].items():
         if not safe_relative(rel) or not isinstance(digest, str) or len(digest) != 64:
             raise BundleError(f"manifest: files entry {rel!r} is not a safe relative path + sha256")
     declared_signatures(manifest)
+
+
+def trained_dialect(manifest: dict) -> Dict[str, Optional[str]]:
+    """How the training data's cells were written: the gateway's defaults for reading the same
+    export (`run.py stream` options override each), and how `ganlet evaluate` and `verify` read
+    a data file against the bundle. Bundles from before decimal_mark and date_order: "." and
+    none (numeric dates with the year last are then refused until an order is given)."""
+    return {"tz": manifest.get("time_zone"), "decimal": manifest.get("decimal_mark", "."),
+            "date_order": manifest.get("date_order")}
+
+
+def _check_dialect(manifest: dict) -> None:
+    if manifest.get("decimal_mark", ".") not in DECIMALS:
+        raise BundleError(f"manifest: decimal_mark must be one of {' '.join(DECIMALS)}")
+    if manifest.get("date_order") not in (None,) + tuple(DATE_ORDERS):
+        raise BundleError(f"manifest: date_order must be null or one of "
+                          f"{', '.join(DATE_ORDERS)}")
 
 
 def _check_schema(version: str) -> None:
@@ -329,6 +348,8 @@ def build_manifest(
     false_alarms: Optional[dict] = None,
     time_zone: str = "UTC",
     fidelity: Optional[dict] = None,
+    decimal_mark: str = ".",
+    date_order: Optional[str] = None,
 ) -> dict:
     """Every manifest is made here: the caller gives what varies, this fills the constants of
     the contract (schema, file names, quantisation, opset, tolerances, requirements).
@@ -336,8 +357,9 @@ def build_manifest(
     threshold: a policy (thresholds.make_threshold), optionally with "cusum" (cusum.Cusum; an
     older runtime refuses such a manifest); drift: drift.drift_section(...) (optional);
     false_alarms: the budget the threshold was calibrated to and the rate it implies
-    (optional, informative); time_zone: the zone
-    zone-less input times were read in at training (the gateway's default); fidelity
+    (optional, informative); time_zone, decimal_mark and date_order: how the training data's
+    cells were written (its zone-less times' zone, its decimal mark, the order of its numeric
+    dates: trained_dialect says what the gateway makes of them); fidelity
     (optional): how the bundle's network compares with the teacher it came from
     (compile/fidelity.py), information for people that the gateway does not read."""
     optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms),
@@ -349,6 +371,8 @@ def build_manifest(
         "name": name,
         "time_column": time_column,
         "time_zone": str(time_zone),
+        "decimal_mark": str(decimal_mark),
+        "date_order": date_order,
         "channels": [{"name": n, "unit": u} for n, u in channels],
         "period_s": float(period_s),
         "max_gap_periods": int(max_gap_periods),

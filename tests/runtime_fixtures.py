@@ -132,6 +132,7 @@ def build_bundle(
     created: str = "2023-11-14T00:00:00Z",
     ed25519_key: Optional[bytes] = None,
     time_zone: str = "UTC",
+    dialect: Optional[dict] = None,
 ) -> Path:
     """A complete bundle folder. threshold=None -> static level from calibrate_on's scores.
     features=None watches every channel's level."""
@@ -174,6 +175,7 @@ def build_bundle(
         # made before its feeds start (T0), as in the field: the gateway refuses rows older than
         # the bundle's creation minus a backlog allowance unless told the input is a replay
         tool_version="0.1.0-test", created=created, time_zone=time_zone,
+        **(dialect or {}),
         parity_tolerances={"score_rel": 1e-5},
     )
     write_manifest(bundle_dir, manifest, sign_key=sign_key, ed25519_key=ed25519_key)

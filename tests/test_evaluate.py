@@ -17,7 +17,7 @@ from synthetic import correlated_series, inject
 from typer.testing import CliRunner
 
 from ganlet.compile.cli_reports import register
-from ganlet.compile.data import load_frame, split_spans
+from ganlet.compile.data import IntakeOptions, load_frame, split_spans
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.evaluate import BASELINES, evaluate, point_metrics, rolling_z
 from ganlet.compile.model import TeacherConfig
@@ -214,6 +214,48 @@ def test_incidents_are_read_from_the_files_own_label_column(synthetic, tmp_path,
     out = CliRunner().invoke(app, ["evaluate", str(synthetic["bundle"]), str(data), "--labels",
                                    column, "--incidents", str(synthetic["incidents"])])
     assert out.exit_code == 2 and "not both" in out.output
+
+
+@pytest.mark.parametrize("export", ["decimal comma, day first", "local time"])
+def test_an_export_evaluates_as_it_trained(synthetic, tmp_path, export):
+    # trained with --decimal , --dayfirst, the model and its bundle remember how the file was
+    # written: `ganlet evaluate` read it with neither (and had no option to say them), so such a
+    # file could not be evaluated at all; trained with --tz, the teacher's replay read the
+    # file's times as UTC, an hour off the grid. Reference: the cells are strftime's day-first
+    # dates and the points of pandas' to_csv replaced by commas, or pandas' tz_convert to
+    # Europe/Berlin written without the zone; the same numbers written plainly train the same
+    # network and score the same
+    torch.set_num_threads(1)
+    df = pd.read_csv(synthetic["data"])
+    utc = pd.to_datetime(df["time"]).dt.tz_localize("UTC")
+    data = tmp_path / "export.csv"
+    if export == "local time":
+        local = utc.dt.tz_convert("Europe/Berlin").dt.strftime("%Y-%m-%d %H:%M:%S")
+        df.assign(time=local).to_csv(data, index=False)
+        options = IntakeOptions(tz="Europe/Berlin")
+    else:
+        df.assign(time=utc.dt.strftime("%d/%m/%Y %H:%M:%S")).to_csv(
+            data, sep=";", decimal=",", index=False)
+        options = IntakeOptions(decimal=",", date_order="dayfirst")
+    frame = load_frame(data, options)
+    model = train(frame, split_spans(frame, 500, 0.25), TINY)
+    model_dir = save_model(model, tmp_path / "model")
+    compile_model(model, tmp_path / "bundle",
+                  CompileOptions(board="workstation", threshold="static",
+                                 distil=DistilConfig(epochs=3, max_real_windows=300)),
+                  model_dir=model_dir)
+    manifest = json.loads((tmp_path / "bundle" / "manifest.json").read_text())
+    assert manifest["decimal_mark"] == options.decimal
+    assert (manifest["date_order"], manifest["time_zone"]) == (options.date_order,
+                                                              options.tz or "UTC")
+    r = evaluate(tmp_path / "bundle", data, synthetic["incidents"], eval_from=500,
+                 model_dir=model_dir, baselines=("IsolationForest",))
+    plain = evaluate(synthetic["bundle"], synthetic["data"], synthetic["incidents"],
+                     eval_from=500, model_dir=synthetic["model"], baselines=("IsolationForest",))
+    np.testing.assert_array_equal(r.labels, plain.labels)
+    for name in ("bundle", "teacher", "IsolationForest"):
+        np.testing.assert_allclose(r.methods[name].scores, plain.methods[name].scores,
+                                   rtol=1e-5, equal_nan=True)
 
 
 def test_evaluate_reads_a_windows_1252_file_and_says_so_once(synthetic, tmp_path):

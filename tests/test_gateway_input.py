@@ -26,6 +26,7 @@ from stream_helpers import HEADER, rows_text, run_process, stream, stream_cmd, w
 
 from ganlet.compile.data import IntakeError, IntakeOptions, load_frame
 from ganlet.runtime.intake import REJECT_KINDS, format_time
+from ganlet.runtime.manifest import BundleError, trained_dialect, validate_manifest
 
 WINDOW, HOP = 16, 4
 
@@ -525,6 +526,33 @@ def test_day_first_dates_are_refused_unless_told(bundle_dir, tmp_path):
         load_frame(feed)
     frame = load_frame(feed, IntakeOptions(date_order="dayfirst"))
     assert frame.times[0] == pd.Timestamp(fx.T0, unit="s")
+
+
+def test_the_training_datas_decimal_mark_and_date_order_are_the_defaults(tmp_path):
+    # trained on a semicolon, decimal-comma, day-first export, the bundle reads the same export
+    # with no flags (it had refused every row until --decimal , --dayfirst were given again);
+    # reference: the cells are written by strftime("%d/%m/%Y ...") and str.replace of the point
+    bundle = fx.build_bundle(tmp_path / "eu", window=WINDOW, hop=HOP, onnx_model=False,
+                             dialect={"decimal_mark": ",", "date_order": "dayfirst"})
+    manifest = json.loads((bundle / "manifest.json").read_text())
+    assert (manifest["decimal_mark"], manifest["date_order"]) == (",", "dayfirst")
+    values, lines = clean_lines(60, seed=44)
+    plain = stream(bundle, write_lines(tmp_path / "plain.csv", [HEADER] + lines))
+    eu = [HEADER.replace(",", ";")] + [
+        pd.Timestamp(fx.T0 + k, unit="s").strftime("%d/%m/%Y %H:%M:%S") + ";"
+        + ";".join(x.split(",")[1:]).replace(".", ",") for k, x in enumerate(lines)]
+    feed = write_lines(tmp_path / "eu.csv", eu)
+    run = stream(bundle, feed)
+    assert run.code == 0 and run.scores == plain.scores and run.score_times == plain.score_times
+    assert stream(bundle, feed, "--monthfirst").code == 5  # an option overrides the bundle
+    assert stream(bundle, feed, "--decimal", ".").code == 5
+    # a manifest from before the keys: numbers with a point, the date order asked for
+    older = {k: v for k, v in manifest.items() if k not in ("decimal_mark", "date_order")}
+    validate_manifest(older)
+    assert trained_dialect(older) == {"tz": "UTC", "decimal": ".", "date_order": None}
+    for bad in ({"decimal_mark": ";"}, {"date_order": "yearfirst"}):
+        with pytest.raises(BundleError, match=next(iter(bad))):
+            validate_manifest({**manifest, **bad})
 
 
 def test_bad_dialect_options_exit_2(bundle_dir, tmp_path):
