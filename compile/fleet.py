@@ -1,6 +1,6 @@
 """`ganlet fleet FLEET.toml`: one detector per asset, trained, compiled and verified on Dask.
 
-Each asset is one task (train -> compile -> verify -> evaluate when incidents are given) that
+Each asset is one task (train -> compile -> verify -> evaluate when incidents or labels are given) that
 runs in a worker process with one torch thread. A failing asset is reported with its reason and
 never stops the others. A rerun skips assets whose inputs (data hash, settings, board) are
 unchanged since their last successful run.
@@ -24,6 +24,7 @@ The fleet file (TOML, our own format; see DEVELOPERS.md "Fleet files"):
                                   # "a72-2g"]) compiles one bundle per board, one distillation
                                   # per distinct student (bundle/<board>/)
     incidents = "data/p1-incidents.csv"   # optional: adds a detection evaluation
+    labels = "anomaly"            # optional, instead: the data file's column marking them
     train_until = "2026-03-04T00:00:00"   # optional (row count, fraction or time)
     [asset.invented]              # optional: generate the invented demo data if `data` is missing
     seed = 11
@@ -69,6 +70,7 @@ class AssetSpec:
     channels: Optional[list] = None
     rate: list = field(default_factory=list)
     incidents: Optional[str] = None
+    labels: Optional[str] = None   # the data file's label column (instead of incidents)
     train_until: object = None
     invented: Optional[dict] = None
 
@@ -133,6 +135,9 @@ def load_fleet(path: Path) -> FleetSpec:
             raise FleetError(f"{where}: needs 'id' and 'data'")
         if not ID_RE.match(str(a["id"])):
             raise FleetError(f"{where}: id {a['id']!r} may hold letters, digits, - and _ only")
+        if a.get("incidents") and a.get("labels"):
+            raise FleetError(f"{where}: give 'incidents' (a file) or 'labels' (the data "
+                             "file's label column), not both")
         if a["id"] in seen:
             raise FleetError(f"{where}: id {a['id']!r} is used twice")
         seen.add(a["id"])
@@ -142,6 +147,7 @@ def load_fleet(path: Path) -> FleetSpec:
             channels=a.get("channels"), rate=list(a.get("rate", [])),
             train_until=a.get("train_until"),
             incidents=str(path.parent / a["incidents"]) if a.get("incidents") else None,
+            labels=str(a["labels"]) if a.get("labels") else None,
             invented=a.get("invented")))
     train = dict(raw.get("train", {}))
     check_keys(train, {f.name for f in fields(TeacherConfig)} | set(TRAIN_OPTION_KEYS),
@@ -318,7 +324,7 @@ def train_asset(spec: AssetSpec, fleet: FleetSpec, out: Path):
 
 
 def check_bundle(spec: AssetSpec, compiled, trained, out: Path, suffix: str) -> dict:
-    """Parity (and detection, when incidents are given) of one compiled bundle."""
+    """Parity (and detection, when incidents or labels are given) of one compiled bundle."""
     from ganlet.compile import verify as verify_mod
 
     parity = verify_mod.verify(compiled.bundle, Path(spec.data), model_dir=trained.out)
@@ -330,12 +336,14 @@ def check_bundle(spec: AssetSpec, compiled, trained, out: Path, suffix: str) -> 
              "fidelity": compiled.report["fidelity"],
              "paths": {f"bundle{suffix}": str(compiled.bundle),
                        f"verify{suffix}": str(out / f"verify{suffix}.html")}}
-    if spec.incidents:
+    if spec.incidents or spec.labels:
         from ganlet.compile import evaluate as evaluate_mod
 
         split = trained.model.spans.calibration[1]     # evaluate after the training span
-        detection = evaluate_mod.evaluate(compiled.bundle, Path(spec.data), Path(spec.incidents),
-                                          eval_from=split, model_dir=trained.out)
+        incidents = Path(spec.incidents) if spec.incidents else None
+        detection = evaluate_mod.evaluate(compiled.bundle, Path(spec.data), incidents,
+                                          eval_from=split, model_dir=trained.out,
+                                          labels=spec.labels)
         evaluate_mod.write_json(detection, out / f"evaluate{suffix}.json")
         evaluate_mod.write_html(detection, out / f"evaluate{suffix}.html")
         check["f1"] = float(detection.methods["bundle"].metrics["f1"])

@@ -7,8 +7,9 @@ import csv
 import json
 
 import numpy as np
+import pandas as pd
 import pytest
-from synthetic import correlated_series
+from synthetic import correlated_series, inject
 
 from ganlet.compile import fleet
 
@@ -34,6 +35,7 @@ max_real_windows = 300
 [[asset]]
 id = "alpha"
 data = "alpha.csv"
+labels = "anomaly"
 
 [[asset]]
 id = "bravo"
@@ -50,7 +52,8 @@ channels = ["flow", "power", "temp"]
 @pytest.fixture(scope="module")
 def fleet_dir(tmp_path_factory):
     root = tmp_path_factory.mktemp("fleet")
-    correlated_series(900, seed=1).to_csv(root / "alpha.csv", index=False)
+    alpha, labels = inject(correlated_series(900, seed=1), start=630, seed=5)
+    alpha.assign(anomaly=labels.astype(int)).to_csv(root / "alpha.csv", index=False)
     bravo = correlated_series(900, seed=2)
     bravo.iloc[[100, 101]] = bravo.iloc[[101, 100]].to_numpy()   # intake warns: out of order
     bravo.to_csv(root / "bravo.csv", index=False)
@@ -85,6 +88,13 @@ def test_fleet_on_two_worker_processes_then_rerun_skips_unchanged(fleet_dir, cap
         assert r.bundle_kb and r.bundle_kb > 0
         manifest = json.loads((fleet_dir / "out" / asset / "bundle" / "manifest.json").read_text())
         assert manifest["scaler"]["features"][2] == ("rate" if asset == "bravo" else "level")
+    # alpha's incidents come from its data file's `anomaly` column (reference: pandas reads
+    # the labelled rows the detection report counts)
+    judged = json.loads((fleet_dir / "out" / "alpha" / "evaluate.json").read_text())
+    labelled = int(pd.read_csv(fleet_dir / "alpha.csv")["anomaly"].iloc[630:].sum())
+    assert by_id["alpha"].f1 is not None and by_id["bravo"].f1 is None
+    assert judged["anomalous_points"] == labelled > 0
+    assert any("column 'anomaly'" in note for note in judged["notes"])
 
     summary = fleet.write_summary(first, spec.out / "fleet_summary.csv")
     with open(summary, newline="") as fh:
@@ -119,6 +129,8 @@ def test_a_changed_data_file_is_not_skipped(fleet_dir):
     ("[[asset]]\nid = 'a b'\ndata = 'x.csv'\n", "letters, digits"),
     ("[[asset]]\nid = 'a'\ndata = 'x.csv'\n[[asset]]\nid = 'a'\ndata = 'y.csv'\n", "used twice"),
     ("[train]\nwindw = 3\n[[asset]]\nid = 'a'\ndata = 'x.csv'\n", "unknown key"),
+    ("[[asset]]\nid = 'a'\ndata = 'x.csv'\nincidents = 'i.csv'\nlabels = 'anomaly'\n",
+     "not both"),
 ])
 def test_fleet_file_errors_say_what_is_wrong(tmp_path, text, message):
     path = tmp_path / "f.toml"
