@@ -29,6 +29,7 @@ from ganlet.runtime.intake import (
     decimal_comma,
     decode_text,
     digit_grouped,
+    separator_directive,
 )
 from ganlet.runtime.times import DATE_ORDERS, MAX_TIME, MIN_TIME
 
@@ -208,6 +209,12 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".",
         raise IntakeError(f"{path}: no such file")
     if path.suffix.lower() in (".parquet", ".pq"):
         return pd.read_parquet(path)
+    directive = file_separator_directive(path)
+    if directive is not None:
+        if sep is not None and sep != directive:
+            raise IntakeError(f"{path}: its first line says the separator is {directive!r} "
+                              f"(sep={directive}), but --sep gives {sep!r}")
+        sep = directive
     if sep is None:
         with open(path, newline="", encoding="utf-8", errors="replace") as fh:
             head = fh.read(16384)
@@ -222,7 +229,7 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".",
     if sep == decimal:
         raise IntakeError(f"--sep and --decimal are both {sep!r}; give the file's separator")
     try:
-        df = read_csv_text(path, sep, decimal, skip_units_row)
+        df = read_csv_text(path, sep, decimal, skip_units_row, directive is not None)
     except pd.errors.ParserError as exc:
         refuse_preamble(path, sep)
         raise IntakeError(f"{path}: cannot parse as CSV ({exc}); try --sep") from exc
@@ -232,6 +239,13 @@ def read_table(path: Path, sep: Optional[str], decimal: str = ".",
         raise IntakeError(f"{path}: read one column {str(df.columns[0])!r} with delimiter "
                           f"{sep!r}; the delimiter looks wrong, give it with --sep")
     return df
+
+
+def file_separator_directive(path: Path) -> Optional[str]:
+    """The separator a first line `sep=;` names (runtime/intake.py SEPARATOR_DIRECTIVE), else
+    None; read_csv_text then skips that line, as the gateway does."""
+    with open(path, "rb") as fh:
+        return separator_directive(fh.readline(64).decode("utf-8", errors="replace"))
 
 
 def refuse_preamble(path: Path, sep: str) -> None:
@@ -261,11 +275,13 @@ def with_stripped_names(df: pd.DataFrame, path) -> pd.DataFrame:
     return df.set_axis(names, axis=1)
 
 
-def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = False):
+def read_csv_text(path: Path, sep: str, decimal: str, skip_units_row: bool = False,
+                  directive: bool = False):
     """The CSV as a table, each line decoded as the gateway decodes it (runtime/intake.py
     decode_text: UTF-8, else Windows-1252, with a warning here); a UTF-16 file is refused.
-    skip_units_row: leave out the line under the header (units_row)."""
-    skip = [1] if skip_units_row else None
+    skip_units_row: leave out the line under the header (units_row); directive: leave out the
+    first line, a separator directive (separator_directive)."""
+    skip = ([0] if directive else []) + ([1 + int(directive)] if skip_units_row else []) or None
     raw = path.read_bytes()
     if raw[:2] in UTF16_MARKS:
         raise IntakeError(f"{path}: the file is UTF-16; save it as UTF-8 (or Windows-1252)")

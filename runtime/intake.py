@@ -89,6 +89,11 @@ DIGIT_GROUPS = {".": re.compile(r"[+-]?\d{1,3}(?:,\d{3})+\.\d+|[+-]?\d{1,3}(?:,\
                 ",": re.compile(r"[+-]?\d{1,3}(?:\.\d{3})+,\d+|[+-]?\d{1,3}(?:\.\d{3}){2,}")}
 GROUPS_HINT = " (digits grouped in thousands? send plain numbers: 1234.5)"
 
+# A first line `sep=;` (quoted or not, any case): the line a spreadsheet writes above a CSV's
+# header to name its separator. Both sides skip it and read the file with that separator unless
+# one is given (sources.py CsvSource; compile/data.py read_table).
+SEPARATOR_DIRECTIVE = re.compile(r'\ufeff?"?sep=([^\r\n"])"?', re.IGNORECASE)
+
 # Cells read as a blank reading (NaN): what pandas.read_csv reads as missing by default, so the
 # gateway reads a file's gaps as the workstation did when it trained on such a file.
 BLANK_CELLS = frozenset((
@@ -99,6 +104,12 @@ BLANK_CELLS = frozenset((
 def decimal_comma(cell: str) -> bool:
     """The cell is a number written with a decimal comma (DECIMAL_COMMA)."""
     return DECIMAL_COMMA.fullmatch(cell.strip()) is not None
+
+
+def separator_directive(line: str) -> Optional[str]:
+    """The separator a `sep=X` first line names (SEPARATOR_DIRECTIVE), else None."""
+    found = SEPARATOR_DIRECTIVE.fullmatch(line.strip())
+    return found.group(1) if found else None
 
 
 def digit_grouped(cell: str, decimal: str = ".") -> bool:

@@ -24,7 +24,16 @@ import os
 import time
 from typing import Iterator, List, Optional
 
-from .intake import MAX_LINE_BYTES, Dialect, Header, HeaderError, RowError, decode_line, header_sep
+from .intake import (
+    MAX_LINE_BYTES,
+    Dialect,
+    Header,
+    HeaderError,
+    RowError,
+    decode_line,
+    header_sep,
+    separator_directive,
+)
 
 POLL_S = 0.2  # follow: wait between reads at end of file
 TAIL_BYTES = 64  # bytes before a resume offset that must match for an exact resume
@@ -330,6 +339,11 @@ class CsvSource:
         if text is None:
             return Record(lineno) if self.header_text is not None else None
         if self.header_text is None:
+            named = separator_directive(text)
+            if named is not None:  # a spreadsheet's `sep=;` above the header: not the header
+                if self.dialect.sep is None:
+                    self.dialect = self.dialect.with_sep(named)
+                return None
             self._take_header(text)
             return Record(lineno, header="first")
         return self._row(lineno, text)

@@ -555,6 +555,21 @@ def test_the_training_datas_decimal_mark_and_date_order_are_the_defaults(tmp_pat
             validate_manifest({**manifest, **bad})
 
 
+def test_a_spreadsheets_separator_line_is_skipped_and_names_the_separator(bundle_dir, tmp_path):
+    # `sep=;` above the header (a spreadsheet's way to name the separator): the stream had
+    # stopped with bad_header; training reads such a file too (test_real_world_files)
+    values, lines = clean_lines(60, seed=45)
+    plain = stream(bundle_dir, write_lines(tmp_path / "plain.csv", [HEADER] + lines))
+    semi = ["sep=;", HEADER.replace(",", ";")] + [x.replace(",", ";") for x in lines]
+    run = stream(bundle_dir, write_lines(tmp_path / "semi.csv", semi))
+    assert run.code == 0 and run.scores == plain.scores
+    # a --sep given wins: the line is still skipped, and the rows are read with it
+    assert stream(bundle_dir, tmp_path / "semi.csv", "--sep", ";").scores == plain.scores
+    late = [HEADER] + lines[:5] + ["sep=;"] + lines[5:]  # only a first line is a directive
+    run = stream(bundle_dir, write_lines(tmp_path / "late.csv", late))
+    assert run.code == 0 and sum(run.stop["errors"].values()) == 1  # refused as a row
+
+
 def test_bad_dialect_options_exit_2(bundle_dir, tmp_path):
     _, lines = clean_lines(20, seed=43)
     feed = write_lines(tmp_path / "f.csv", [HEADER] + lines)

@@ -132,6 +132,22 @@ def test_a_date_column_that_settles_its_own_order_names_the_flag(write_csv, orde
     assert "only you know" in str(err.value) and "reads only as" not in str(err.value)
 
 
+@pytest.mark.parametrize("line", ["sep=;", '"sep=;"', "SEP=;"])
+def test_a_spreadsheets_separator_line_names_the_separator_and_is_skipped(tmp_path, line):
+    # a spreadsheet may write `sep=;` above a CSV's header to name its separator; it was read
+    # as the header (columns 'sep=' and 'Unnamed: 1', the real header taken for a units row).
+    # Reference: pandas.read_csv(sep=";", skiprows=1) reads the table under the line
+    df = correlated_series(200)
+    path = tmp_path / "excel.csv"
+    path.write_text(line + "\n" + df.to_csv(sep=";", decimal=",", index=False))
+    frame = load_frame(path, IntakeOptions(decimal=","))
+    expected = pd.read_csv(path, sep=";", decimal=",", skiprows=1)
+    assert frame.channels == ["flow", "power", "temp"]
+    np.testing.assert_array_equal(frame.values, expected[frame.channels].to_numpy())
+    with pytest.raises(IntakeError, match="first line says the separator is ';'"):
+        load_frame(path, IntakeOptions(sep="|", decimal=","))
+
+
 def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
     # a logger that wrote a few rows twice: averaged and said, as before
     df = correlated_series(300)
