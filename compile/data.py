@@ -598,10 +598,36 @@ def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
     return channels, excluded
 
 
+# Spreadsheet serial dates (days since 1899-12-30) of 1955 .. 2100: read as epoch seconds they
+# are times on 1970-01-01 spaced a fraction of a second apart (one day = 1.0)
+SERIAL_DAYS = (20000.0, 73051.0)
+
+
+def refuse_serial_days(raw: pd.Series, time_col) -> None:
+    """A numeric time column that holds spreadsheet serial dates (45413.0007 is 2024-05-01
+    00:01) is refused: as epoch seconds it trained on a 0.0007 s grid on 1 January 1970, and the
+    gateway refused every live row as older than the bundle."""
+    if not pd.api.types.is_numeric_dtype(raw) or pd.api.types.is_bool_dtype(raw):
+        return
+    t = pd.to_numeric(raw, errors="coerce").dropna().to_numpy(np.float64)
+    if len(t) < 2 or not ((t >= SERIAL_DAYS[0]) & (t <= SERIAL_DAYS[1])).all():
+        return
+    steps = np.diff(np.sort(t))
+    steps = steps[steps > 0]
+    if len(steps) and np.median(steps) < 1.0:
+        example = pd.Timestamp("1899-12-30") + pd.to_timedelta(t[0], unit="D")
+        raise IntakeError(
+            f"column {str(time_col)!r} holds numbers like {t[0]:.6g}: spreadsheet serial dates "
+            f"(days since 1899-12-30; {t[0]:.6g} is {example:%Y-%m-%d %H:%M:%S}), not epoch "
+            "seconds; export the times as text (ISO 8601, as the gateway reads them), e.g. "
+            "pandas.to_datetime(df[col], unit='D', origin='1899-12-30')")
+
+
 def timed_rows(df: pd.DataFrame, time_col, channels: list, dialect, notes: list) -> tuple:
     """(times, values [N, C] with NaN for anything not finite, rows dropped): rows whose time
     does not parse are dropped, unless they are more than 1 % of the file (then it is refused)."""
     raw_times = df[time_col]
+    refuse_serial_days(raw_times, time_col)
     times = parse_times(raw_times, dialect)
     bad_time = times.isna().to_numpy()
     if bad_time.mean() > 0.01 or bad_time.all():

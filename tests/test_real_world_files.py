@@ -148,6 +148,23 @@ def test_a_spreadsheets_separator_line_names_the_separator_and_is_skipped(tmp_pa
         load_frame(path, IntakeOptions(sep="|", decimal=","))
 
 
+def test_spreadsheet_serial_dates_are_refused_with_the_conversion(write_csv):
+    # days since 1899-12-30 (45413.0007 = 2024-05-01 00:01) had been read as epoch seconds: a
+    # 0.0007 s grid on 1 January 1970. Reference: the conversion the message gives,
+    # pandas.to_datetime(unit="D", origin="1899-12-30"), reads the times back
+    df = correlated_series(300)
+    serial = (df["time"] - pd.Timestamp("1899-12-30")) / pd.Timedelta("1D")
+    path = write_csv(df.assign(time=serial))
+    with pytest.raises(IntakeError, match="spreadsheet serial dates") as err:
+        load_frame(path)
+    assert "2026-01-05 00:00:00" in str(err.value)
+    back = pd.to_datetime(pd.read_csv(path)["time"], unit="D", origin="1899-12-30")
+    assert (back - df["time"]).abs().max() < pd.Timedelta("1ms")
+    # small epoch seconds (a series numbered 1, 2, 3 ... as seconds) still read as before
+    frame = load_frame(write_csv(df.assign(time=np.arange(1, 301)), name="seconds.csv"))
+    assert frame.period_s == 1.0 and len(frame.times) == 300
+
+
 def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
     # a logger that wrote a few rows twice: averaged and said, as before
     df = correlated_series(300)
