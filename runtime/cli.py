@@ -244,6 +244,7 @@ def _check(bundle, args) -> int:
     chans = ", ".join(f"{c['name']} [{c['unit']}]" + (" by rate" if c["feature"] == "rate" else "")
                       for c in summary["channels"])
     print(f"  channels: {chans}")
+    print("  " + input_line(summary))
     print(f"  window {summary['window']} x {summary['period_s']} s, hop {summary['hop']}, "
           f"threshold {summary['threshold']}, board {summary['board']}")
     print("  " + detector_line(summary))
@@ -251,6 +252,16 @@ def _check(bundle, args) -> int:
     print(f"  MQTT: available ({mqtt['client']})" if mqtt["available"]
           else f"  MQTT: not available. {mqtt['detail']}")
     return EXIT_OK
+
+
+def input_line(summary: dict) -> str:
+    """How the input is read unless options say otherwise (the training data's dialect)."""
+    d = summary["input"]
+    order = {"dayfirst": "read day first", "monthfirst": "read month first"}.get(
+        d["date_order"], "refused unless --dayfirst or --monthfirst")
+    return (f"input: time column {summary['time_column']!r}, zone-less times in "
+            f"{d['tz'] or 'UTC'}, decimal mark {d['decimal']!r}, dates such as 02/03/2026 "
+            f"{order}")
 
 
 def detector_line(summary: dict) -> str:

@@ -484,6 +484,7 @@ class Bundle:
             "channels": [{"name": n, "unit": u, "feature": f}
                          for n, u, f in zip(self.channels, self.units, self.features)],
             "time_column": self.time_column,
+            "input": trained_dialect(m),
             "period_s": self.period_s,
             "window": self.window,
             "hop": self.hop,

@@ -15,6 +15,7 @@ import random
 import shutil
 import signal
 import subprocess
+import sys
 import threading
 import time
 
@@ -545,6 +546,9 @@ def test_the_training_datas_decimal_mark_and_date_order_are_the_defaults(tmp_pat
     run = stream(bundle, feed)
     assert run.code == 0 and run.scores == plain.scores and run.score_times == plain.score_times
     assert stream(bundle, feed, "--monthfirst").code == 5  # an option overrides the bundle
+    check = subprocess.run([sys.executable, str(bundle / "run.py"), "check"],
+                           capture_output=True, text=True)
+    assert "decimal mark ',', dates such as 02/03/2026 read day first" in check.stdout
     assert stream(bundle, feed, "--decimal", ".").code == 5
     # a manifest from before the keys: numbers with a point, the date order asked for
     older = {k: v for k, v in manifest.items() if k not in ("decimal_mark", "date_order")}
