@@ -855,6 +855,47 @@ class RobustScaler:
                    features=d.get("features"))
 
 
+# A reading this many times the range of a channel's other readings beyond them is not a
+# measurement of the same quantity (rule of thumb): repeated exactly, it is a logger's code for a
+# missing or failed reading (-9999, 65535, ...)
+CODE_REACH = 10.0
+
+
+def missing_codes(values: np.ndarray, channels: Sequence[str]) -> dict:
+    """name -> (value, rows, reach) for each channel whose lowest or highest reading occurs at
+    least twice, exactly, more than CODE_REACH times the range of its other readings beyond
+    them (reach: how many times)."""
+    found = {}
+    for j, name in enumerate(channels):
+        v = values[:, j][np.isfinite(values[:, j])]
+        for code in (v.min(), v.max()) if len(v) else ():
+            others = v[v != code]
+            spread = others.max() - others.min() if len(others) > 1 else 0.0
+            rows = int((v == code).sum())
+            if spread <= 0 or rows < 2:
+                continue
+            reach = max(others.min() - code, code - others.max()) / spread
+            if reach > CODE_REACH:
+                found[name] = (float(code), rows, float(reach))
+    return found
+
+
+def refuse_missing_codes(frame: Frame, spans: Spans) -> None:
+    """Training on a code as a reading wrecks the channel's windows and the thresholds
+    calibrated on them (a temperature's -9999 scored thousands of sigmas), so it is refused
+    with the fix."""
+    codes = missing_codes(frame.values[:spans.calibration[1]], frame.channels)
+    if codes:
+        name, (code, rows, reach) = next(iter(codes.items()))
+        raise IntakeError(
+            f"channel {name!r} reads exactly {code:g} in {rows} rows of the training span, "
+            f"{reach:.0f} times the range of its other readings beyond them: a code for a "
+            f"missing or failed reading? Blank those cells (pandas: df[{name!r}] = "
+            f"df[{name!r}].replace({code:g}, float('nan'))) and train again, and send them "
+            "blank to the gateway, which holds a blank from the last reading"
+            + (f"; also {', '.join(map(repr, list(codes)[1:]))}" if len(codes) > 1 else ""))
+
+
 def holds_one_value(std: float, center: float) -> bool:
     """A channel whose spread is nil against its level (or not known) carries no information."""
     return not np.isfinite(std) or std <= 1e-12 * max(1.0, abs(center))

@@ -39,6 +39,7 @@ from ganlet.compile.data import (
     choose_window,
     load_frame,
     parse_period,
+    refuse_missing_codes,
     save_json,
     spans_summary,
     split_spans,
@@ -188,6 +189,7 @@ def train_from_file(data: Path, out: Path, options: TrainOptions,
     config = options.detector_config()
     spans = split_spans(frame, options.train_until, options.calibration)
     echo(spans_summary(frame, spans))
+    refuse_missing_codes(frame, spans)
     frame, notes = without_constant_channels(frame, spans, named=bool(options.channels))
     for note in notes:
         echo(f"note: {note}")

@@ -132,6 +132,29 @@ def test_a_constant_channel_picked_by_default_is_left_out_with_a_note(tmp_path, 
     assert summary["channels"] == ["flow", "power", "temp"] and "setpoint" in summary["excluded"]
 
 
+@pytest.mark.parametrize("code", [-9999.0, 65535.0])
+def test_a_logger_code_among_readings_is_refused_with_the_fix(tmp_path, write_csv, config_file,
+                                                              code):
+    # -9999 for a missing reading (or an ADC's 65535) in a temperature column had been trained
+    # on as a reading: thousands of sigmas, in the windows the thresholds are calibrated on
+    df = correlated_series(300)
+    df.loc[[40, 170, 171], "temp"] = code
+    out = tmp_path / "m"
+    result = run("train", write_csv(df), "--out", out, "--config", config_file())
+    assert_one_error_line(result, f"channel 'temp' reads exactly {code:g} in 3 rows")
+    assert f"replace({code:g}, float('nan'))" in result.stderr and not out.exists()
+    # the fix the message gives (reference: pandas.Series.replace) trains
+    df["temp"] = df["temp"].replace(code, float("nan"))
+    fixed = run("train", write_csv(df, name="fixed.csv"), "--out", out, "--config",
+                config_file())
+    assert fixed.exit_code == 0, fixed.output
+    # one wild reading, or a dropout to 0 within reach of the range, is not a code
+    df.loc[40, "temp"], df.loc[[100, 101], "flow"] = code, 0.0
+    kept = run("train", write_csv(df, name="kept.csv"), "--out", tmp_path / "m2", "--config",
+               config_file())
+    assert kept.exit_code == 0, kept.output
+
+
 def test_a_constant_channel_the_engineer_named_is_refused(tmp_path, write_csv):
     df = correlated_series(300)
     df["power"] = 4.0
