@@ -1096,8 +1096,8 @@ def date_order_hint(raw: pd.Series, dialect: Dialect) -> str:
     if read["dayfirst"] == read["monthfirst"]:
         return ""
     order = "dayfirst" if read["dayfirst"] else "monthfirst"
-    return (f" (this column reads only as {order.replace('first', ' first')}: train and stream "
-            f"with --{order})")
+    return (f" (this column reads only as {order.replace('first', ' first')}: train with "
+            f"--{order}; the bundle then reads it so)")
 
 
 def time_problem(cell, dialect: Dialect) -> str:

@@ -1,9 +1,9 @@
 """`ganlet fleet FLEET.toml`: one detector per asset, trained, compiled and verified on Dask.
 
-Each asset is one task (train -> compile -> verify -> evaluate when incidents or labels are given) that
-runs in a worker process with one torch thread. A failing asset is reported with its reason and
-never stops the others. A rerun skips assets whose inputs (data hash, settings, board) are
-unchanged since their last successful run.
+Each asset is one task (train -> compile -> verify -> evaluate when incidents or labels are
+given) that runs in a worker process with one torch thread. A failing asset is reported with
+its reason and never stops the others. A rerun skips assets whose inputs (data hash, settings,
+board) are unchanged since their last successful run.
 
 The fleet file (TOML, our own format; see DEVELOPERS.md "Fleet files"):
 

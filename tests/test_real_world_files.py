@@ -121,7 +121,7 @@ def test_a_date_column_that_settles_its_own_order_names_the_flag(write_csv, orde
     df = correlated_series(30 * 24, period_s=3600)  # 5 Jan .. 3 Feb: days past 12
     df["time"] = df["time"].dt.strftime(form)
     path = write_csv(df)
-    with pytest.raises(IntakeError, match=f"reads only as .* with --{order}"):
+    with pytest.raises(IntakeError, match=f"reads only as .* train with --{order}; the bundle"):
         load_frame(path)
     frame = load_frame(path, IntakeOptions(date_order=order))
     expected = pd.to_datetime(pd.read_csv(path)["time"], format=form)
