@@ -33,6 +33,10 @@ from ganlet.runtime.intake import (
 )
 from ganlet.runtime.times import DATE_ORDERS, MAX_TIME, MIN_TIME
 
+# Words that make a column a label wherever they stand in its name (Pump1_Fault, is_outlier,
+# faultNumber, Normal/Attack): a label trained on as a channel tells the detector the answer
+LABEL_WORDS = ("anomaly", "anomalies", "label", "labels", "changepoint", "attack", "outlier",
+               "outliers", "fault", "faults", "incident", "incidents")
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
 LABEL_NAMES = ("anomaly", "label", "labels", "changepoint", "fault", "target", "is_anomaly",
                "class", "incident", "attack")
@@ -550,11 +554,27 @@ def _first_counts(cells: pd.Series) -> str:
     return ", ".join(f"{v:g}" for v in cells.to_numpy(np.float64)[:3])
 
 
+def label_word(name) -> Optional[str]:
+    """The word that makes a column a label: its whole name (LABEL_NAMES, any case), or one of
+    LABEL_WORDS among the words of its name (split at anything not a letter or digit and
+    between camelCase words); None for any other column."""
+    text = str(name).strip()
+    if text.lower() in LABEL_NAMES:
+        return text.lower()
+    words = re.findall(r"[A-Z]+(?![a-z])|[A-Z]?[a-z]+|[0-9]+", text)
+    return next((w.lower() for w in words if w.lower() in LABEL_WORDS), None)
+
+
 def pick_channels(df: pd.DataFrame, time_col, opts: IntakeOptions, path,
                   notes: list) -> tuple:
     """(channels, excluded columns): --channels as named, else every column of numbers that
     is not the time, a label column or --exclude'd (a column of text is left out, and said)."""
-    excluded = [c for c in df.columns if str(c).strip().lower() in LABEL_NAMES]
+    excluded = [c for c in df.columns if c != time_col and label_word(c) is not None]
+    for c in excluded:
+        if str(c).strip().lower() not in LABEL_NAMES:
+            notes.append(f"column {str(c)!r} is taken for a label (its name says "
+                         f"{label_word(c)!r}): left out (name it in --channels to train on it)")
+            warnings.warn(notes[-1], stacklevel=3)
     excluded += [c for c in opts.exclude if c in df.columns and c not in excluded]
     missing_excl = [c for c in opts.exclude if c not in df.columns]
     if missing_excl:

@@ -49,7 +49,6 @@ from ganlet.compile.calibrate import (
     risk_per_hop,
 )
 from ganlet.compile.data import (
-    LABEL_NAMES,
     Frame,
     IntakeError,
     IntakeOptions,
@@ -57,6 +56,7 @@ from ganlet.compile.data import (
     as_numbers,
     find_time_column,
     grid_index,
+    label_word,
     load_frame,
     parse_times,
     read_table,
@@ -101,10 +101,10 @@ def incidents_in_file(path: Path, column: Optional[str], options: IntakeOptions)
     rows, in time order, is one incident from its first row's time to its last's. A row is
     labelled when its cell is a number other than 0, or text other than the column's most
     common value (NORMAL, Normal ...: a labelled file is mostly normal); a blank is not.
-    `column` None: the one label-like column the file holds (data.LABEL_NAMES)."""
+    `column` None: the one label-like column the file holds (data.label_word)."""
     df = read_table(Path(path), options.sep, options.decimal)
     if column is None:
-        found = [c for c in df.columns if str(c).strip().lower() in LABEL_NAMES]
+        found = [c for c in df.columns if label_word(c) is not None]
         if len(found) != 1:
             held = f"holds {', '.join(map(repr, found))}" if found else "holds no label column"
             raise IntakeError(f"{path} {held}: give the incidents with --incidents FILE, or "

@@ -165,6 +165,30 @@ def test_spreadsheet_serial_dates_are_refused_with_the_conversion(write_csv):
     assert frame.period_s == 1.0 and len(frame.times) == 300
 
 
+@pytest.mark.parametrize("name", ["faultNumber", "is_outlier", "Pump1_Fault", "Normal/Attack"])
+def test_a_column_whose_name_says_label_is_left_out_and_found_by_evaluate(write_csv, name):
+    # a 0/1 label named outside the exact list (a simulator's faultNumber, a historian's
+    # Pump1_Fault bit) had been trained on as a channel: the detector then reads the answer
+    # from the feed. Reference: the runs of labelled rows as pandas reads them
+    from ganlet.compile.evaluate import incidents_in_file
+
+    df = correlated_series(300)
+    marked = np.zeros(len(df), bool)
+    marked[200:230] = True
+    df[name] = np.where(marked, "Attack", "Normal") if name == "Normal/Attack" else marked * 1
+    df["default_rate"] = np.linspace(0, 1, len(df)) ** 2  # 'fault' inside a word: a channel
+    path = write_csv(df)
+    with pytest.warns(UserWarning, match=f"'{name}' is taken for a label"):
+        frame = load_frame(path)
+    assert frame.channels == ["flow", "power", "temp", "default_rate"]
+    assert name in frame.report.excluded
+    incidents, column = incidents_in_file(path, None, IntakeOptions())
+    assert column == name and len(incidents) == 1
+    read = pd.read_csv(path)
+    assert incidents["start"][0] == pd.Timestamp(read["time"][200])
+    assert incidents["end"][0] == pd.Timestamp(read["time"][229])
+
+
 def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
     # a logger that wrote a few rows twice: averaged and said, as before
     df = correlated_series(300)
