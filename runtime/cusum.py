@@ -14,7 +14,8 @@ CUSUM (Page, Biometrika 1954) accumulates the evidence of such a hold:
   few hops of every excursion;
 - limit: the evidence passed once per the budget's share of alarms, fitted by POT (a GPD on
   the history's excursion peaks above their median, as the threshold's own tail, thresholds.py;
-  a fitted tail heavier than exponential is extrapolated as exponential, tail_fit), and never
+  a fitted tail heavier than exponential, or a shape too far below 0 to be estimated, is
+  extrapolated as exponential, tail_fit), and never
   below the largest excursion peak of the history, which is normal;
 - CAP = 2: a long fault's evidence stops at twice the limit, so the alert it holds open closes
   about limit / allowance normal hops after the fault ends (a normal hop takes the allowance
