@@ -328,8 +328,7 @@ def detector_bundle(model: TrainedModel, window: int, hop: int, score: dict, thr
         hop=hop, network={"encoder": [1], "latent": 1, "generator": [1]}, score=score,
         threshold=threshold, alerting=alerting,
         board={"name": "workstation", "budget": {}, "estimate": {}},
-        tool_version="workstation", drift=drift, time_zone=model.time_zone,
-        decimal_mark=model.decimal, date_order=model.date_order)
+        tool_version="workstation", drift=drift, **model.written)
     return Bundle.in_memory(manifest, {})
 
 

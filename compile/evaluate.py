@@ -484,23 +484,9 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     run (none: ()). threshold and alarms_per_week are
     for a model directory (a bundle uses its own)."""
     bundle, model, rule, notes = _source(source, model_dir, threshold, alarms_per_week)
-    contract = bundle if bundle is not None else model
-    written = (trained_dialect(bundle.manifest) if bundle is not None else
-               {"tz": model.time_zone, "decimal": model.decimal, "date_order": model.date_order})
-    options = IntakeOptions(
-        time_col=contract.time_column if bundle is not None else model.time_col,
-        channels=list(contract.channels), period_s=contract.period_s,
-        max_fill_periods=(bundle.max_gap_periods if bundle is not None
-                          else model.max_fill_periods), **written)
+    options = _reading(bundle, model)
     frame: Frame = load_frame(data, options)
-    if isinstance(incidents, pd.DataFrame):
-        inc = incidents
-    elif incidents is not None:
-        inc = read_incidents(incidents)
-    else:
-        inc, column = incidents_in_file(data, labels, options)
-        notes.append(f"incidents: {len(inc)} run(s) of labelled rows in the file's column "
-                     f"{column!r}")
+    inc = _incidents(incidents, data, labels, options, notes)
     y = incident_labels(frame.times, inc)
     evaluated = _evaluated(frame, eval_mask, eval_from)
     notes = notes + blank_channel_note(frame, evaluated)
@@ -532,6 +518,32 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
                       notes=notes,
                       provenance=tested(bundle, model_dir if bundle is not None else source,
                                         data, frame.report.time_col, capture))
+
+
+def _reading(bundle, model) -> IntakeOptions:
+    """How DATA is read against a bundle (its manifest) or a model directory: its columns,
+    period, gap filling and the training data's dialect."""
+    if bundle is not None:
+        return IntakeOptions(time_col=bundle.time_column, channels=list(bundle.channels),
+                             period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods,
+                             **trained_dialect(bundle.manifest))
+    return IntakeOptions(time_col=model.time_col, channels=list(model.channels),
+                         period_s=model.period_s, max_fill_periods=model.max_fill_periods,
+                         **trained_dialect(model.written))
+
+
+def _incidents(incidents, data: Path, labels: Optional[str], options: IntakeOptions,
+               notes: list) -> pd.DataFrame:
+    """The incidents given (a DataFrame or a CSV), else those of DATA's label column (a note
+    says which)."""
+    if isinstance(incidents, pd.DataFrame):
+        return incidents
+    if incidents is not None:
+        return read_incidents(incidents)
+    found, column = incidents_in_file(data, labels, options)
+    notes.append(f"incidents: {len(found)} run(s) of labelled rows in the file's column "
+                 f"{column!r}")
+    return found
 
 
 def _source(source: Path, model_dir: Optional[Path], threshold: str, alarms_per_week: float):

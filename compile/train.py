@@ -55,6 +55,13 @@ class TrainedModel:
     decimal: str = "."                 # numbers were written with this decimal mark (--decimal)
     date_order: Optional[str] = None   # numeric dates were read in this order (--dayfirst ...)
 
+    @property
+    def written(self) -> dict:
+        """How the training data's cells were written, as the manifest says it
+        (runtime/manifest.py trained_dialect reads it)."""
+        return {"time_zone": self.time_zone, "decimal_mark": self.decimal,
+                "date_order": self.date_order}
+
     def segments_of(self, span: tuple) -> list:
         """Gap-free segments inside a span (fit or calibration) of the kept series."""
         b0, e0 = span

@@ -326,6 +326,13 @@ def unmet_requirements(manifest: dict) -> List[str]:
             if k in here and version_tuple(here[k]) < version_tuple(v)]
 
 
+def network_section(network: dict) -> dict:
+    """The manifest's network: the caller's sizes, the contract's file names and formats."""
+    return {"encoder": [int(h) for h in network["encoder"]], "latent": int(network["latent"]),
+            "generator": [int(h) for h in network["generator"]], "weights": WEIGHTS_NAME,
+            "onnx": ONNX_NAME, "quantisation": QUANTISATION, "onnx_opset": ONNX_OPSET}
+
+
 def build_manifest(
     *,
     name: str,
@@ -357,11 +364,9 @@ def build_manifest(
     threshold: a policy (thresholds.make_threshold), optionally with "cusum" (cusum.Cusum; an
     older runtime refuses such a manifest); drift: drift.drift_section(...) (optional);
     false_alarms: the budget the threshold was calibrated to and the rate it implies
-    (optional, informative); time_zone, decimal_mark and date_order: how the training data's
-    cells were written (its zone-less times' zone, its decimal mark, the order of its numeric
-    dates: trained_dialect says what the gateway makes of them); fidelity
-    (optional): how the bundle's network compares with the teacher it came from
-    (compile/fidelity.py), information for people that the gateway does not read."""
+    (optional, informative); time_zone, decimal_mark, date_order: how the training data's
+    cells were written (trained_dialect); fidelity (optional): how the bundle's network
+    compares with the teacher it came from (compile/fidelity.py), for people only."""
     optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms),
                                   ("fidelity", fidelity)) if v is not None}
     return {**optional,
@@ -379,11 +384,7 @@ def build_manifest(
         "scaler": dict(scaler),
         "window": int(window),
         "hop": int(hop),
-        "network": {"encoder": [int(h) for h in network["encoder"]],
-                    "latent": int(network["latent"]),
-                    "generator": [int(h) for h in network["generator"]],
-                    "weights": WEIGHTS_NAME, "onnx": ONNX_NAME, "quantisation": QUANTISATION,
-                    "onnx_opset": ONNX_OPSET},
+        "network": network_section(network),
         "score": dict(score),
         "threshold": dict(threshold),
         "alerting": dict(alerting),

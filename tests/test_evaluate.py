@@ -28,6 +28,18 @@ REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab" / "valve1"
 TINY = TeacherConfig(window=12, adversarial_epochs=2, inversion_epochs=8, encoder_hidden=(8,),
                       generator_hidden=(6, 8), latent=2, max_train_windows=400)
+def tiny_bundle(frame, root: Path) -> Path:
+    """The TINY teacher trained on the first 500 points and a workstation bundle of it in
+    root/bundle (static threshold); its model directory."""
+    model = train(frame, split_spans(frame, 500, 0.25), TINY)
+    model_dir = save_model(model, root / "model")
+    compile_model(model, root / "bundle",
+                  CompileOptions(board="workstation", threshold="static",
+                                 distil=DistilConfig(epochs=3, max_real_windows=300)),
+                  model_dir=model_dir)
+    return model_dir
+
+
 @pytest.fixture(scope="module")
 def synthetic(tmp_path_factory):
     torch.set_num_threads(1)
@@ -40,13 +52,7 @@ def synthetic(tmp_path_factory):
     edges = np.flatnonzero(np.diff(pad))
     pd.DataFrame({"start": times[edges[0::2]], "end": times[edges[1::2] - 1],
                   "kind": "injected"}).to_csv(root / "incidents.csv", index=False)
-    frame = load_frame(data)
-    model = train(frame, split_spans(frame, 500, 0.25), TINY)
-    model_dir = save_model(model, root / "model")
-    compile_model(model, root / "bundle",
-                  CompileOptions(board="workstation", threshold="static",
-                                 distil=DistilConfig(epochs=3, max_real_windows=300)),
-                  model_dir=model_dir)
+    model_dir = tiny_bundle(load_frame(data), root)
     return {"data": data, "incidents": root / "incidents.csv", "model": model_dir,
             "bundle": root / "bundle", "labels": labels > 0}
 
@@ -237,13 +243,7 @@ def test_an_export_evaluates_as_it_trained(synthetic, tmp_path, export):
         df.assign(time=utc.dt.strftime("%d/%m/%Y %H:%M:%S")).to_csv(
             data, sep=";", decimal=",", index=False)
         options = IntakeOptions(decimal=",", date_order="dayfirst")
-    frame = load_frame(data, options)
-    model = train(frame, split_spans(frame, 500, 0.25), TINY)
-    model_dir = save_model(model, tmp_path / "model")
-    compile_model(model, tmp_path / "bundle",
-                  CompileOptions(board="workstation", threshold="static",
-                                 distil=DistilConfig(epochs=3, max_real_windows=300)),
-                  model_dir=model_dir)
+    model_dir = tiny_bundle(load_frame(data, options), tmp_path)
     manifest = json.loads((tmp_path / "bundle" / "manifest.json").read_text())
     assert manifest["decimal_mark"] == options.decimal
     assert (manifest["date_order"], manifest["time_zone"]) == (options.date_order,
