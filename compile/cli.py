@@ -165,7 +165,7 @@ def train(
     channels: Optional[str] = typer.Option(None, help="Comma-separated channel columns (default: all numeric)."),
     exclude: Optional[str] = typer.Option(None, help="Comma-separated columns to leave out (label-like columns are left out anyway)."),
     units: Optional[str] = typer.Option(None, help="Units, e.g. 'flow=L/min,temp=degC' (default: read from name suffixes)."),
-    period: Optional[str] = typer.Option(None, help="Sampling period: seconds or e.g. '1min' (default: median spacing)."),
+    period: Optional[str] = typer.Option(None, help="Sampling period: seconds or e.g. '1min' (default: median spacing). A file without a time column needs it: each row is then one sample, this far apart."),
     max_fill: int = typer.Option(5, "--max-fill", help="Interpolate gaps up to this many periods; longer gaps split the series."),
     train_until: Optional[str] = typer.Option(None, "--train-until", help="End of the training span: a count of the file's rows, a fraction (0.6) or a time. Default: all data."),
     calibration: float = typer.Option(0.2, help="Fraction of the training span held back (at its end) to calibrate thresholds."),

@@ -38,6 +38,8 @@ from ganlet.runtime.times import DATE_ORDERS, MAX_TIME, MIN_TIME
 LABEL_WORDS = ("anomaly", "anomalies", "label", "labels", "changepoint", "attack", "outlier",
                "outliers", "fault", "faults", "incident", "incidents")
 TIME_NAMES = ("time", "timestamp", "datetime", "date", "ts", "date_time")
+ROW_TIME_COLUMN = "time"  # the time column a file without one is given (--period), and so the
+                          # one the bundle's gateway feeds must carry
 LABEL_NAMES = ("anomaly", "label", "labels", "changepoint", "fault", "target", "is_anomaly",
                "class", "incident", "attack")
 # Column-name suffixes we can read a unit from (common practice in plant historians).
@@ -68,6 +70,8 @@ class IntakeOptions:
     decimal: str = "."                   # "," for decimal commas (1,5)
     tz: Optional[str] = None             # zone of zone-less times (None: UTC)
     date_order: Optional[str] = None     # "dayfirst" | "monthfirst" for 02/03/2026
+    times_from_rows: bool = False        # a file without a time column: one sample per row,
+                                         # period_s apart (rows_as_times)
 
     def dialect(self) -> Dialect:
         """How time cells are read: the gateway's own rules (runtime/intake.py), so a file
@@ -102,6 +106,7 @@ class IntakeReport:
     time_zone: str = "UTC"     # the zone zone-less times were read in
     decimal: str = "."         # the decimal mark numbers were read with
     date_order: Optional[str] = None  # how numeric dates with the year last were read
+    times_from_rows: bool = False  # the file had no time column: its rows were the samples
     # name -> grid points where the channel alone is blank (the row has other readings)
     blank_cells: dict = field(default_factory=dict)
     # name -> the blank run, in grid points (rows missing whole counted in), that 19 in 20 of
@@ -353,8 +358,37 @@ def find_time_column(df: pd.DataFrame, requested: Optional[str]) -> str:
                 parsed = pd.to_datetime(df[col].head(50), errors="coerce")
             if parsed.notna().mean() > 0.9:
                 return col
-    raise IntakeError("no time column found; name it with --time-col (columns are "
-                      f"{', '.join(map(str, df.columns))})")
+    raise IntakeError("no time column found; name it with --time-col, or, if each row is one "
+                      "sample and the rows are evenly spaced, give their spacing with --period "
+                      f"(e.g. --period 1s) (columns are {', '.join(map(str, df.columns))})")
+
+
+def time_column_of(df: pd.DataFrame, opts: IntakeOptions, notes: list, warn: bool = True) -> tuple:
+    """(df, its time column, whether the rows gave the times): the column named or found, else,
+    with opts.times_from_rows and a period, the rows' own times (rows_as_times), with a note
+    (and a warning unless `warn` is False: the file's second reading)."""
+    try:
+        return df, find_time_column(df, opts.time_col), False
+    except IntakeError:
+        given = opts.times_from_rows and opts.period_s is not None
+        if not given or opts.time_col not in (None, ROW_TIME_COLUMN):
+            raise
+    notes.append(f"no time column: each of the {len(df)} rows is taken as one sample, "
+                 f"{fmt_period(opts.period_s)} apart from 1970-01-01 00:00:00 UTC; "
+                 f"the gateway reads live rows by their time, so its feeds need a column "
+                 f"{ROW_TIME_COLUMN!r} (ISO 8601 or epoch seconds)")
+    if warn:
+        warnings.warn(notes[-1], stacklevel=3)
+    return rows_as_times(df, opts.period_s), ROW_TIME_COLUMN, True
+
+
+def rows_as_times(df: pd.DataFrame, period_s: float) -> pd.DataFrame:
+    """DF with a first column ROW_TIME_COLUMN of epoch seconds: row k at k x period_s (a file
+    whose rows are evenly spaced samples with no time written; the gateway's --replay and
+    `ganlet evaluate` then see the same times as training)."""
+    out = df.copy()
+    out.insert(0, ROW_TIME_COLUMN, np.round(np.arange(len(df)) * float(period_s), 6))
+    return out
 
 
 _DATE_ONLY = re.compile(r"\d{4}-\d{2}-\d{2}|\d{1,2}[./-]\d{1,2}[./-]\d{4}|\d{4}/\d{1,2}/\d{1,2}")
@@ -457,12 +491,13 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
     if len(df) == 0:
         raise IntakeError(f"{path}: no data rows")
     notes: list = []
-    time_col = find_time_column(df, opts.time_col)
+    df, time_col, from_rows = time_column_of(df, opts, notes)
     refuse_split_time(df, time_col, path)
     refuse_long_format(df, time_col, path)
     row_units = units_row(df, time_col, dialect, notes)
     if row_units is not None:
         df = read_table(Path(path), opts.sep, opts.decimal, skip_units_row=True)
+        df = rows_as_times(df, opts.period_s) if from_rows else df
     channels, excluded = pick_channels(df, time_col, opts, path, notes)
     times_np, values, unparsable = timed_rows(df, time_col, channels, dialect, notes)
     channels, values, excluded = without_blank_columns(channels, values, excluded,
@@ -494,6 +529,7 @@ def load_frame(path, options: Optional[IntakeOptions] = None) -> Frame:
         duplicates=int(duplicates), missing_points=int(missing.sum()), filled_points=int(filled),
         long_gaps=long_gaps, segments=len(segs), channel_ranges=ranges, warnings=notes,
         time_zone=dialect.zone_name, decimal=dialect.decimal, date_order=dialect.date_order,
+        times_from_rows=from_rows,
         blank_cells={str(c): int(n) for c, n in zip(channels, blank)}, blank_runs=blank_runs,
     )
     return Frame(grid_times, grid, [str(c) for c in channels], units, period, report,

@@ -54,20 +54,20 @@ from ganlet.compile.data import (
     IntakeOptions,
     RobustScaler,
     as_numbers,
-    find_time_column,
     grid_index,
     label_word,
     load_frame,
     parse_times,
     read_table,
     runs,
+    time_column_of,
 )
 from ganlet.compile.gateway import UnusableInput, gateway_csv, read_scores, run_bundle
 from ganlet.compile.verify import alert_events, clean_json, replay_alerts, replay_feed
 from ganlet.runtime.alerts import default_alerting
 from ganlet.runtime.cusum import MIN_EXCURSIONS
 from ganlet.runtime.drift import STEP_TEXT, action_summary
-from ganlet.runtime.manifest import trained_dialect
+from ganlet.runtime.manifest import times_from_rows, trained_dialect
 
 ROLLING_Z_WINDOW = 64          # trailing points of the rolling z-score baseline
 BASELINES = ("IsolationForest", "GaussianMixture", "OneClassSVM", "rolling z-score")
@@ -113,7 +113,8 @@ def incidents_in_file(path: Path, column: Optional[str], options: IntakeOptions)
     elif column not in df.columns:
         raise IntakeError(f"--labels {column!r}: no such column in {path}; columns are "
                           f"{', '.join(map(str, df.columns))}")
-    times = parse_times(df[find_time_column(df, options.time_col)], options.dialect())
+    df, time_col, _ = time_column_of(df, options, [], warn=False)
+    times = parse_times(df[time_col], options.dialect())
     cells = df[column]
     numbers = as_numbers(cells, options.decimal)
     if numbers.notna().sum() >= 0.5 * cells.notna().sum():
@@ -493,7 +494,8 @@ def evaluate(source: Path, data: Path, incidents, eval_from=None,
     methods, capture = {}, None
     with tempfile.TemporaryDirectory(prefix="ganlet-evaluate-") as tmp:
         feed = gateway_csv(Path(data), frame.report.time_col, frame.channels, Path(tmp),
-                           options.decimal)
+                           options.decimal,
+                           frame.period_s if frame.report.times_from_rows else None)
         if bundle is not None:
             methods["bundle"], capture = gateway_method(bundle, feed, frame, Path(tmp),
                                                         rule.kind)
@@ -526,10 +528,11 @@ def _reading(bundle, model) -> IntakeOptions:
     if bundle is not None:
         return IntakeOptions(time_col=bundle.time_column, channels=list(bundle.channels),
                              period_s=bundle.period_s, max_fill_periods=bundle.max_gap_periods,
+                             times_from_rows=times_from_rows(bundle.manifest),
                              **trained_dialect(bundle.manifest))
     return IntakeOptions(time_col=model.time_col, channels=list(model.channels),
                          period_s=model.period_s, max_fill_periods=model.max_fill_periods,
-                         **trained_dialect(model.written))
+                         times_from_rows=model.times_from_rows, **trained_dialect(model.written))
 
 
 def _incidents(incidents, data: Path, labels: Optional[str], options: IntakeOptions,

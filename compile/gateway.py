@@ -12,11 +12,11 @@ import subprocess
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence
+from typing import Optional, Sequence
 
 import pandas as pd
 
-from ganlet.compile.data import IntakeError, parse_times, read_table
+from ganlet.compile.data import IntakeError, parse_times, read_table, rows_as_times
 from ganlet.runtime.events import ALERT_EVENTS, read_provenance
 
 
@@ -25,11 +25,12 @@ class UnusableInput(ValueError):
 
 
 def gateway_csv(data: Path, time_col: str, channels: Sequence[str], workdir: Path,
-                decimal: str = ".") -> Path:
+                decimal: str = ".", rows_period_s: Optional[float] = None) -> Path:
     """DATA as run_bundle feeds it to the gateway (comma CSV, header, one row per sample, rows in
     file order, numbers with a decimal point: run_bundle says --decimal .). A comma CSV is
     passed as is; other delimiters, a decimal comma or Parquet are rewritten row for row, the
-    time cells as they were."""
+    time cells as they were. rows_period_s: a file without `time_col` is given its rows' times,
+    one sample each that far apart, as training gave them (data.rows_as_times)."""
     data = Path(data)
     if data.suffix.lower() == ".csv" and decimal == ".":
         with open(data, encoding="utf-8", errors="replace") as fh:
@@ -38,6 +39,8 @@ def gateway_csv(data: Path, time_col: str, channels: Sequence[str], workdir: Pat
         if time_col in cells and all(c in cells for c in channels):
             return data
     table = read_table(data, None, decimal)
+    if rows_period_s is not None and time_col not in table.columns:
+        table = rows_as_times(table, rows_period_s)
     missing = [c for c in [time_col, *channels] if c not in table.columns]
     if missing:
         raise IntakeError(f"{data}: column(s) {', '.join(missing)} the bundle needs are absent")

@@ -97,7 +97,8 @@ class TrainOptions:
         return IntakeOptions(sep=self.sep, time_col=self.time_col, channels=self.channels,
                              exclude=tuple(self.exclude), period_s=parse_period(self.period),
                              max_fill_periods=self.max_fill, units=dict(self.units),
-                             decimal=self.decimal, tz=self.tz, date_order=self.date_order)
+                             decimal=self.decimal, tz=self.tz, date_order=self.date_order,
+                             times_from_rows=self.period is not None)
 
     def detector_config(self) -> TeacherConfig:
         cfg = self.config or TeacherConfig()

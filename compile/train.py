@@ -54,13 +54,14 @@ class TrainedModel:
     time_zone: str = "UTC"             # zone-less times were read in this zone (--tz)
     decimal: str = "."                 # numbers were written with this decimal mark (--decimal)
     date_order: Optional[str] = None   # numeric dates were read in this order (--dayfirst ...)
+    times_from_rows: bool = False      # the file had no time column: a sample per row (--period)
 
     @property
     def written(self) -> dict:
         """How the training data's cells were written, as the manifest says it
         (runtime/manifest.py trained_dialect reads it)."""
         return {"time_zone": self.time_zone, "decimal_mark": self.decimal,
-                "date_order": self.date_order}
+                "date_order": self.date_order, "times_from_rows": self.times_from_rows}
 
     def segments_of(self, span: tuple) -> list:
         """Gap-free segments inside a span (fit or calibration) of the kept series."""
@@ -105,7 +106,7 @@ def train(frame: Frame, spans: Spans, config: TeacherConfig,
         raw=np.asarray(frame.values[:end], np.float64),
         segments=segments_in(series, 0, end), max_fill_periods=max_fill_periods,
         time_zone=frame.report.time_zone, decimal=frame.report.decimal,
-        date_order=frame.report.date_order,
+        date_order=frame.report.date_order, times_from_rows=frame.report.times_from_rows,
     )
 
 
@@ -285,6 +286,7 @@ def save_model(model: TrainedModel, out: Path) -> Path:
         "time_col": model.time_col, "spans": model.spans.to_json(),
         "max_fill_periods": model.max_fill_periods, "time_zone": model.time_zone,
         "decimal": model.decimal, "date_order": model.date_order,
+        "times_from_rows": model.times_from_rows,
         "segments": [list(s) for s in model.segments],
     })
     arrays = {"series": model.series.astype(np.float32)}
@@ -319,7 +321,7 @@ def load_model(path: Path) -> TrainedModel:
         segments=[tuple(s) for s in meta["segments"]],
         max_fill_periods=meta.get("max_fill_periods", 5),
         time_zone=meta.get("time_zone", "UTC"), decimal=meta.get("decimal", "."),
-        date_order=meta.get("date_order"),
+        date_order=meta.get("date_order"), times_from_rows=meta.get("times_from_rows", False),
     )
 
 

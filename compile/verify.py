@@ -48,6 +48,7 @@ from ganlet.runtime.manifest import (
     Bundle,
     BundleError,
     load_bundle,
+    times_from_rows,
     trained_dialect,
 )
 from ganlet.runtime.scorer import NetworkScorer, make_scorer
@@ -406,7 +407,8 @@ def verify(bundle_dir: Path, data: Path, device_scores: Optional[Path] = None,
     notes = []
     with tempfile.TemporaryDirectory(prefix="ganlet-verify-") as tmp:
         feed = gateway_csv(Path(data), bundle.time_column, bundle.channels, Path(tmp),
-                           trained_dialect(bundle.manifest)["decimal"])
+                           trained_dialect(bundle.manifest)["decimal"],
+                           bundle.period_s if times_from_rows(bundle.manifest) else None)
         if device_scores is None:
             device = read_scores(run_bundle(bundle.dir, feed, Path(tmp) / "gateway").scores)
             source = "workstation run of the bundle's run.py stream (numpy backend)"

@@ -128,6 +128,10 @@ class HeaderError(Exception):
     """The header cannot feed this bundle (a channel or the time column is absent)."""
 
 
+class NoTimeColumn(HeaderError):
+    """The header lacks the bundle's time column."""
+
+
 class Dialect:
     """How a line's cells are read: separator (None: chosen from the header), decimal mark,
     the zone of zone-less times and the order of numeric dates."""
@@ -303,7 +307,7 @@ def _check_columns(cells: List[str], time_column: str, channels: Sequence[str]) 
         raise HeaderError(f"input header names column(s) {twice} more than once; give every "
                           "column its own name")
     if time_column not in cells:
-        raise HeaderError(
+        raise NoTimeColumn(
             f"input header has no time column {time_column!r} (columns: {cells[:20]}); "
             "the first line must name the columns"
         )

@@ -196,7 +196,17 @@ def trained_dialect(manifest: dict) -> Dict[str, Optional[str]]:
             "date_order": manifest.get("date_order")}
 
 
+def times_from_rows(manifest: dict) -> bool:
+    """Whether the training file had no time column, its rows taken as one sample each,
+    period_s apart from 1970-01-01T00:00:00Z (`ganlet train --period`). `ganlet evaluate` and
+    `verify` then read a data file without one the same way; the gateway still reads every live
+    row's time from time_column."""
+    return manifest.get("times_from_rows", False)
+
+
 def _check_dialect(manifest: dict) -> None:
+    if not isinstance(manifest.get("times_from_rows", False), bool):
+        raise BundleError("manifest: times_from_rows must be true or false")
     if manifest.get("decimal_mark", ".") not in DECIMALS:
         raise BundleError(f"manifest: decimal_mark must be one of {' '.join(DECIMALS)}")
     if manifest.get("date_order") not in (None,) + tuple(DATE_ORDERS):
@@ -357,18 +367,19 @@ def build_manifest(
     fidelity: Optional[dict] = None,
     decimal_mark: str = ".",
     date_order: Optional[str] = None,
+    times_from_rows: bool = False,
 ) -> dict:
-    """Every manifest is made here: the caller gives what varies, this fills the constants of
-    the contract (schema, file names, quantisation, opset, tolerances, requirements).
-    network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
+    """Every manifest is made here: the caller gives what varies, this fills the contract's
+    constants. network = {"encoder": [...], "latent": K, "generator": [...]}; channels = (name, unit);
     threshold: a policy (thresholds.make_threshold), optionally with "cusum" (cusum.Cusum; an
     older runtime refuses such a manifest); drift: drift.drift_section(...) (optional);
-    false_alarms: the budget the threshold was calibrated to and the rate it implies
-    (optional, informative); time_zone, decimal_mark, date_order: how the training data's
-    cells were written (trained_dialect); fidelity (optional): how the bundle's network
-    compares with the teacher it came from (compile/fidelity.py), for people only."""
+    false_alarms: the budget and the rate it implies (optional, informative); time_zone,
+    decimal_mark, date_order, times_from_rows: how the training data was written
+    (trained_dialect, times_from_rows); fidelity (optional): how the bundle's network compares
+    with its teacher (compile/fidelity.py), for people only."""
     optional = {k: v for k, v in (("drift", drift), ("false_alarms", false_alarms),
-                                  ("fidelity", fidelity)) if v is not None}
+                                  ("fidelity", fidelity), ("times_from_rows", times_from_rows))
+                if v not in (None, False)}
     return {**optional,
         "schema_version": SCHEMA_VERSION,
         "tool_version": tool_version,

@@ -53,7 +53,8 @@ from .events import (
     scores_provenance,
 )
 from .guard import STORE_ERRORS
-from .intake import REJECT_KINDS, Dialect, HeaderError, RowError, format_time
+from .intake import REJECT_KINDS, Dialect, HeaderError, NoTimeColumn, RowError, format_time
+from .manifest import times_from_rows
 from .sources import Control, CsvSource, Position, Stop, open_input
 from .times import MAX_TIME, MIN_TIME, TimeError, parse_time
 
@@ -396,7 +397,7 @@ class Service:
             reason = "signal"
         except HeaderError as exc:
             reason, code = "bad_header", 2
-            self.stderr.write(f"error: {exc}\n")
+            self.stderr.write(f"error: {exc}{rows_hint(self.bundle, exc)}\n")
         if reason == "end_of_input":
             for step in self.timeline.flush(self.det.last_time):
                 self._step(step)
@@ -437,6 +438,17 @@ class Service:
 
 
 # ---------------------------------------------------------------------- checks of saved state
+def rows_hint(bundle, exc: HeaderError) -> str:
+    """What to do when a feed lacks the time column of a bundle whose training file had none
+    (manifest.times_from_rows): the gateway reads every row's time, so give it one."""
+    if not (isinstance(exc, NoTimeColumn) and times_from_rows(bundle.manifest)):
+        return ""
+    step = f"{bundle.period_s:g}"
+    return (f"; this bundle was trained on a file without times, one sample per row {step} s "
+            f"apart: give every row its time in a column {bundle.time_column!r} (ISO 8601 or "
+            f"epoch seconds; row k of that file was k x {step} s)")
+
+
 def _checked_saved(saved, path) -> Optional[dict]:
     """The checkpoint's state when it has the expected shape; CheckpointError otherwise."""
     if saved is None:

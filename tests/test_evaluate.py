@@ -3,6 +3,8 @@ SKAB valve1 benchmark protocol (bundle through the gateway path vs teacher vs ba
 
 import json
 import re
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -17,12 +19,13 @@ from synthetic import correlated_series, inject
 from typer.testing import CliRunner
 
 from ganlet.compile.cli_reports import register
-from ganlet.compile.data import IntakeOptions, load_frame, split_spans
+from ganlet.compile.data import IntakeError, IntakeOptions, load_frame, split_spans
 from ganlet.compile.distil import DistilConfig
 from ganlet.compile.evaluate import BASELINES, evaluate, point_metrics, rolling_z
 from ganlet.compile.model import TeacherConfig
-from ganlet.compile.pipeline import CompileOptions, compile_model
+from ganlet.compile.pipeline import CompileOptions, TrainOptions, compile_model
 from ganlet.compile.train import save_model, train
+from ganlet.compile.verify import verify
 
 REPO = Path(__file__).resolve().parents[1]
 SKAB = REPO / ".." / "shared" / "data" / "skab" / "valve1"
@@ -256,6 +259,40 @@ def test_an_export_evaluates_as_it_trained(synthetic, tmp_path, export):
     for name in ("bundle", "teacher", "IsolationForest"):
         np.testing.assert_allclose(r.methods[name].scores, plain.methods[name].scores,
                                    rtol=1e-5, equal_nan=True)
+
+
+def test_a_file_without_times_trains_on_its_rows_and_evaluates_as_its_timed_copy(synthetic,
+                                                                                 tmp_path):
+    # a values-only export (no time column, as many benchmark files are) was refused outright;
+    # with --period each row is one sample, that far apart. Reference: the same rows with the
+    # times pandas.date_range gave them (the synthetic file's own) train the same network and
+    # score the same; the gateway, which reads every live row's time, says what to add
+    torch.set_num_threads(1)
+    df = pd.read_csv(synthetic["data"]).drop(columns="time")
+    df["anomaly"] = synthetic["labels"].astype(int)
+    data = tmp_path / "rows.csv"
+    df.to_csv(data, index=False)
+    with pytest.raises(IntakeError, match="--period"):
+        load_frame(data)
+    with pytest.warns(UserWarning, match="no time column: each of the 900 rows"):
+        frame = load_frame(data, TrainOptions(period="60s").intake())
+    model_dir = tiny_bundle(frame, tmp_path)
+    manifest = json.loads((tmp_path / "bundle" / "manifest.json").read_text())
+    assert manifest["times_from_rows"] is True and manifest["time_column"] == "time"
+    r = evaluate(tmp_path / "bundle", data, None, eval_from=500, model_dir=model_dir,
+                 baselines=("IsolationForest",))
+    plain = evaluate(synthetic["bundle"], synthetic["data"], synthetic["incidents"],
+                     eval_from=500, model_dir=synthetic["model"], baselines=("IsolationForest",))
+    np.testing.assert_array_equal(r.labels, plain.labels)
+    for name in ("bundle", "teacher", "IsolationForest"):
+        np.testing.assert_allclose(r.methods[name].scores, plain.methods[name].scores,
+                                   rtol=1e-5, equal_nan=True)
+    assert verify(tmp_path / "bundle", data).passed
+    run = subprocess.run([sys.executable, str(tmp_path / "bundle" / "run.py"), "stream",
+                          "--replay", "--input", str(data)], capture_output=True, text=True)
+    assert run.returncode == 2
+    assert "trained on a file without times, one sample per row 60 s apart" in run.stderr
+    assert "give every row its time in a column 'time'" in run.stderr
 
 
 def test_evaluate_reads_a_windows_1252_file_and_says_so_once(synthetic, tmp_path):

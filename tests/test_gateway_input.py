@@ -554,7 +554,7 @@ def test_the_training_datas_decimal_mark_and_date_order_are_the_defaults(tmp_pat
     older = {k: v for k, v in manifest.items() if k not in ("decimal_mark", "date_order")}
     validate_manifest(older)
     assert trained_dialect(older) == {"tz": "UTC", "decimal": ".", "date_order": None}
-    for bad in ({"decimal_mark": ";"}, {"date_order": "yearfirst"}):
+    for bad in ({"decimal_mark": ";"}, {"date_order": "yearfirst"}, {"times_from_rows": "yes"}):
         with pytest.raises(BundleError, match=next(iter(bad))):
             validate_manifest({**manifest, **bad})
 

@@ -189,6 +189,25 @@ def test_a_column_whose_name_says_label_is_left_out_and_found_by_evaluate(write_
     assert incidents["end"][0] == pd.Timestamp(read["time"][229])
 
 
+def test_rows_without_times_are_samples_at_the_given_period_and_times_still_win(write_csv):
+    # reference: pandas.date_range from the epoch at the period given; a file that has a time
+    # column keeps reading it (--period then only sets the grid)
+    from ganlet.compile.pipeline import TrainOptions
+
+    timed = correlated_series(300)
+    rows = write_csv(timed.drop(columns="time"), name="rows.csv")
+    with pytest.warns(UserWarning, match="no time column: each of the 300 rows"):
+        frame = load_frame(rows, TrainOptions(period="1min").intake())
+    expected = pd.date_range("1970-01-01", periods=300, freq="60s")
+    np.testing.assert_array_equal(frame.times.tz_localize(None).values, expected.values)
+    np.testing.assert_allclose(frame.values, timed[["flow", "power", "temp"]].to_numpy())
+    assert frame.report.times_from_rows and frame.report.time_col == "time"
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        kept = load_frame(write_csv(timed), TrainOptions(period="1min").intake())
+    assert not kept.report.times_from_rows and str(kept.times[0]).startswith("2026-01-05")
+
+
 def test_a_wide_file_with_some_repeated_times_is_not_taken_for_one_reading_per_row(write_csv):
     # a logger that wrote a few rows twice: averaged and said, as before
     df = correlated_series(300)
