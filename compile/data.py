@@ -384,8 +384,8 @@ def time_column_of(df: pd.DataFrame, opts: IntakeOptions, notes: list, warn: boo
 
 def rows_as_times(df: pd.DataFrame, period_s: float) -> pd.DataFrame:
     """DF with a first column ROW_TIME_COLUMN of epoch seconds: row k at k x period_s (a file
-    whose rows are evenly spaced samples with no time written; the gateway's --replay and
-    `ganlet evaluate` then see the same times as training)."""
+    whose rows are evenly spaced samples with no time written; `ganlet evaluate` and `verify`
+    replay such a file on the gateway with these times, gateway.gateway_csv)."""
     out = df.copy()
     out.insert(0, ROW_TIME_COLUMN, np.round(np.arange(len(df)) * float(period_s), 6))
     return out

@@ -58,8 +58,8 @@ class TrainedModel:
 
     @property
     def written(self) -> dict:
-        """How the training data's cells were written, as the manifest says it
-        (runtime/manifest.py trained_dialect reads it)."""
+        """How the training data was written, as the manifest says it (runtime/manifest.py
+        trained_dialect and times_from_rows read it)."""
         return {"time_zone": self.time_zone, "decimal_mark": self.decimal,
                 "date_order": self.date_order, "times_from_rows": self.times_from_rows}
 

@@ -437,7 +437,6 @@ class Service:
         self.writer.close()
 
 
-# ---------------------------------------------------------------------- checks of saved state
 def rows_hint(bundle, exc: HeaderError) -> str:
     """What to do when a feed lacks the time column of a bundle whose training file had none
     (manifest.times_from_rows): the gateway reads every row's time, so give it one."""
@@ -449,6 +448,7 @@ def rows_hint(bundle, exc: HeaderError) -> str:
             f"epoch seconds; row k of that file was k x {step} s)")
 
 
+# ---------------------------------------------------------------------- checks of saved state
 def _checked_saved(saved, path) -> Optional[dict]:
     """The checkpoint's state when it has the expected shape; CheckpointError otherwise."""
     if saved is None:
